@@ -1,0 +1,106 @@
+"""Command line: ``mdrotor <command> ...``.
+
+This module only parses arguments and dispatches; the work is in the
+library modules, imported inside each command so that ``--help`` stays fast.
+Bad input of any kind becomes one line on stderr and exit status 2.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+
+EXIT_INPUT = 2
+
+
+def _add_common(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
+                   help="override a config key, e.g. --set trap.f_radial='1.2 MHz' (repeatable)")
+    p.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    from . import __version__
+
+    ap = argparse.ArgumentParser(prog="mdrotor", description="Monte-Carlo MD of rotating ion Coulomb crystals (quantum rotors).")
+    ap.add_argument("--version", action="version", version=f"mdrotor {__version__}")
+    sub = ap.add_subparsers(dest="command", required=True)
+
+    p = sub.add_parser("crystal", help="equilibrium, normal modes and pinning margin of a config's crystal")
+    p.add_argument("config", help="run config (TOML)")
+    p.add_argument("--f-rot", default=None, metavar="FREQ", help="rotation frequency, e.g. '150 kHz' (default: rotation.f_start)")
+    _add_common(p)
+
+    p = sub.add_parser("run", help="Monte-Carlo spin-up / release run")
+    p.add_argument("config", help="run config (TOML)")
+    p.add_argument("-o", "--output", default=None, help="HDF5 result file (default: <config stem>.h5 in the current folder)")
+    p.add_argument("--trajectories", type=int, default=None, help="number of trajectories (overrides run.trajectories)")
+    p.add_argument("--seed", type=int, default=None, help="base seed (overrides run.seed)")
+    p.add_argument("--threads", type=int, default=None, help="threads for the kernels (default: all cores)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    _add_common(p)
+    return ap
+
+
+def main(argv=None) -> int:
+    ap = build_parser()
+    args = ap.parse_args(argv)
+    from .errors import InputError
+
+    try:
+        if args.command == "crystal":
+            return cmd_crystal(args)
+        if args.command == "run":
+            return cmd_run(args)
+    except InputError as e:
+        print(f"mdrotor: error: {e.line()}", file=sys.stderr)
+        return EXIT_INPUT
+    except KeyboardInterrupt:
+        print("mdrotor: interrupted", file=sys.stderr)
+        return 130
+    return 0
+
+
+def _load(args):
+    from .config import load_config
+
+    return load_config(args.config, args.overrides)
+
+
+# ---------------------------------------------------------------------------
+def cmd_crystal(args) -> int:
+    import warnings
+
+    import numpy as np
+
+    from . import units
+    from .crystal import crystal_from_config, pinning_margin
+    from .report_text import crystal_json, crystal_text
+
+    cfg = _load(args)
+    f_rot = None
+    if args.f_rot is not None:
+        f_rot = units.parse(args.f_rot, "frequency", "--f-rot", "command line")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        cr = crystal_from_config(cfg, f_rot)
+    margin = pinning_margin(cr, cr.potential.multipoles) if cfg.pinning else None
+    if args.json:
+        print(json.dumps(crystal_json(cfg, cr, margin)))
+    else:
+        print(crystal_text(cfg, cr, margin))
+        for w in cr.warnings:
+            print(f"warning: {w}", file=sys.stderr)
+    del np
+    return 0
+
+
+def cmd_run(args) -> int:
+    from .run import cli_run
+
+    return cli_run(args)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,559 @@
+"""Run configuration: TOML files -> frozen, validated dataclasses.
+
+Every value with a dimension is a string with units ("1.1 MHz", "5 um");
+frequencies are cyclic (Hz). Every problem is reported as one
+:class:`~mdrotor.errors.InputError` naming the file, the dotted key path and
+what was expected. The keys are documented in the README ("Config
+reference"); ``configs/demo.toml`` uses most of them.
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from . import units
+from .errors import InputError, PhysicsError
+from .multipole import MultipoleTerm
+from .schedule import Schedule, Stage, parse_profile
+from .trap import Trap
+
+# allowed keys per section (anything else is a typo and is refused)
+SECTIONS = {
+    "species": {"ion", "custom"},
+    "crystal": {"ions", "search_seed"},
+    "trap": {"model", "f_radial", "f_axial", "radial_split", "f_drive", "a", "q", "stray_field", "rf_phase"},
+    "pinning": {"order", "strength", "angle", "name"},
+    "rotation": {"f_start"},
+    "stage": {"name", "duration", "f_rot", "pinning"},
+    "initial": {"temperature", "wigner", "occupations"},
+    "run": {"trajectories", "seed", "dt", "integrator", "chunk", "threads", "steps_per_period"},
+    "observe": {"loss_radius", "series_interval"},
+    "noise": None,  # validated by mdrotor.noise
+}
+CUSTOM_KEYS = {"mass", "charge", "statistics"}
+INTEGRATORS = ("verlet", "order4")
+
+
+@dataclass(frozen=True)
+class Initial:
+    """Initial-state sampling: temperature (K), Wigner zero-point motion,
+    per-mode occupations by label / kind / plane (override the temperature)."""
+
+    temperature_k: float = 0.0
+    wigner: bool = True
+    occupations: tuple = ()  # ((selector, n), ...)
+
+
+@dataclass(frozen=True)
+class RunOptions:
+    trajectories: int = 100
+    seed: int = 0
+    dt_s: float | None = None
+    integrator: str = "verlet"
+    chunk: int = 64
+    threads: int = 0
+    steps_per_period: int = 40
+
+
+@dataclass(frozen=True)
+class Observe:
+    loss_radius_m: float = 100e-6
+    series_interval_s: float | None = None
+
+
+@dataclass(frozen=True)
+class Config:
+    """A validated run configuration (SI units inside).
+
+    Attributes
+    ----------
+    source : str
+        Where it came from (path, or "<dict>").
+    text : str
+        The TOML text (with overrides applied), stored in results.
+    species : tuple of Species, one per ion
+    trap : Trap
+    pinning : tuple of MultipoleTerm
+    schedule : Schedule or None
+    initial, run, observe : option records
+    noise : dict
+        The raw ``[noise]`` table (parsed by the noise module).
+    """
+
+    source: str
+    text: str
+    species: tuple
+    trap: Trap
+    pinning: tuple
+    schedule: Schedule | None
+    initial: Initial
+    run: RunOptions
+    observe: Observe
+    f_start_hz: float = 0.0
+    search_seed: int = 0
+    noise: dict = field(default_factory=dict)
+    raw: dict = field(default_factory=dict, repr=False)
+
+    @property
+    def n_ions(self) -> int:
+        return len(self.species)
+
+    @property
+    def masses_kg(self) -> np.ndarray:
+        return np.array([s.mass_kg for s in self.species])
+
+    @property
+    def charges_c(self) -> np.ndarray:
+        return np.array([s.charge_c for s in self.species])
+
+
+# ---------------------------------------------------------------------------
+# Loading
+# ---------------------------------------------------------------------------
+def load_config(path_or_dict, overrides=(), *, source: str | None = None) -> Config:
+    """Load and validate a run config.
+
+    Parameters
+    ----------
+    path_or_dict : str, Path or dict
+        A TOML file, or an already parsed dict (from a notebook).
+    overrides : sequence of str
+        ``"key.path=value"`` strings (the CLI's ``--set``); values are read
+        as TOML values when they parse, else as strings.
+
+    Raises
+    ------
+    InputError
+        One message naming the file, the key and what was expected.
+    """
+    if isinstance(path_or_dict, dict):
+        import copy
+
+        raw = copy.deepcopy(path_or_dict)
+        src = source or "<dict>"
+        base_dir = Path.cwd()
+    else:
+        p = Path(path_or_dict)
+        src = source or str(path_or_dict)
+        try:
+            text = p.read_text()
+        except OSError as e:
+            raise InputError("", f"cannot read config file: {e.strerror}", src) from None
+        try:
+            raw = tomllib.loads(text)
+        except tomllib.TOMLDecodeError as e:
+            raise InputError("", f"not valid TOML ({e})", src) from None
+        base_dir = p.parent
+    for ov in overrides:
+        apply_override(raw, ov, src)
+    return from_dict(raw, src, base_dir)
+
+
+def apply_override(raw: dict, text: str, source: str) -> None:
+    """Apply one ``key.path=value`` override in place.
+
+    Stages are addressed by name (``stage.spin-up.duration``) or by index
+    (``stage.0.duration``).
+    """
+    if "=" not in text:
+        raise InputError("--set", f"expected key.path=value, got {text!r}", source)
+    key, val = text.split("=", 1)
+    key = key.strip()
+    try:
+        value = tomllib.loads(f"v = {val}")["v"]
+    except tomllib.TOMLDecodeError:
+        value = val.strip()
+    set_path(raw, key, value, source)
+
+
+def set_path(raw: dict, key: str, value, source: str) -> None:
+    parts = key.split(".")
+    if not key or any(not p for p in parts):
+        raise InputError(key, "expected a dotted key path such as 'trap.f_radial'", source)
+    node = raw
+    for i, part in enumerate(parts[:-1]):
+        if isinstance(node, list):
+            node = _list_item(node, part, ".".join(parts[: i + 1]), source)
+            continue
+        if part not in node:
+            if part in ("stage", "pinning") and i == 0:
+                raise InputError(key, f"the config has no [{part}] to override", source)
+            node[part] = {}
+        node = node[part]
+    if isinstance(node, list):
+        raise InputError(key, "expected a key inside a list item (e.g. stage.<name>.duration)", source)
+    node[parts[-1]] = value
+
+
+def _list_item(items: list, part: str, key: str, source: str):
+    for it in items:
+        if isinstance(it, dict) and it.get("name") == part:
+            return it
+    if part.isdigit() and int(part) < len(items):
+        return items[int(part)]
+    names = [it.get("name") for it in items if isinstance(it, dict)]
+    raise InputError(key, f"no item named {part!r}; have {names}", source)
+
+
+def _check_keys(table, section: str, allowed: set, source: str):
+    if not isinstance(table, dict):
+        raise InputError(section, "expected a table", source)
+    for k in table:
+        if k not in allowed:
+            raise InputError(f"{section}.{k}", f"unknown key; expected one of {sorted(allowed)}", source)
+
+
+def _require(table: dict, key: str, section: str, source: str, what: str):
+    if key not in table:
+        raise InputError(f"{section}.{key}", f"missing; expected {what}", source)
+    return table[key]
+
+
+def _int(v, key, source, minimum=None, what="an integer"):
+    if isinstance(v, bool) or not isinstance(v, int):
+        raise InputError(key, f"expected {what}, got {v!r}", source)
+    if minimum is not None and v < minimum:
+        raise InputError(key, f"expected {what} >= {minimum}, got {v}", source)
+    return v
+
+
+def _species_list(raw, source):
+    from .species import custom_species, get_species
+
+    sp = raw.get("species", {})
+    _check_keys(sp, "species", SECTIONS["species"], source)
+    custom = {}
+    for name, c in sp.get("custom", {}).items():
+        _check_keys(c, f"species.custom.{name}", CUSTOM_KEYS, source)
+        mass = units.parse(_require(c, "mass", f"species.custom.{name}", source, "a mass such as '40 u'"), "mass", f"species.custom.{name}.mass", source)
+        if not mass > 0:
+            raise InputError(f"species.custom.{name}.mass", f"expected a positive mass, got {c['mass']!r}", source)
+        charge = _int(c.get("charge", 1), f"species.custom.{name}.charge", source, what="a non-zero integer charge state")
+        if charge == 0:
+            raise InputError(f"species.custom.{name}.charge", "expected a non-zero integer charge state", source)
+        stat = c.get("statistics")
+        if stat not in (None, "boson", "fermion"):
+            raise InputError(f"species.custom.{name}.statistics", "expected 'boson' or 'fermion'", source)
+        custom[name] = custom_species(mass, charge, name, stat)
+
+    def lookup(name, key):
+        if not isinstance(name, str):
+            raise InputError(key, f"expected a species name such as '40Ca+', got {name!r}", source)
+        if name in custom:
+            return custom[name]
+        return get_species(name, key=key, source=source)
+
+    cr = raw.get("crystal")
+    if cr is None:
+        raise InputError("crystal", "missing; expected a [crystal] table with 'ions'", source)
+    _check_keys(cr, "crystal", SECTIONS["crystal"], source)
+    ions = _require(cr, "ions", "crystal", source, "a number of ions (1 to 30) or a list of species")
+    if isinstance(ions, list):
+        if not 1 <= len(ions) <= 30:
+            raise InputError("crystal.ions", f"expected 1 to 30 ions, got {len(ions)}", source)
+        out = [lookup(n, f"crystal.ions[{i}]") for i, n in enumerate(ions)]
+    else:
+        n = _int(ions, "crystal.ions", source, what="a number of ions (1 to 30) or a list of species")
+        if not 1 <= n <= 30:
+            raise InputError("crystal.ions", f"expected 1 to 30 ions, got {n}", source)
+        name = _require(sp, "ion", "species", source, "a species name such as '40Ca+'")
+        out = [lookup(name, "species.ion")] * n
+    return tuple(out)
+
+
+def _vec3(v, key, source, dim):
+    if not isinstance(v, list) or len(v) != 3:
+        raise InputError(key, f"expected a list of 3 values (x, y, z), got {v!r}", source)
+    return tuple(units.parse(x, dim, f"{key}[{i}]", source) for i, x in enumerate(v))
+
+
+def _trap(raw, species, source) -> Trap:
+    from .mathieu import characteristic_exponent, solve_point_trap
+
+    tr = raw.get("trap")
+    if tr is None:
+        raise InputError("trap", "missing; expected a [trap] table", source)
+    _check_keys(tr, "trap", SECTIONS["trap"], source)
+    model = tr.get("model", "pseudo")
+    if model not in ("pseudo", "rf"):
+        raise InputError("trap.model", f"expected 'pseudo' or 'rf', got {model!r}", source)
+    ref = species[0]
+    stray = _vec3(tr["stray_field"], "trap.stray_field", source, "field") if "stray_field" in tr else (0.0, 0.0, 0.0)
+    f_drive = None
+    if "f_drive" in tr:
+        f_drive = units.parse(tr["f_drive"], "frequency", "trap.f_drive", source)
+        if not f_drive > 0:
+            raise InputError("trap.f_drive", "expected a positive drive frequency", source)
+    rf_phase = 0.0
+    if "rf_phase" in tr:
+        rf_phase = None if tr["rf_phase"] == "random" else units.parse(tr["rf_phase"], "angle", "trap.rf_phase", source)
+    a = q = None
+    if "q" in tr or "a" in tr:
+        if f_drive is None:
+            raise InputError("trap.f_drive", "missing; Mathieu a and q need the drive frequency f_drive", source)
+        if "f_radial" in tr or "f_axial" in tr:
+            raise InputError("trap", "give either secular frequencies (f_radial, f_axial) or Mathieu parameters (a, q), not both", source)
+        q = tuple(float(x) for x in _numbers(_require(tr, "q", "trap", source, "3 Mathieu q values [q_x, q_y, q_z]"), "trap.q", source))
+        a = tuple(float(x) for x in _numbers(tr.get("a", [0.0, 0.0, 0.0]), "trap.a", source))
+        if abs(sum(q)) > 1e-9 * max(abs(x) for x in q) or abs(sum(a)) > 1e-9 * max(1e-300, max(abs(x) for x in a)):
+            raise InputError("trap.q", "Laplace's equation needs q_x + q_y + q_z = 0 and a_x + a_y + a_z = 0 (a point trap has q_x = q_y = -q_z/2)", source)
+        fsec = []
+        for u in range(3):
+            try:
+                beta = characteristic_exponent(a[u], q[u])
+            except InputError:
+                raise PhysicsError(f"trap.q[{u}]", f"the trap is unstable for (a, q) = ({a[u]:g}, {q[u]:g}) on axis {'xyz'[u]}: outside the first Mathieu stability region", source) from None
+            fsec.append(beta * f_drive / 2)
+        f_sec = tuple(fsec)
+    else:
+        fr = units.parse(_require(tr, "f_radial", "trap", source, "a radial secular frequency such as '1.1 MHz'"), "frequency", "trap.f_radial", source)
+        fz = units.parse(_require(tr, "f_axial", "trap", source, "an axial secular frequency such as '2.6 MHz'"), "frequency", "trap.f_axial", source)
+        split = units.parse(tr.get("radial_split", "0 Hz"), "frequency", "trap.radial_split", source)
+        if not fr > 0:
+            raise InputError("trap.f_radial", f"expected a positive frequency, got {tr['f_radial']!r}", source)
+        if not fz > 0:
+            raise InputError("trap.f_axial", f"expected a positive frequency, got {tr['f_axial']!r}", source)
+        if abs(split) >= 2 * fr:
+            raise InputError("trap.radial_split", "expected a split smaller than twice f_radial", source)
+        f_sec = (fr + split / 2, fr - split / 2, fz)
+        if f_drive is not None:
+            if max(f_sec) >= f_drive / 2:
+                raise PhysicsError("trap.f_drive", "secular frequencies must stay below half the drive frequency", source)
+            try:
+                a_arr, q_arr = solve_point_trap(f_drive, f_sec)
+            except InputError as e:
+                raise PhysicsError("trap", f"no stable point-trap (a, q) gives these secular frequencies at this drive: {e.expected}", source) from None
+            a, q = tuple(map(float, a_arr)), tuple(map(float, q_arr))
+    if model == "rf" and f_drive is None:
+        raise InputError("trap.f_drive", "missing; model = 'rf' needs the drive frequency", source)
+    trap = Trap(f_sec, ref.mass_kg, ref.charge_c, model, f_drive, a, q, stray, rf_phase)
+    # every species must be confined
+    try:
+        w2 = trap.omega_sq(np.array([s.mass_kg for s in species]), np.array([s.charge_c for s in species]))
+    except InputError:
+        raise PhysicsError("crystal.ions", "a species of this crystal is not stably trapped (outside the Mathieu stability region after scaling by its charge-to-mass ratio)", source) from None
+    if np.any(w2 <= 0):
+        raise PhysicsError("trap", "the trap does not confine every ion (a secular frequency squared is not positive for some species)", source)
+    return trap
+
+
+def _numbers(v, key, source):
+    if not isinstance(v, list) or len(v) != 3 or not all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in v):
+        raise InputError(key, f"expected a list of 3 numbers, got {v!r}", source)
+    return v
+
+
+def _pinning(raw, source) -> tuple:
+    pin = raw.get("pinning")
+    if pin is None:
+        return ()
+    items = pin if isinstance(pin, list) else [pin]
+    out = []
+    for i, it in enumerate(items):
+        sec = f"pinning[{i}]" if isinstance(pin, list) else "pinning"
+        _check_keys(it, sec, SECTIONS["pinning"], source)
+        order = _int(_require(it, "order", sec, source, "the multipole order n >= 2"), f"{sec}.order", source, 2, "the multipole order n")
+        strength = units.parse(_require(it, "strength", sec, source, f"a strength such as '{units.multipole_example(order)}'"),
+                               "custom", f"{sec}.strength", source, dimensionality=units.multipole_dimension(order),
+                               example=units.multipole_example(order))
+        angle = units.parse(it.get("angle", 0.0), "angle", f"{sec}.angle", source)
+        name = it.get("name", f"n{order}")
+        if not isinstance(name, str):
+            raise InputError(f"{sec}.name", "expected a string", source)
+        out.append(MultipoleTerm(order, strength, angle, name))
+    names = [t.name for t in out]
+    if len(set(names)) != len(names):
+        raise InputError("pinning", f"pinning terms need distinct names, got {names}", source)
+    return tuple(out)
+
+
+def _schedule(raw, pinning, f_start, source, base_dir) -> Schedule | None:
+    stages = raw.get("stage")
+    if stages is None:
+        return None
+    if not isinstance(stages, list) or not stages:
+        raise InputError("stage", "expected one or more [[stage]] tables", source)
+    prev_f = f_start
+    prev_k = [1.0] * len(pinning)
+    out, seen = [], set()
+    for i, st in enumerate(stages):
+        sec = f"stage[{i}]"
+        _check_keys(st, sec, SECTIONS["stage"], source)
+        name = st.get("name", f"stage{i}")
+        if not isinstance(name, str) or not name:
+            raise InputError(f"{sec}.name", "expected a non-empty string", source)
+        if name in seen:
+            raise InputError(f"{sec}.name", f"stage names must be unique; {name!r} repeats", source)
+        seen.add(name)
+        sec = f"stage.{name}"
+        dur = units.parse(_require(st, "duration", sec, source, "a duration such as '2 ms'"), "time", f"{sec}.duration", source)
+        if not dur > 0:
+            raise InputError(f"{sec}.duration", f"expected a positive duration, got {st['duration']!r}", source)
+
+        def freq(v, key):
+            return units.parse(v, "frequency", key, source)
+
+        fprof = parse_profile(st.get("f_rot", {}), prev_f, dur, freq, f"{sec}.f_rot", source, base_dir)
+        pspec = st.get("pinning", {})
+        profs = []
+        per_term = isinstance(pspec, dict) and pinning and all(k in {t.name for t in pinning} for k in pspec) and pspec
+        for j, term in enumerate(pinning):
+            spec = pspec.get(term.name, {}) if per_term else pspec
+            key = f"{sec}.pinning.{term.name}" if per_term else f"{sec}.pinning"
+
+            def mult(v, k, term=term):
+                if isinstance(v, str):
+                    val = units.parse(v, "custom", k, source, dimensionality=units.multipole_dimension(term.order),
+                                      example=units.multipole_example(term.order))
+                    return val / term.strength if term.strength else 0.0
+                if isinstance(v, bool) or not isinstance(v, (int, float)):
+                    raise InputError(k, f"expected a multiplier of the configured strength (e.g. 0.5) or a strength such as '{units.multipole_example(term.order)}'", source)
+                return float(v)
+
+            profs.append(parse_profile(spec, prev_k[j], dur, mult, key, source, base_dir))
+        if pspec and not pinning:
+            raise InputError(f"{sec}.pinning", "the stage schedules pinning but the config has no [pinning]", source)
+        stage = Stage(name, dur, fprof, tuple(profs))
+        prev_f = float(fprof.value(dur))
+        prev_k = [float(p.value(dur)) for p in profs]
+        out.append(stage)
+    return Schedule(tuple(out), tuple(t.name for t in pinning))
+
+
+def _initial(raw, source) -> Initial:
+    ini = raw.get("initial", {})
+    _check_keys(ini, "initial", SECTIONS["initial"], source)
+    temp = units.parse(ini.get("temperature", 0.0), "temperature", "initial.temperature", source)
+    if temp < 0:
+        raise InputError("initial.temperature", "expected a non-negative temperature", source)
+    wig = ini.get("wigner", True)
+    if not isinstance(wig, bool):
+        raise InputError("initial.wigner", "expected true or false", source)
+    occ = ini.get("occupations", {})
+    if not isinstance(occ, dict):
+        raise InputError("initial.occupations", "expected a table {selector = mean phonon number}", source)
+    pairs = []
+    for k, v in occ.items():
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or v < 0:
+            raise InputError(f"initial.occupations.{k}", "expected a non-negative mean phonon number", source)
+        pairs.append((k, float(v)))
+    return Initial(temp, wig, tuple(pairs))
+
+
+def _run(raw, source) -> RunOptions:
+    r = raw.get("run", {})
+    _check_keys(r, "run", SECTIONS["run"], source)
+    traj = _int(r.get("trajectories", 100), "run.trajectories", source, 1, "a number of trajectories")
+    seed = _int(r.get("seed", 0), "run.seed", source, 0, "a non-negative 64-bit seed")
+    if seed >= 2**64:
+        raise InputError("run.seed", "expected a seed below 2^64", source)
+    dt = r.get("dt", "auto")
+    dt_s = None if dt == "auto" else units.parse(dt, "time", "run.dt", source)
+    if dt_s is not None and not dt_s > 0:
+        raise InputError("run.dt", "expected a positive time step or 'auto'", source)
+    integ = r.get("integrator", "verlet")
+    if integ not in INTEGRATORS:
+        raise InputError("run.integrator", f"expected one of {list(INTEGRATORS)}, got {integ!r}", source)
+    chunk = _int(r.get("chunk", 64), "run.chunk", source, 1, "a chunk size")
+    threads = _int(r.get("threads", 0), "run.threads", source, 0, "a thread count (0: all cores)")
+    spp = _int(r.get("steps_per_period", 40), "run.steps_per_period", source, 8, "steps per fastest period")
+    return RunOptions(traj, seed, dt_s, integ, chunk, threads, spp)
+
+
+def _observe(raw, source) -> Observe:
+    o = raw.get("observe", {})
+    _check_keys(o, "observe", SECTIONS["observe"], source)
+    lr = units.parse(o.get("loss_radius", "100 um"), "length", "observe.loss_radius", source)
+    if not lr > 0:
+        raise InputError("observe.loss_radius", "expected a positive radius", source)
+    si = o.get("series_interval")
+    si_s = units.parse(si, "time", "observe.series_interval", source) if si is not None else None
+    if si_s is not None and not si_s > 0:
+        raise InputError("observe.series_interval", "expected a positive interval", source)
+    return Observe(lr, si_s)
+
+
+def from_dict(raw: dict, source: str = "<dict>", base_dir=None) -> Config:
+    """Validate a parsed TOML dict into a :class:`Config`."""
+    if not isinstance(raw, dict):
+        raise InputError("", "expected a TOML document", source)
+    for k in raw:
+        if k not in SECTIONS:
+            raise InputError(k, f"unknown section; expected one of {sorted(SECTIONS)}", source)
+    species = _species_list(raw, source)
+    trap = _trap(raw, species, source)
+    pinning = _pinning(raw, source)
+    rot = raw.get("rotation", {})
+    _check_keys(rot, "rotation", SECTIONS["rotation"], source)
+    f_start = units.parse(rot.get("f_start", 0.0), "frequency", "rotation.f_start", source)
+    schedule = _schedule(raw, pinning, f_start, source, base_dir)
+    cfg = Config(source=source, text=_dump(raw), species=species, trap=trap, pinning=pinning, schedule=schedule,
+                 initial=_initial(raw, source), run=_run(raw, source), observe=_observe(raw, source),
+                 f_start_hz=f_start, search_seed=_int(raw["crystal"].get("search_seed", 0), "crystal.search_seed", source, 0),
+                 noise=raw.get("noise", {}), raw=raw)
+    _check_rotation(cfg)
+    return cfg
+
+
+def _check_rotation(cfg: Config) -> None:
+    """Refuse a schedule whose rotation the radial confinement cannot hold."""
+    if cfg.schedule is None:
+        return
+    w2 = cfg.trap.omega_sq(cfg.masses_kg, cfg.charges_c)
+    f_lim = math.sqrt(float(np.min(w2[:, :2]))) / (2 * math.pi)
+    f_max = cfg.schedule.max_f_rot_hz()
+    if f_max >= f_lim:
+        k = int(np.argmax([np.max(np.abs(s.f_rot.value(np.linspace(0, s.duration_s, 201)))) for s in cfg.schedule.stages]))
+        raise PhysicsError(f"stage.{cfg.schedule.stages[k].name}.f_rot",
+                           f"rotation at {f_max:.6g} Hz is faster than the radial confinement can hold (lowest radial secular frequency {f_lim:.6g} Hz)",
+                           cfg.source)
+
+
+def _dump(raw: dict) -> str:
+    """TOML text of the (overridden) config, stored with results."""
+    lines: list[str] = []
+
+    def val(v):
+        if isinstance(v, bool):
+            return "true" if v else "false"
+        if isinstance(v, str):
+            return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+        if isinstance(v, (int, float)):
+            return repr(v)
+        if isinstance(v, list):
+            return "[" + ", ".join(val(x) for x in v) + "]"
+        if isinstance(v, dict):
+            return "{ " + ", ".join(f"{_k(k)} = {val(x)}" for k, x in v.items()) + " }"
+        raise TypeError(type(v))
+
+    def table(prefix, d):
+        scal = {k: v for k, v in d.items() if not isinstance(v, dict) and not (isinstance(v, list) and v and all(isinstance(x, dict) for x in v))}
+        if scal or not prefix:
+            if prefix:
+                lines.append(f"[{prefix}]")
+            for k, v in scal.items():
+                lines.append(f"{_k(k)} = {val(v)}")
+            lines.append("")
+        for k, v in d.items():
+            if isinstance(v, dict):
+                table(f"{prefix}.{_k(k)}" if prefix else _k(k), v)
+            elif isinstance(v, list) and v and all(isinstance(x, dict) for x in v):
+                for item in v:
+                    lines.append(f"[[{prefix + '.' if prefix else ''}{_k(k)}]]")
+                    for kk, vv in item.items():
+                        lines.append(f"{_k(kk)} = {val(vv)}")
+                    lines.append("")
+
+    table("", raw)
+    return "\n".join(lines).strip() + "\n"
+
+
+def _k(k: str) -> str:
+    import re
+
+    return k if re.fullmatch(r"[A-Za-z0-9_-]+", k) else '"' + k + '"'

@@ -1,0 +1,97 @@
+"""Text and JSON renderings of results for the command line."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from . import __version__
+
+TWO_PI = 2.0 * np.pi
+
+
+def _pin_notes(cfg, cr, margin) -> list[str]:
+    notes = []
+    if not margin:
+        return notes
+    n = cr.positions_m.shape[0]
+    for order, pins in margin["pins"].items():
+        if not pins:
+            notes.append(f"order {order} does not pin this crystal: its order-{order} moment vanishes "
+                         f"(a regular {n}-gon of identical ions feels only multipole orders that are multiples of {n})")
+    return notes
+
+
+def crystal_json(cfg, cr, margin) -> dict:
+    """JSON-ready description of a crystal, with what it takes to reproduce it."""
+    trap_hz = (np.sqrt(cfg.trap.omega_sq(cfg.masses_kg[:1], cfg.charges_c[:1]))[0] / TWO_PI).tolist()
+    out = {
+        "mdrotor_version": __version__,
+        "config": cfg.source,
+        "n_ions": int(cr.positions_m.shape[0]),
+        "species": [s.name for s in cfg.species],
+        "positions_m": cr.positions_m.tolist(),
+        "masses_kg": cfg.masses_kg.tolist(),
+        "charges_c": cfg.charges_c.tolist(),
+        "trap_freqs_hz": trap_hz,
+        "stray_field_v_per_m": list(cfg.trap.stray_field_v_per_m),
+        "pinning": [{"name": t.name, "order": t.order, "coefficient_si": t.strength, "angle_rad": t.angle_rad,
+                     "convention": "Phi = Re[c (x + i y)^n exp(-i n angle)], c in V/m^n"} for t in cfg.pinning],
+        "f_rot_hz": cr.f_rot_hz,
+        "frame": "rotating" if cr.f_rot_hz else "lab",
+        "energy_j": cr.energy_j,
+        "moment_of_inertia_kg_m2": cr.moment_of_inertia_kg_m2,
+        "hbar_over_I_hz": cr.hbar_over_I_hz,
+        "L_hbar": cr.L_hbar,
+        "nearest_distance_m": cr.nearest_distances_m().tolist(),
+        "modes": [{"freq_hz": float(f), "label": lab, "kind": k, "plane": p}
+                  for f, lab, k, p in zip(cr.modes.freq_hz, cr.modes.labels, cr.modes.kinds, cr.modes.planes)],
+        "warnings": list(cr.warnings),
+    }
+    if margin is not None:
+        out["libration_hz"] = margin["f_lib_hz"]
+        out["max_angular_acceleration_rad_s2"] = margin["alpha_max_rad_s2"]
+        out["pinned_by_order"] = {str(k): bool(v) for k, v in margin["pins"].items()}
+        out["notes"] = _pin_notes(cfg, cr, margin)
+    return out
+
+
+def crystal_text(cfg, cr, margin) -> str:
+    """Human-readable crystal report."""
+    lines = []
+    n = cr.positions_m.shape[0]
+    frame = f"rotating frame, f_rot = {cr.f_rot_hz / 1e3:.6g} kHz" if cr.f_rot_hz else "lab frame"
+    lines.append(f"crystal of {n} ion(s) ({', '.join(sorted(set(s.name for s in cfg.species)))}) in the {frame}")
+    lines.append(f"config: {cfg.source}")
+    f = np.sqrt(cfg.trap.omega_sq(cfg.masses_kg[:1], cfg.charges_c[:1]))[0] / TWO_PI
+    lines.append(f"trap ({cfg.trap.model}): secular x, y, z = {f[0] / 1e3:.6g}, {f[1] / 1e3:.6g}, {f[2] / 1e3:.6g} kHz")
+    lines.append("")
+    lines.append("  ion   species        x (um)      y (um)      z (um)   nearest (um)")
+    dmin = cr.nearest_distances_m()
+    for i, (r, s) in enumerate(zip(cr.positions_m, cfg.species)):
+        lines.append(f"  {i:3d}   {s.name:<10s} {r[0] * 1e6:11.4f} {r[1] * 1e6:11.4f} {r[2] * 1e6:11.4f}   {dmin[i] * 1e6:10.4f}")
+    lines.append("")
+    I = cr.moment_of_inertia_kg_m2
+    lines.append(f"moment of inertia about z   I = {I:.6e} kg m^2")
+    lines.append(f"rotational constant         hbar/(2 pi I) = {cr.hbar_over_I_hz:.6g} Hz")
+    lines.append(f"angular momentum at f_rot   L = {cr.L_hbar:.6g} hbar")
+    lines.append(f"potential energy            {cr.energy_j:.6e} J")
+    lines.append("")
+    lines.append("  mode   freq (kHz)   label              kind           plane")
+    for k, (fr, lab, kind, pl) in enumerate(zip(cr.modes.freq_hz, cr.modes.labels, cr.modes.kinds, cr.modes.planes)):
+        lines.append(f"  {k:4d}   {fr / 1e3:10.4f}   {lab:<18s} {kind:<14s} {pl}")
+    if not any(lab == "libration" for lab in cr.modes.labels) and n > 1:
+        lines.append("  (the rotation about z is a free zero mode: reported as L, not listed)")
+    if margin is not None:
+        lines.append("")
+        for t in cfg.pinning:
+            pins = margin["pins"].get(t.order, False)
+            lines.append(f"pinning {t.name}: order {t.order}, c = {t.strength:.4g} V/m^{t.order}: "
+                         f"{'pins' if pins else 'does NOT pin'} this crystal (|M_{t.order}| = {margin['moments'][t.order]:.3e} C m^{t.order})")
+        if margin["f_lib_hz"] > 0:
+            lines.append(f"libration frequency (rigid)   {margin['f_lib_hz'] / 1e3:.6g} kHz")
+            alpha = margin["alpha_max_rad_s2"]
+            lines.append(f"largest angular acceleration before a slip   {alpha:.4e} rad/s^2"
+                         f" (an f_rot ramp of {alpha / TWO_PI / 1e6:.4g} kHz/ms)")
+        for note in _pin_notes(cfg, cr, margin):
+            lines.append(f"note: {note}")
+    return "\n".join(lines)

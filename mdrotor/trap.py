@@ -1,0 +1,86 @@
+"""The trap: harmonic pseudopotential per ion, static imperfections.
+
+Pseudopotential model (per ion i, axis u):
+
+    U_i = 1/2 m_i w_{u,i}^2 u_i^2 - Q_i E_stray . r_i
+
+The secular frequencies are given for the reference species (the first
+species of the crystal). For other species of a mixed crystal they scale as
+in a Paul trap: the RF pseudopotential part of w^2 scales with (Q/m)^2 and
+the DC part with Q/m (Leibfried et al., Rev. Mod. Phys. 75, 281 (2003),
+lowest order: w_u^2 = (W/2)^2 (a_u + q_u^2/2) with a ~ Q/m, q ~ Q/m).
+Given RF parameters (f_drive, a, q) the scaled secular frequency of each
+species is exact (Mathieu characteristic exponent, :mod:`mdrotor.mathieu`).
+Given only secular frequencies we assume a linear-trap split: the axial
+confinement is all DC, and the radial one is an RF pseudopotential minus
+the DC defocusing w_z^2/2 that Laplace's equation imposes (the in-plane
+anisotropy, ``radial_split``, is taken as DC).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+TWO_PI = 2.0 * np.pi
+
+
+@dataclass(frozen=True)
+class Trap:
+    """Trap description for the reference species.
+
+    Attributes
+    ----------
+    f_secular_hz : tuple of 3 floats
+        Secular frequencies (x, y, z) of the reference species, Hz.
+    ref_mass_kg, ref_charge_c : float
+        Reference species.
+    model : str
+        ``"pseudo"`` or ``"rf"``.
+    f_drive_hz : float or None
+        RF drive frequency (needed for ``rf``, optional for ``pseudo``).
+    a, q : tuple of 3 floats or None
+        Mathieu parameters of the reference species, when known.
+    stray_field_v_per_m : tuple of 3 floats
+        Static uniform stray field.
+    rf_phase_rad : float or None
+        RF phase at t = 0 (``None``: random per trajectory).
+    """
+
+    f_secular_hz: tuple
+    ref_mass_kg: float
+    ref_charge_c: float
+    model: str = "pseudo"
+    f_drive_hz: float | None = None
+    a: tuple | None = None
+    q: tuple | None = None
+    stray_field_v_per_m: tuple = (0.0, 0.0, 0.0)
+    rf_phase_rad: float | None = 0.0
+
+    def omega_sq(self, masses_kg: np.ndarray, charges_c: np.ndarray) -> np.ndarray:
+        """Per-ion, per-axis secular angular frequency squared (N, 3); rad^2/s^2."""
+        s = (np.asarray(charges_c) / np.asarray(masses_kg)) / (self.ref_charge_c / self.ref_mass_kg)
+        out = np.empty((len(s), 3))
+        if self.a is not None and self.q is not None and self.f_drive_hz is not None:
+            from .mathieu import characteristic_exponent
+
+            for i, si in enumerate(s):
+                for u in range(3):
+                    beta = characteristic_exponent(si * self.a[u], si * self.q[u])
+                    out[i, u] = (beta * np.pi * self.f_drive_hz) ** 2
+            return out
+        w2 = (TWO_PI * np.asarray(self.f_secular_hz)) ** 2
+        w2_dc = np.array([-0.5 * w2[2], -0.5 * w2[2], w2[2]])
+        # anisotropy taken as DC: split the radial DC part around the mean
+        mean_r = 0.5 * (w2[0] + w2[1])
+        w2_dc[0] += w2[0] - mean_r
+        w2_dc[1] += w2[1] - mean_r
+        w2_rf = w2 - w2_dc
+        for i, si in enumerate(s):
+            out[i] = si * w2_dc + si**2 * w2_rf
+        return out
+
+    def spring_constants(self, masses_kg, charges_c) -> np.ndarray:
+        """K_{i,u} = m_i w_{u,i}^2 (N, 3); N/m."""
+        return np.asarray(masses_kg)[:, None] * self.omega_sq(masses_kg, charges_c)

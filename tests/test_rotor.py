@@ -1,0 +1,191 @@
+"""Quantum-rotor quantities (mdrotor.rotor).
+
+Reference spectrum: the free planar rigid rotor, E_L = hbar^2 L^2 / (2 I),
+L integer (common practice, no source); constants from scipy.constants
+(CODATA). Spin statistics and the exchange sign: REFERENCES.md "Rotor
+coherence" (odd number of fermionic constituents = fermion, common
+practice, no source; an N-cycle has sign (-1)^(N-1)).
+"""
+
+import itertools
+
+import numpy as np
+import pytest
+from scipy.constants import electron_mass, h, hbar, atomic_mass
+
+from mdrotor import rotor
+from mdrotor.errors import InputError
+
+
+def _pair_inertia():
+    """Two 40Ca+ ions 5 um apart rotating about their midpoint, kg m^2."""
+    import periodictable
+
+    m = periodictable.Ca[40].mass * atomic_mass - electron_mass   # isotope mass from periodictable
+    r = 2.5e-6
+    return 2 * m * r**2
+
+
+def _energy(L, I):
+    return hbar**2 * np.asarray(L, dtype=float) ** 2 / (2 * I)
+
+
+# ---------------------------------------------------------------------------
+# spectrum
+# ---------------------------------------------------------------------------
+def test_transition_frequencies_match_energy_differences():
+    # free planar rotor spectrum (common practice, no source)
+    I = _pair_inertia()
+    for L in (0, 1, 17, 2500, -40):
+        f_rot = hbar * L / (2 * np.pi * I)
+        lines = rotor.transition_frequencies_hz(f_rot, I, k_max=5)
+        direct = (_energy(L + lines.k, I) - _energy(L, I)) / h
+        # rounding only: E_L / h is a difference of numbers ~ L^2 quanta
+        np.testing.assert_allclose(lines.centre_hz, direct, rtol=1e-12, atol=1e-12)
+        np.testing.assert_allclose(rotor.L_from_f_rot(f_rot, I), L, rtol=0, atol=1e-9)
+
+
+def test_rotational_quantum_is_second_difference_of_spectrum():
+    # (E_{L+1} - 2 E_L + E_{L-1}) / h = hbar / (2 pi I) for E_L ~ L^2
+    I = _pair_inertia()
+    L = 300
+    second = (_energy(L + 1, I) - 2 * _energy(L, I) + _energy(L - 1, I)) / h
+    np.testing.assert_allclose(rotor.hbar_over_I_hz(I), second, rtol=1e-9)  # cancellation of L^2 ~ 1e5
+
+
+def test_line_width_is_spread_of_line_over_L_distribution():
+    # The line L -> L + k over an ensemble of integer L: its standard
+    # deviation, computed directly from the spectrum, is k hbar sigma_L/(2 pi I)
+    # (the line is linear in L). Discrete, non-Gaussian ensemble on purpose.
+    I = _pair_inertia()
+    rng = np.random.default_rng(np.random.SeedSequence(4))
+    L = rng.integers(800, 900, 5000)
+    p = rng.uniform(0, 1, 5000)
+    p /= p.sum()
+    mean_L = np.sum(p * L)
+    sigma_L = np.sqrt(np.sum(p * (L - mean_L) ** 2))
+    f_rot = hbar * mean_L / (2 * np.pi * I)
+    lines = rotor.transition_frequencies_hz(f_rot, I, k_max=4, sigma_L_hbar=sigma_L)
+    for k, centre, width in zip(*lines):
+        f = (_energy(L + k, I) - _energy(L, I)) / h
+        mean_f = np.sum(p * f)
+        std_f = np.sqrt(np.sum(p * (f - mean_f) ** 2))
+        np.testing.assert_allclose(width, std_f, rtol=1e-9)
+        # centre at the mean L: the mean of a linear function (rounding only)
+        np.testing.assert_allclose(centre, mean_f, rtol=1e-12)
+
+
+# ---------------------------------------------------------------------------
+# exchange and revival
+# ---------------------------------------------------------------------------
+def _orientation(L_low, t, I, n_grid=512):
+    """Mean orientation arg<e^{i phi}> of (|L> + |L+1>)/sqrt2 after time t,
+    from |psi(phi, t)|^2 on a grid, psi = sum_L c_L e^{i L phi - i E_L t/hbar}."""
+    phi = np.linspace(0, 2 * np.pi, n_grid, endpoint=False)
+    Ls = np.array([L_low, L_low + 1])
+    # E_L t / hbar = (hbar t / 2 I) L^2
+    phases = np.outer(phi, Ls) - (hbar * t / (2 * I)) * Ls.astype(float) ** 2
+    psi = np.exp(1j * phases).sum(axis=1) / np.sqrt(2)
+    dens = np.abs(psi) ** 2
+    return np.angle(np.sum(dens * np.exp(1j * phi)))
+
+
+@pytest.mark.parametrize("N", [2, 3, 4])
+@pytest.mark.parametrize("k", [1, 2, 5])
+def test_exchange_and_revival_from_wavepacket_orientation(N, k):
+    # A packet (|L> + |L+1>) turns rigidly at hbar (L + 1/2) / I: its
+    # orientation arg<e^{i phi}> = (E_{L+1} - E_L) t / hbar (planar-rotor
+    # spectrum, common practice). Two packets k quanta apart must have turned
+    # by 2 pi / N relative to each other after the exchange time, by pi after
+    # half the revival time and by 2 pi after the revival time.
+    I = _pair_inertia()
+    L = 37
+    t_ex = rotor.exchange_time_s(I, k, N)
+    t_rev = rotor.revival_time_s(I, k)
+    np.testing.assert_allclose(t_rev, N * t_ex, rtol=1e-14)
+
+    def rel(t):
+        d = _orientation(L + k, t, I) - _orientation(L, t, I)
+        return np.mod(d, 2 * np.pi)
+
+    # phases up to hbar L^2 t / I ~ 1e4 rad: rounding ~ 1e-12 rad
+    np.testing.assert_allclose(rel(t_ex), 2 * np.pi / N, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(rel(0.5 * t_rev), np.pi, rtol=0, atol=1e-9)
+    assert min(rel(t_rev), 2 * np.pi - rel(t_rev)) < 1e-9
+    # sign of k is irrelevant
+    assert rotor.exchange_time_s(I, -k, N) == t_ex
+
+
+# ---------------------------------------------------------------------------
+# ladder and statistics
+# ---------------------------------------------------------------------------
+def _cycle_sign(N):
+    """Sign of the cyclic permutation i -> i+1 mod N by counting inversions."""
+    perm = [(i + 1) % N for i in range(N)]
+    inv = sum(1 for a, b in itertools.combinations(range(N), 2) if perm[a] > perm[b])
+    return -1 if inv % 2 else 1
+
+
+@pytest.mark.parametrize("N", [2, 3, 4])
+@pytest.mark.parametrize("stat", ["boson", "fermion"])
+def test_allowed_ladder_from_exchange_sign(N, stat):
+    # REFERENCES.md: a 2 pi/N rotation is a cyclic permutation; for identical
+    # fermions it gives the permutation sign, for bosons +1. The rotor factor
+    # e^{i L phi} gives e^{2 pi i L / N}; the allowed L are those where the
+    # two agree. Permutation sign by inversion count (common practice).
+    eps = _cycle_sign(N) if stat == "fermion" else 1
+    assert _cycle_sign(N) == (-1) ** (N - 1)   # REFERENCES.md, "Rotor coherence"
+    allowed = {L for L in range(-3 * N, 3 * N + 1)
+               if np.isclose(np.exp(2j * np.pi * L / N), eps, atol=1e-12)}
+    mod, res = rotor.allowed_L_ladder(N, stat)
+    assert {L for L in range(-3 * N, 3 * N + 1) if L % mod == res} == allowed
+
+
+def test_ladder_explicit_values_and_no_restriction_cases():
+    # REFERENCES.md: (-1)^(N-1) sign for fermions
+    assert rotor.allowed_L_ladder(2, "fermion") == (2, 1)
+    assert rotor.allowed_L_ladder(3, "fermion") == (3, 0)
+    assert rotor.allowed_L_ladder(4, "fermion") == (4, 2)
+    assert rotor.allowed_L_ladder(4, "boson") == (4, 0)
+    assert rotor.allowed_L_ladder(1, "fermion") == (1, 0)
+    assert rotor.allowed_L_ladder(3, "unknown") == (1, 0)
+    assert rotor.allowed_L_ladder(4, "fermion", identical=False) == (1, 0)
+
+
+def test_statistics_of_known_particles():
+    # Textbook cases (common practice, no source): helium-4 atom boson,
+    # helium-3 atom fermion (superfluid He-3 needs pairing), proton fermion,
+    # deuteron and alpha particle bosons.
+    import periodictable
+
+    Z = {s: periodictable.elements.symbol(s).number for s in ("H", "He", "Be", "Ca", "Sr", "Yb")}
+    assert rotor.statistics_of(4, Z["He"], 0) == "boson"
+    assert rotor.statistics_of(3, Z["He"], 0) == "fermion"
+    assert rotor.statistics_of(1, Z["H"], 1) == "fermion"
+    assert rotor.statistics_of(2, Z["H"], 1) == "boson"
+    assert rotor.statistics_of(4, Z["He"], 2) == "boson"
+    # trapped-ion species: nucleons + electrons (Z - 1)
+    assert rotor.statistics_of(40, Z["Ca"], 1) == "fermion"    # 40 + 19
+    assert rotor.statistics_of(43, Z["Ca"], 1) == "boson"      # 43 + 19
+    assert rotor.statistics_of(9, Z["Be"], 1) == "boson"       # 9 + 3
+    assert rotor.statistics_of(88, Z["Sr"], 1) == "fermion"    # 88 + 37
+    assert rotor.statistics_of(171, Z["Yb"], 1) == "boson"     # 171 + 69
+
+
+def test_bad_input_names_the_argument():
+    with pytest.raises(InputError, match="I_kg_m2: a finite number > 0"):
+        rotor.hbar_over_I_hz(-1.0)
+    with pytest.raises(InputError, match="k: a nonzero integer"):
+        rotor.exchange_time_s(1e-36, 0, 3)
+    with pytest.raises(InputError, match="N: an integer >= 1"):
+        rotor.exchange_time_s(1e-36, 1, 0)
+    with pytest.raises(InputError, match="k_max: an integer >= 1"):
+        rotor.transition_frequencies_hz(1e5, 1e-36, 0)
+    with pytest.raises(InputError, match="sigma_L_hbar: a finite number >= 0"):
+        rotor.transition_frequencies_hz(1e5, 1e-36, 2, sigma_L_hbar=-1)
+    with pytest.raises(InputError, match="statistics: one of boson, fermion, unknown"):
+        rotor.allowed_L_ladder(3, "anyon")
+    with pytest.raises(InputError, match="charge: at most the atomic number"):
+        rotor.statistics_of(40, 20, 21)
+    with pytest.raises(InputError, match="mass_number: an integer"):
+        rotor.statistics_of(40.5, 20, 1)
