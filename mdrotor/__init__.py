@@ -24,8 +24,8 @@ def load_config(path_or_dict, overrides=()):
 
 def crystal(cfg, f_rot_hz=None):
     """Equilibrium, normal modes and rotor quantities of the config's crystal
-    at ``f_rot_hz`` (Hz); see :func:`mdrotor.crystal.crystal_from_config`."""
-    from .crystal import crystal_from_config
+    at ``f_rot_hz`` (Hz); see :func:`mdrotor.statics.crystal_from_config`."""
+    from .statics import crystal_from_config
 
     if not hasattr(cfg, "trap"):
         cfg = load_config(cfg)
@@ -34,7 +34,7 @@ def crystal(cfg, f_rot_hz=None):
 
 def run(cfg, **kwargs):
     """Monte-Carlo spin-up / release run; returns a :class:`mdrotor.result.Result`."""
-    from .run import run as _run
+    from .runner import run as _run
 
     if not hasattr(cfg, "trap"):
         cfg = load_config(cfg)

@@ -75,7 +75,7 @@ def cmd_crystal(args) -> int:
     import numpy as np
 
     from . import units
-    from .crystal import crystal_from_config, pinning_margin
+    from .statics import crystal_from_config, pinning_margin
     from .report_text import crystal_json, crystal_text
 
     cfg = _load(args)
@@ -97,7 +97,7 @@ def cmd_crystal(args) -> int:
 
 
 def cmd_run(args) -> int:
-    from .run import cli_run
+    from .runner import cli_run
 
     return cli_run(args)
 

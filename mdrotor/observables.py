@@ -1,0 +1,242 @@
+"""Observables of raw trajectory states (vectorised over trajectories).
+
+At an observation time every trajectory gets:
+
+* ``L_hbar``: L_z of all ions about the trap axis, in units of hbar;
+  ``L_com_hbar``: about the centre of mass.
+* ``f_rot_hz``: its own rotation rate w / 2 pi with w = L_com / I_com
+  (I_com of the instantaneous configuration about the centre of mass).
+* ``lag_rad``, ``slips``: orientation lag behind the pinning angle, wrapped
+  into (-pi/n, pi/n], and the net number of pinning wells slipped
+  (tracked inside the kernel; see :mod:`mdrotor.kernels`).
+* ``lost`` (an ion beyond the loss radius), ``reordered`` (ions changed
+  sites: the best rotation with the original labels leaves a site
+  assignment, by :func:`scipy.optimize.linear_sum_assignment`, that is not
+  the identity), ``nonfinite``.
+* ``mode_n``: phonon numbers of the co-rotating-frame modes (module
+  docstring of :mod:`mdrotor.statics`): the deviations from the equilibrium
+  of the crystal rotating at w (centrifugally stretched) are projected onto
+  its gyroscopic modes; n_k = E_k / (hbar w_k) - 1/2 with Wigner sampling.
+  While the pinning is on, the frame is the pinning's (w = 2 pi f_rot(t),
+  the pinning static in it) and the libration is one of the modes. When it
+  is off, each trajectory is measured about the crystal rotating at its own
+  w; equilibria are computed on a grid of w spanning the ensemble (spacing
+  <= 200 Hz) and interpolated linearly, modes taken from the nearest node.
+
+Status bits: 1 slipped, 2 lost ion, 4 reordered, 8 non-finite (0: ok).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+import numpy as np
+from scipy import constants as sc
+
+HBAR = sc.hbar
+TWO_PI = 2.0 * np.pi
+STATUS_BITS = {"slipped": 1, "lost": 2, "reordered": 4, "nonfinite": 8}
+W_GRID_HZ = 200.0
+
+
+@dataclass
+class ModeFrame:
+    """Equilibria and modes used to measure one observation."""
+
+    f_hz: np.ndarray            # (K,) frame rotation rates
+    r_eq: np.ndarray            # (K, N, 3) equilibria (aligned, same labels)
+    modes: list                 # K Modes
+    pinned: bool
+
+
+def _kabsch_angle(z_eq: np.ndarray, z: np.ndarray, m: np.ndarray) -> np.ndarray:
+    """Best rotation angle phi (per trajectory) mapping z_eq onto z:
+    phi = arg sum_i m_i conj(z_eq,i) z_i. z_eq and z complex (N, T)."""
+    if z_eq.ndim != 2 or z.ndim != 2:
+        raise ValueError("z_eq and z must be (N, T)")
+    return np.angle(np.sum(m[:, None] * np.conj(z_eq) * z, axis=0))
+
+
+def _rotate(a: np.ndarray, phi: np.ndarray) -> np.ndarray:
+    """Rotate the x, y components of a (3, N, T) by phi (T,) about z."""
+    c, s = np.cos(phi), np.sin(phi)
+    out = a.copy()
+    out[0] = c * a[0] - s * a[1]
+    out[1] = s * a[0] + c * a[1]
+    return out
+
+
+def angular_momentum(pos, vel, m):
+    """L_z about the axis and about the centre of mass (J s), and I_com."""
+    lz = np.sum(m[:, None] * (pos[0] * vel[1] - pos[1] * vel[0]), axis=0)
+    mt = np.sum(m)
+    xc = np.sum(m[:, None] * pos[0], axis=0) / mt
+    yc = np.sum(m[:, None] * pos[1], axis=0) / mt
+    vxc = np.sum(m[:, None] * vel[0], axis=0) / mt
+    vyc = np.sum(m[:, None] * vel[1], axis=0) / mt
+    lcom = lz - mt * (xc * vyc - yc * vxc)
+    icom = np.sum(m[:, None] * ((pos[0] - xc) ** 2 + (pos[1] - yc) ** 2), axis=0)
+    return lz, lcom, icom
+
+
+def mode_frame(plan, t_s: float, w_traj: np.ndarray, pinned: bool) -> ModeFrame:
+    """Equilibria and modes to measure trajectories at time t."""
+    from .statics import compute_crystal
+
+    sched = plan.schedule
+    if pinned:
+        f = float(sched.f_rot_hz(t_s)) if sched is not None else plan.f0_hz
+        theta = float(sched.theta_rad(t_s)) if sched is not None else 0.0
+        scales = plan.pin_scales(t_s)
+        pot = plan.potential(f, theta, scales)
+        start = _rotate_positions(plan.crystal0.positions_m, theta - plan.theta0)
+        cr = compute_crystal(pot, f, start=start)
+        return ModeFrame(np.array([f]), cr.positions_m[None], [cr.modes], True)
+    ok = np.isfinite(w_traj)
+    wmin, wmax = (np.min(w_traj[ok]), np.max(w_traj[ok])) if np.any(ok) else (0.0, 0.0)
+    k = int(np.clip(1 + np.ceil((wmax - wmin) / (TWO_PI * W_GRID_HZ)), 1, 64))
+    fs = np.linspace(wmin, wmax, k) / TWO_PI
+    r_list, modes = [], []
+    start = plan.crystal0.positions_m
+    ref = None
+    for f in fs:
+        cr = compute_crystal(plan.potential(f, 0.0, np.zeros(len(plan.pin_orders))), f, start=start)
+        r = cr.positions_m
+        if ref is not None:  # align orientation to the previous node (same labels)
+            phi = _kabsch_angle((ref[:, 0] + 1j * ref[:, 1])[:, None], (r[:, 0] + 1j * r[:, 1])[:, None], plan.masses)[0]
+            r = _rotate_positions(r, -phi)
+            cr = compute_crystal(plan.potential(f, 0.0, np.zeros(len(plan.pin_orders))), f, start=r)
+            r = cr.positions_m
+        ref = r
+        start = r
+        r_list.append(r)
+        modes.append(cr.modes)
+    return ModeFrame(fs, np.array(r_list), modes, False)
+
+
+def v_rigid_gen(r_eq: np.ndarray, wf: np.ndarray) -> np.ndarray:
+    """z x (w z x r) = -w (x, y, 0): how a small rotation changes the
+    rigid-rotation velocity; r_eq (T, N, 3), wf (T,) rad/s."""
+    out = np.zeros_like(r_eq)
+    out[:, :, 0] = -wf[:, None] * r_eq[:, :, 0]
+    out[:, :, 1] = -wf[:, None] * r_eq[:, :, 1]
+    return out
+
+
+def _rotate_positions(r: np.ndarray, phi: float) -> np.ndarray:
+    c, s = np.cos(phi), np.sin(phi)
+    out = r.copy()
+    out[:, 0] = c * r[:, 0] - s * r[:, 1]
+    out[:, 1] = s * r[:, 0] + c * r[:, 1]
+    return out
+
+
+def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarray) -> dict:
+    """All per-trajectory observables at time ``t_s`` (see module docstring)."""
+    from scipy.optimize import linear_sum_assignment
+
+    m = plan.masses
+    n_traj = pos.shape[2]
+    nonfinite = ~np.all(np.isfinite(pos), axis=(0, 1)) | ~np.all(np.isfinite(vel), axis=(0, 1))
+    safe_pos = np.where(nonfinite[None, None], 0.0, pos)
+    safe_vel = np.where(nonfinite[None, None], 0.0, vel)
+    lz, lcom, icom = angular_momentum(safe_pos, safe_vel, m)
+    w = np.where(icom > 0, lcom / np.where(icom > 0, icom, 1.0), 0.0)
+    lost = np.any(safe_pos[0] ** 2 + safe_pos[1] ** 2 + safe_pos[2] ** 2 > plan.loss_radius_m**2, axis=0)
+    out = {"L_hbar": lz / HBAR, "L_com_hbar": lcom / HBAR, "f_rot_hz": w / TWO_PI,
+           "lost": lost, "nonfinite": nonfinite}
+    # lag and slips (from the kernel's unwrapped phase)
+    if plan.lag_n > 0:
+        n = plan.lag_n
+        lag_unwrapped = -(lag_u[0] - plan.lag_u_ref) / n
+        slips = np.rint(lag_unwrapped / (TWO_PI / n)).astype(np.int64)
+        out["lag_rad"] = lag_unwrapped - slips * (TWO_PI / n)
+        out["slips"] = slips
+    else:
+        out["lag_rad"] = np.zeros(n_traj)
+        out["slips"] = np.zeros(n_traj, dtype=np.int64)
+    # modes
+    pinned = plan.pinned_at(t_s)
+    good = ~nonfinite & ~lost
+    frame = mode_frame(plan, t_s, np.where(good, w, np.nan), pinned)
+    n_modes = len(frame.modes[0].omega)
+    mode_n = np.full((n_traj, n_modes), np.nan)
+    reordered = np.zeros(n_traj, dtype=bool)
+    sqm = np.sqrt(m)
+    z = safe_pos[0] + 1j * safe_pos[1]
+    zc = np.sum(m[:, None] * z, axis=0) / np.sum(m)
+    if pinned:
+        node = np.zeros(n_traj, dtype=np.int64)
+        weight = np.zeros(n_traj)
+        f_frame = np.full(n_traj, frame.f_hz[0])
+    else:
+        k = len(frame.f_hz)
+        if k == 1:
+            node = np.zeros(n_traj, dtype=np.int64)
+            weight = np.zeros(n_traj)
+        else:
+            x = (w / TWO_PI - frame.f_hz[0]) / (frame.f_hz[1] - frame.f_hz[0])
+            node = np.clip(np.floor(x).astype(np.int64), 0, k - 2)
+            weight = np.clip(x - node, 0.0, 1.0)
+        f_frame = w / TWO_PI
+    kk = len(frame.f_hz)
+    nxt = np.minimum(node + 1, kk - 1)
+    r_eq = (1 - weight)[:, None, None] * frame.r_eq[node] + weight[:, None, None] * frame.r_eq[nxt]  # (T, N, 3)
+    nearest = np.where(weight > 0.5, nxt, node)
+    z_eq = (r_eq[:, :, 0] + 1j * r_eq[:, :, 1]).T  # (N, T)
+    z_eq_c = z_eq - np.sum(m[:, None] * z_eq, axis=0) / np.sum(m)
+    phi = _kabsch_angle(z_eq_c, z - zc, m)
+    # Rotate each configuration by its best-fit angle phi so that a finite
+    # rotation does not leak into the radial modes through 1 - cos(phi); in
+    # the pinning frame the angle from the nearest well, phi - phi_well, is
+    # put back as a linear tangential displacement (the libration coordinate).
+    if pinned and plan.lag_n > 0:
+        step = TWO_PI / plan.lag_n
+        phi_well = np.rint(phi / step) * step
+    elif pinned:
+        phi_well = np.zeros(n_traj)
+    else:
+        phi_well = phi
+    body_pos = _rotate(safe_pos, -phi)
+    body_vel = _rotate(safe_vel, -phi)
+    species = plan.species_ids
+    for b in np.nonzero(good)[0]:
+        d = body_pos[:, :, b].T[:, None, :] - r_eq[b][None, :, :]
+        cost = np.sum(d * d, axis=-1)
+        cost = np.where(species[:, None] == species[None, :], cost, 1e30)
+        rows, cols = linear_sum_assignment(cost)
+        perm = np.empty_like(cols)
+        perm[cols] = rows  # site j holds ion perm[j]
+        if not np.all(perm == np.arange(len(perm))):
+            reordered[b] = True
+            body_pos[:, :, b] = body_pos[:, perm, b]
+            body_vel[:, :, b] = body_vel[:, perm, b]
+    # deviations in the rotating frame (canonical momentum minus rigid rotation)
+    wf = TWO_PI * f_frame
+    tangent = np.zeros_like(r_eq)
+    tangent[:, :, 0], tangent[:, :, 1] = -r_eq[:, :, 1], r_eq[:, :, 0]
+    dxi = sqm[None, :, None] * (body_pos.transpose(2, 1, 0) - r_eq + (phi - phi_well)[:, None, None] * tangent)  # (T, N, 3)
+    v_rigid = np.zeros_like(r_eq)
+    v_rigid[:, :, 0] = -wf[:, None] * r_eq[:, :, 1]
+    v_rigid[:, :, 1] = wf[:, None] * r_eq[:, :, 0]
+    # the rotation generator acting on the rigid-rotation velocity: z x v_rigid = -w r_xy
+    dpi = sqm[None, :, None] * (body_vel.transpose(2, 1, 0) - v_rigid
+                                + (phi - phi_well)[:, None, None] * v_rigid_gen(r_eq, wf))
+    dxi = dxi.reshape(n_traj, -1)
+    dpi = dpi.reshape(n_traj, -1)
+    for kn in range(kk):
+        sel = good & (nearest == kn)
+        if np.any(sel):
+            e = frame.modes[kn].project(dxi[sel], dpi[sel])
+            mode_n[sel] = e - (0.5 if plan.wigner else 0.0)
+    out["reordered"] = reordered
+    out["mode_n"] = mode_n
+    status = np.zeros(n_traj, dtype=np.int64)
+    status |= np.where(out["slips"] != 0, STATUS_BITS["slipped"], 0)
+    status |= np.where(lost, STATUS_BITS["lost"], 0)
+    status |= np.where(reordered, STATUS_BITS["reordered"], 0)
+    status |= np.where(nonfinite, STATUS_BITS["nonfinite"], 0)
+    out["status"] = status
+    out["_modes"] = frame.modes[len(frame.modes) // 2]
+    return out
+

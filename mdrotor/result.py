@@ -1,0 +1,64 @@
+"""Run results: per-trajectory observations, their statistics, provenance."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+ARRAYS = ("L_hbar", "L_com_hbar", "f_rot_hz", "mode_n", "status", "lag_rad", "slips")
+
+
+@dataclass
+class Observation:
+    """Observables of every trajectory at one time (a stage end, or t = 0).
+
+    ``arrays``: ``L_hbar``, ``L_com_hbar``, ``f_rot_hz`` (T,), ``mode_n``
+    (T, modes), ``status`` (T,) bit flags (1 slipped, 2 lost ion, 4
+    reordered, 8 non-finite), ``lag_rad`` (T,), ``slips`` (T,).
+    ``modes``: ``freq_hz``, ``label``, ``kind``, ``plane`` of the modes the
+    phonon numbers refer to. ``summary``: see :func:`mdrotor.stats.summarize`.
+    """
+
+    name: str
+    t_s: float
+    arrays: dict
+    modes: dict
+    summary: dict
+
+
+@dataclass
+class Result:
+    """A finished run. ``attrs`` holds the provenance (config text, version,
+    seed, dt, steps, trajectories, creation time)."""
+
+    attrs: dict
+    initial: Observation | None
+    stages: dict
+    series: dict | None = None
+    schedule: dict | None = None
+    extra: dict = field(default_factory=dict)
+
+    @property
+    def final(self) -> Observation:
+        return list(self.stages.values())[-1]
+
+    @property
+    def summary(self) -> dict:
+        return self.final.summary
+
+    def save(self, path) -> None:
+        """Write to HDF5 (temporary file in the same folder, then renamed)."""
+        from .store import save_result
+
+        save_result(self, path)
+
+
+def observation_from_raw(name: str, t_s: float, obs: dict) -> Observation:
+    from .stats import summarize
+
+    modes = obs["_modes"]
+    arrays = {k: np.asarray(obs[k]) for k in ARRAYS}
+    meta = {"freq_hz": np.asarray(modes.freq_hz), "label": list(modes.labels), "kind": list(modes.kinds),
+            "plane": list(modes.planes)}
+    return Observation(name, t_s, arrays, meta, summarize(obs, meta["kind"]))

@@ -1,0 +1,199 @@
+"""The ``run`` workflow: config -> plan -> initial states -> kernels -> Result."""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import sys
+import time
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+
+TWO_PI = 2.0 * np.pi
+
+
+def run(cfg, *, trajectories: int | None = None, seed: int | None = None, threads: int | None = None,
+        chunk: int | None = None, progress: bool = False, order: np.ndarray | None = None):
+    """Monte-Carlo spin-up / release run.
+
+    Parameters
+    ----------
+    cfg : mdrotor.config.Config
+    trajectories, seed, threads, chunk : optional overrides of ``[run]``.
+    progress : bool
+        Show a tqdm progress bar on stderr.
+    order : array of int, optional
+        Trajectory indices to run, in this order (default 0..T-1). Each
+        trajectory's result depends only on (seed, index).
+
+    Returns
+    -------
+    mdrotor.result.Result
+    """
+    from .engine import initial_states, integrate, make_plan
+    from .result import Result, observation_from_raw
+
+    opts = cfg.run
+    n_traj = int(trajectories if trajectories is not None else opts.trajectories)
+    seed = int(seed if seed is not None else opts.seed)
+    chunk = int(chunk if chunk is not None else opts.chunk)
+    threads = threads if threads is not None else opts.threads
+    _set_threads(threads)
+    plan = make_plan(cfg)
+    idx = np.arange(n_traj) if order is None else np.asarray(order)
+    pos, vel = initial_states(plan, seed, idx)
+    bar = None
+    if progress:
+        from tqdm import tqdm
+
+        bar = tqdm(total=plan.n_steps * len(idx), unit="traj-step", unit_scale=True, file=sys.stderr,
+                   desc="mdrotor run", leave=False)
+    try:
+        raw = integrate(plan, pos, vel, chunk=chunk, progress=bar)
+    finally:
+        if bar is not None:
+            bar.close()
+    if order is not None:  # back to index order
+        inv = np.argsort(idx)
+        for obs in [raw.initial, *raw.stages.values()]:
+            for k, v in obs.items():
+                if isinstance(v, np.ndarray) and v.shape[:1] == (len(idx),):
+                    obs[k] = v[inv]
+    sched = cfg.schedule
+    bounds = sched.boundaries_s
+    stages = {name: observation_from_raw(name, float(bounds[i + 1]), obs)
+              for i, (name, obs) in enumerate(raw.stages.items())}
+    initial = observation_from_raw("initial", 0.0, raw.initial)
+    attrs = {
+        "package_version": __version__,
+        "config_text": cfg.text,
+        "config_source": cfg.source,
+        "seed": np.uint64(seed),
+        "dt_s": plan.dt_s,
+        "n_steps": plan.n_steps,
+        "n_trajectories": n_traj,
+        "integrator": cfg.run.integrator,
+        "stage_names": [s.name for s in sched.stages],
+        "stage_steps": np.array(plan.stage_steps),
+        "stage_dt_s": np.array(plan.stage_dt),
+        "f_fast_hz": plan.f_fast_hz,
+        "wall_s": raw.wall_s,
+        "traj_steps_per_s": plan.n_steps * n_traj / raw.wall_s if raw.wall_s > 0 else float("nan"),
+        "threads": _get_threads(),
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "species": [s.name for s in cfg.species],
+        "moment_of_inertia_kg_m2": plan.crystal0.moment_of_inertia_kg_m2,
+        "lag_order": plan.lag_n,
+        "status_bits": "1 slipped, 2 lost ion, 4 reordered, 8 non-finite",
+    }
+    grid = np.linspace(0.0, sched.duration_s, 1001)
+    schedule = {"t_s": grid, "f_rot_hz": sched.f_rot_hz(grid), "theta_rad": sched.theta_rad(grid),
+                "stage_bounds_s": bounds, "stage_names": [s.name for s in sched.stages]}
+    if len(cfg.pinning):
+        schedule["pinning_strength_si"] = np.stack([sched.pinning_scale(grid, p) * t.strength for p, t in enumerate(cfg.pinning)], axis=-1)
+    series = _series_arrays(raw.series) if raw.series else None
+    return Result(attrs, initial, stages, series, schedule)
+
+
+def _series_arrays(points: list) -> dict:
+    m = max(len(p["mode_n_mean"]) for p in points)
+    e = np.full((len(points), m), np.nan)
+    for i, p in enumerate(points):
+        e[i, : len(p["mode_n_mean"])] = p["mode_n_mean"]
+    out = {k: np.array([p[k] for p in points]) for k in ("t_s", "L_mean_hbar", "L_std_hbar", "lag_mean_rad", "lag_std_rad", "lag_absmax_rad")}
+    out["mode_n_mean"] = e
+    out["stage"] = [p["stage"] for p in points]
+    return out
+
+
+def _set_threads(threads) -> None:
+    import numba
+
+    if threads:
+        numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
+
+
+def _get_threads() -> int:
+    import numba
+
+    return int(numba.get_num_threads())
+
+
+# ---------------------------------------------------------------------------
+# command line
+# ---------------------------------------------------------------------------
+def summary_dict(res) -> dict:
+    """JSON-ready summary of a Result."""
+    s = res.summary
+    fin = res.final
+    out = {k: (float(v) if isinstance(v, (float, np.floating)) else v) for k, v in s.items() if not isinstance(v, np.ndarray)}
+    out["modes"] = [{"label": lab, "kind": k, "freq_hz": float(f), "n_mean": float(n), "n_err": float(e)}
+                    for lab, k, f, n, e in zip(fin.modes["label"], fin.modes["kind"], fin.modes["freq_hz"], s["mode_n_mean"], s["mode_n_err"])]
+    for k in ("dt_s", "n_steps", "n_trajectories", "wall_s", "traj_steps_per_s", "integrator", "threads"):
+        v = res.attrs[k]
+        out[k] = v.item() if hasattr(v, "item") else v
+    out["seed"] = int(res.attrs["seed"])
+    out["stages"] = {name: {"L_mean_hbar": o.summary["L_mean_hbar"], "L_std_hbar": o.summary["L_std_hbar"],
+                            "slip_fraction": o.summary["slip_fraction"], "differential_n_mean": o.summary["differential_n_mean"]}
+                     for name, o in res.stages.items()}
+    return out
+
+
+def summary_text(res, path=None) -> str:
+    s = res.summary
+    a = res.attrs
+    fin = res.final
+    lines = []
+    if path:
+        lines.append(f"result: {path}")
+    lines.append(f"{a['n_trajectories']} trajectories x {a['n_steps']} steps (dt = {a['dt_s'] * 1e9:.4g} ns, {a['integrator']}), "
+                 f"seed {int(a['seed'])}, wall {a['wall_s']:.3g} s, {a['traj_steps_per_s']:.3e} trajectory-steps/s on {a['threads']} thread(s)")
+    lines.append("")
+    lines.append(f"  stage            t_end (ms)    L mean (hbar)          L spread (hbar)     slipped    diff. phonons")
+    for name, o in res.stages.items():
+        ss = o.summary
+        lines.append(f"  {name:<15s} {o.t_s * 1e3:10.4g}   {ss['L_mean_hbar']:12.6g} +- {ss['L_mean_err_hbar']:<8.3g} "
+                     f"{ss['L_std_hbar']:10.4g} +- {ss['L_std_err_hbar']:<8.2g} {ss['slip_fraction']:7.3f}   "
+                     f"{ss['differential_n_mean']:9.4g} +- {ss['differential_n_err']:.2g}")
+    lines.append("")
+    lines.append(f"final ({fin.name}): L = {s['L_mean_hbar']:.6g} +- {s['L_mean_err_hbar']:.3g} hbar, spread {s['L_std_hbar']:.4g} +- {s['L_std_err_hbar']:.2g} hbar, "
+                 f"f_rot = {s['f_rot_mean_hz'] / 1e3:.6g} kHz")
+    lines.append(f"  slipped {s['slip_fraction']:.3f} +- {s['slip_fraction_err']:.3f}, lost {s['loss_fraction']:.3f} +- {s['loss_fraction_err']:.3f}, "
+                 f"reordered {s['reorder_fraction']:.3f}, non-finite {s['nonfinite_fraction']:.3f}")
+    lines.append("")
+    lines.append("  mode  label              kind          freq (kHz)   mean phonons")
+    for k, (lab, kind, f) in enumerate(zip(fin.modes["label"], fin.modes["kind"], fin.modes["freq_hz"])):
+        lines.append(f"  {k:4d}  {lab:<18s} {kind:<13s} {f / 1e3:10.4f}   {s['mode_n_mean'][k]:10.4g} +- {s['mode_n_err'][k]:.2g}")
+    lines.append(f"  differential total {s['differential_n_mean']:.4g} +- {s['differential_n_err']:.2g}, COM total {s['com_n_mean']:.4g} +- {s['com_n_err']:.2g}")
+    return "\n".join(lines)
+
+
+def cli_run(args) -> int:
+    from .config import load_config
+    from .errors import InputError
+
+    ov = list(args.overrides)
+    cfg = load_config(args.config, ov)
+    if args.trajectories is not None and args.trajectories < 1:
+        raise InputError("--trajectories", "expected a positive number of trajectories", "command line")
+    if args.seed is not None and not 0 <= args.seed < 2**64:
+        raise InputError("--seed", "expected a seed in [0, 2^64)", "command line")
+    out = Path(args.output) if args.output else Path(Path(args.config).stem + ".h5")
+    if not out.parent.exists():
+        raise InputError("-o", f"the folder {str(out.parent)!r} does not exist", "command line")
+    show = not args.quiet and sys.stderr.isatty()
+    t0 = time.perf_counter()
+    res = run(cfg, trajectories=args.trajectories, seed=args.seed, threads=args.threads, progress=show)
+    res.save(out)
+    if args.json:
+        d = summary_dict(res)
+        d["output"] = str(out)
+        d["total_wall_s"] = time.perf_counter() - t0
+        print(json.dumps(d))
+    else:
+        print(summary_text(res, out))
+    return 0

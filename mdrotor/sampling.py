@@ -1,0 +1,78 @@
+"""Initial states: the crystal's normal modes sampled from a thermal Wigner function.
+
+Each normal mode k (frequency w_k, normal coordinates Q_k, P_k with energy
+E_k = w_k (Q_k^2 + P_k^2) / 2, see :mod:`mdrotor.statics`) is drawn from the
+Wigner function of a thermal state, a Gaussian with
+
+    <Q_k^2> = <P_k^2> = hbar (n_k + 1/2) = (hbar / 2) coth(hbar w_k / 2 k_B T)
+
+(Wigner function of a thermal harmonic oscillator; e.g. W.P. Schleich,
+Quantum Optics in Phase Space, ch. 4). Without zero-point motion
+(``wigner = false``) the classical Boltzmann distribution is used,
+<Q^2> = hbar n_k with n_k = k_B T / (hbar w_k) from a temperature. Per-mode
+occupations n_k (after sideband cooling) override the temperature for the
+modes they select. The free rotation of an unpinned crystal (the zero mode)
+gets a uniform random angle and a classical thermal angular momentum,
+<dL^2> = I k_B T (equipartition for a planar rotor).
+
+Randomness: trajectory b draws from ``numpy.random.Generator(PCG64DXSM(
+SeedSequence(seed, spawn_key=(b,))))``, so its state depends only on (seed,
+b), never on chunking, threads or the other trajectories.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import constants as sc
+
+HBAR = sc.hbar
+KB = sc.k
+
+
+def trajectory_rng(seed: int, index: int, stream: int = 0) -> np.random.Generator:
+    """The generator of trajectory ``index`` (stream 0: initial state,
+    stream 1: noise)."""
+    return np.random.Generator(np.random.PCG64DXSM(np.random.SeedSequence(seed, spawn_key=(index, stream))))
+
+
+def mode_occupations(modes, temperature_k: float, selectors=(), wigner: bool = True) -> np.ndarray:
+    """Mean occupation n_k of every mode.
+
+    Parameters
+    ----------
+    modes : mdrotor.statics.Modes
+    temperature_k : float
+    selectors : sequence of (selector, n)
+        selector is a mode label ("libration", "com-z"), a kind ("com",
+        "differential"), a plane ("in-plane", "out-of-plane") or "all";
+        later entries win.
+    wigner : bool
+        With zero-point motion the thermal n is Bose-Einstein; without it,
+        the classical k_B T / (hbar w).
+    """
+    w = modes.omega
+    if temperature_k > 0:
+        x = HBAR * w / (KB * temperature_k)
+        n = 1.0 / np.expm1(x) if wigner else 1.0 / x
+    else:
+        n = np.zeros_like(w)
+    n = n.copy()
+    for sel, val in selectors:
+        hit = np.array([sel in ("all", lab, kind, pl) or lab.startswith(sel + "-")
+                        for lab, kind, pl in zip(modes.labels, modes.kinds, modes.planes)])
+        n[hit] = val
+    return n
+
+
+def sample_normal_coordinates(n_occ: np.ndarray, wigner: bool, rng: np.random.Generator):
+    """Draw (Q, P) for every mode: Gaussian with variance hbar (n + 1/2) or hbar n."""
+    var = HBAR * (n_occ + 0.5) if wigner else HBAR * n_occ
+    sd = np.sqrt(var)
+    q = rng.standard_normal(len(n_occ)) * sd
+    p = rng.standard_normal(len(n_occ)) * sd
+    return q, p
+
+
+def phase_space_point(modes, q: np.ndarray, p: np.ndarray) -> np.ndarray:
+    """zeta = sum_k Q_k e_q,k + P_k e_p,k (mass-weighted deviations and momenta)."""
+    return q @ modes.e_q + p @ modes.e_p

@@ -1,0 +1,162 @@
+"""HDF5 storage of results (h5py). The layout is documented in the README.
+
+Files are written to a temporary name in the target folder and renamed when
+complete, so an interrupted run never leaves a half file under the final
+name. ``FORMAT_VERSION`` changes whenever the layout does.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+
+from .result import Observation, Result
+
+FORMAT_VERSION = 1
+
+
+def _write_obs(g, obs: Observation) -> None:
+    g.attrs["t_s"] = obs.t_s
+    g.attrs["name"] = obs.name
+    for k, v in obs.arrays.items():
+        g.create_dataset(k, data=v)
+    mg = g.create_group("modes")
+    mg.create_dataset("freq_hz", data=obs.modes["freq_hz"])
+    for k in ("label", "kind", "plane"):
+        mg.create_dataset(k, data=np.array(obs.modes[k], dtype=object), dtype=_str_dtype())
+    sg = g.create_group("summary")
+    _write_summary(sg, obs.summary)
+
+
+def _write_summary(g, summary: dict) -> None:
+    for k, v in summary.items():
+        if isinstance(v, np.ndarray):
+            g.create_dataset(k, data=v)
+        else:
+            g.attrs[k] = v
+
+
+def _str_dtype():
+    import h5py
+
+    return h5py.string_dtype()
+
+
+def save_result(res: Result, path) -> None:
+    import h5py
+
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
+    try:
+        with h5py.File(tmp, "w") as f:
+            f.attrs["format_version"] = FORMAT_VERSION
+            for k, v in res.attrs.items():
+                f.attrs[k] = v
+            if res.initial is not None:
+                _write_obs(f.create_group("initial"), res.initial)
+            st = f.create_group("stages")
+            for name, obs in res.stages.items():
+                _write_obs(st.create_group(name), obs)
+            fin = res.final
+            g = f.create_group("final")
+            g.attrs["stage"] = fin.name
+            g.attrs["t_s"] = fin.t_s
+            for k, v in fin.arrays.items():
+                g.create_dataset(k, data=v)
+            mg = f.create_group("modes")
+            mg.create_dataset("freq_hz", data=fin.modes["freq_hz"])
+            for k in ("label", "kind", "plane"):
+                mg.create_dataset(k, data=np.array(fin.modes[k], dtype=object), dtype=_str_dtype())
+            sg = f.create_group("summary")
+            _write_summary(sg, fin.summary)
+            if res.series:
+                se = f.create_group("series")
+                for k, v in res.series.items():
+                    if k in ("stage", "mode_labels"):
+                        se.create_dataset(k, data=np.array(v, dtype=object), dtype=_str_dtype())
+                    else:
+                        se.create_dataset(k, data=np.asarray(v))
+            if res.schedule:
+                sc = f.create_group("schedule")
+                for k, v in res.schedule.items():
+                    if k == "stage_names":
+                        sc.create_dataset(k, data=np.array(v, dtype=object), dtype=_str_dtype())
+                    else:
+                        sc.create_dataset(k, data=np.asarray(v))
+            for gname, content in res.extra.items():
+                eg = f.create_group(gname)
+                for k, v in content.items():
+                    if isinstance(v, dict):
+                        for kk, vv in v.items():
+                            eg.attrs[f"{k}.{kk}"] = vv
+                    elif np.ndim(v) == 0 and not isinstance(v, np.ndarray):
+                        eg.attrs[k] = v
+                    else:
+                        eg.create_dataset(k, data=np.asarray(v))
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+
+
+def _read_obs(g) -> Observation:
+    arrays = {k: g[k][()] for k in g if k not in ("modes", "summary")}
+    mg = g["modes"]
+    modes = {"freq_hz": mg["freq_hz"][()]}
+    for k in ("label", "kind", "plane"):
+        modes[k] = [x.decode() if isinstance(x, bytes) else str(x) for x in mg[k][()]]
+    return Observation(str(g.attrs["name"]), float(g.attrs["t_s"]), arrays, modes, _read_summary(g["summary"]))
+
+
+def _read_summary(g) -> dict:
+    out = {k: (v.item() if hasattr(v, "item") else v) for k, v in g.attrs.items()}
+    for k in g:
+        out[k] = g[k][()]
+    return out
+
+
+def load_result(path) -> Result:
+    """Read a result file written by :func:`save_result`."""
+    import h5py
+
+    from .errors import InputError
+
+    try:
+        f = h5py.File(path, "r")
+    except OSError as e:
+        raise InputError("", f"cannot open result file: {e}", str(path)) from None
+    with f:
+        if "format_version" not in f.attrs or "stages" not in f:
+            raise InputError("", "not an mdrotor result file (no format_version or /stages)", str(path))
+        attrs = {k: (v.item() if hasattr(v, "item") and np.ndim(v) == 0 else v) for k, v in f.attrs.items()}
+        initial = _read_obs(f["initial"]) if "initial" in f else None
+        order = list(attrs.get("stage_names", list(f["stages"].keys())))
+        stages = {str(n): _read_obs(f["stages"][str(n)]) for n in order}
+        series = None
+        if "series" in f:
+            series = {}
+            for k in f["series"]:
+                v = f["series"][k][()]
+                if v.dtype == object:
+                    v = [x.decode() if isinstance(x, bytes) else str(x) for x in v]
+                series[k] = v
+        schedule = None
+        if "schedule" in f:
+            schedule = {}
+            for k in f["schedule"]:
+                v = f["schedule"][k][()]
+                if v.dtype == object:
+                    v = [x.decode() if isinstance(x, bytes) else str(x) for x in v]
+                schedule[k] = v
+        extra = {}
+        for gname in f:
+            if gname in ("initial", "stages", "final", "modes", "summary", "series", "schedule"):
+                continue
+            g = f[gname]
+            content = dict(g.attrs)
+            for k in g:
+                content[k] = g[k][()]
+            extra[gname] = content
+    return Result(attrs, initial, stages, series, schedule, extra)
