@@ -55,7 +55,7 @@ class RunOptions:
     seed: int = 0
     dt_s: float | None = None
     integrator: str = "verlet"
-    chunk: int = 64
+    chunk: int = 0
     threads: int = 0
     steps_per_period: int = 40
 
@@ -459,7 +459,7 @@ def _run(raw, source) -> RunOptions:
     integ = r.get("integrator", "verlet")
     if integ not in INTEGRATORS:
         raise InputError("run.integrator", f"expected one of {list(INTEGRATORS)}, got {integ!r}", source)
-    chunk = _int(r.get("chunk", 64), "run.chunk", source, 1, "a chunk size")
+    chunk = _int(r.get("chunk", 0), "run.chunk", source, 0, "a chunk size (0: automatic)")
     threads = _int(r.get("threads", 0), "run.threads", source, 0, "a thread count (0: all cores)")
     spp = _int(r.get("steps_per_period", 40), "run.steps_per_period", source, 8, "steps per fastest period")
     return RunOptions(traj, seed, dt_s, integ, chunk, threads, spp)

@@ -49,16 +49,16 @@ def substep_fractions(integrator: str) -> np.ndarray:
 
 
 @njit(cache=True)
-def _accel(pos, b0, b1, acc, w2, stray_acc, qm, kq_i, kq_j, pin_n, c_re, c_im, zr, zi):
-    """Accelerations of trajectories b0..b1-1 into acc[:, :, 0:b1-b0]."""
-    n_ions = pos.shape[1]
-    nb = b1 - b0
+def _accel(px, py, pz, ax, ay, az, w2, stray_acc, qm, kq_i, kq_j, pin_n, c_re, c_im, zr, zi, fx, fy, fz):
+    """Accelerations (ax, ay, az) of one chunk; every array (N, B) or (B,)."""
+    n_ions, nb = px.shape
     for i in range(n_ions):
-        for u in range(3):
-            wu = w2[i, u]
-            su = stray_acc[i, u]
-            for b in range(nb):
-                acc[u, i, b] = su - wu * pos[u, i, b0 + b]
+        wx, wy, wz = w2[i, 0], w2[i, 1], w2[i, 2]
+        sx, sy, sz = stray_acc[i, 0], stray_acc[i, 1], stray_acc[i, 2]
+        for b in range(nb):
+            ax[i, b] = sx - wx * px[i, b]
+            ay[i, b] = sy - wy * py[i, b]
+            az[i, b] = sz - wz * pz[i, b]
     for p in range(pin_n.shape[0]):
         n = pin_n[p]
         cr = c_re[p]
@@ -67,66 +67,117 @@ def _accel(pos, b0, b1, acc, w2, stray_acc, qm, kq_i, kq_j, pin_n, c_re, c_im, z
             continue
         for i in range(n_ions):
             f = qm[i] * n
-            for b in range(nb):
-                zr[b] = 1.0
-                zi[b] = 0.0
-            for _ in range(n - 1):
+            if n == 2:
                 for b in range(nb):
-                    x = pos[0, i, b0 + b]
-                    y = pos[1, i, b0 + b]
+                    x = px[i, b]
+                    y = py[i, b]
+                    ax[i, b] -= f * (cr * x - ci * y)
+                    ay[i, b] += f * (cr * y + ci * x)
+                continue
+            for b in range(nb):
+                zr[b] = px[i, b]
+                zi[b] = py[i, b]
+            for _ in range(n - 2):
+                for b in range(nb):
+                    x = px[i, b]
+                    y = py[i, b]
                     t = zr[b] * x - zi[b] * y
                     zi[b] = zr[b] * y + zi[b] * x
                     zr[b] = t
             for b in range(nb):
-                gr = cr * zr[b] - ci * zi[b]
-                gi = cr * zi[b] + ci * zr[b]
-                acc[0, i, b] -= f * gr
-                acc[1, i, b] += f * gi
+                ax[i, b] -= f * (cr * zr[b] - ci * zi[b])
+                ay[i, b] += f * (cr * zi[b] + ci * zr[b])
     for i in range(n_ions):
         for j in range(i + 1, n_ions):
             ki = kq_i[i, j]
             kj = kq_j[i, j]
             for b in range(nb):
-                dx = pos[0, i, b0 + b] - pos[0, j, b0 + b]
-                dy = pos[1, i, b0 + b] - pos[1, j, b0 + b]
-                dz = pos[2, i, b0 + b] - pos[2, j, b0 + b]
+                dx = px[i, b] - px[j, b]
+                dy = py[i, b] - py[j, b]
+                dz = pz[i, b] - pz[j, b]
                 r2 = dx * dx + dy * dy + dz * dz
                 inv3 = 1.0 / (r2 * math.sqrt(r2))
-                acc[0, i, b] += ki * dx * inv3
-                acc[1, i, b] += ki * dy * inv3
-                acc[2, i, b] += ki * dz * inv3
-                acc[0, j, b] -= kj * dx * inv3
-                acc[1, j, b] -= kj * dy * inv3
-                acc[2, j, b] -= kj * dz * inv3
+                fx[b] = dx * inv3
+                fy[b] = dy * inv3
+                fz[b] = dz * inv3
+            for b in range(nb):
+                ax[i, b] += ki * fx[b]
+                ay[i, b] += ki * fy[b]
+                az[i, b] += ki * fz[b]
+                ax[j, b] -= kj * fx[b]
+                ay[j, b] -= kj * fy[b]
+                az[j, b] -= kj * fz[b]
 
 
 @njit(cache=True)
-def _lag_phase(pos, b, masses, charges, n):
-    """arg of the order-n moment about the centre of mass, sum Q (z - z_c)^n."""
-    n_ions = pos.shape[1]
+def _kick(vx, vy, vz, ax, ay, az, h):
+    n_ions, nb = vx.shape
+    for i in range(n_ions):
+        for b in range(nb):
+            vx[i, b] += h * ax[i, b]
+            vy[i, b] += h * ay[i, b]
+            vz[i, b] += h * az[i, b]
+
+@njit(cache=True)
+def _drift(px, py, pz, vx, vy, vz, h):
+    n_ions, nb = vx.shape
+    for i in range(n_ions):
+        for b in range(nb):
+            px[i, b] += h * vx[i, b]
+            py[i, b] += h * vy[i, b]
+            pz[i, b] += h * vz[i, b]
+
+
+@njit(cache=True)
+def _lag_raw(px, py, masses, charges, n, zr, zi, sr, si, out):
+    """out[b] = arg sum_i Q_i (z_i - z_c)^n, the phase of the order-n moment
+    about the centre of mass (z_c), for every trajectory b of a chunk."""
+    n_ions, nb = px.shape
     mt = 0.0
-    xc = 0.0
-    yc = 0.0
     for i in range(n_ions):
         mt += masses[i]
-        xc += masses[i] * pos[0, i, b]
-        yc += masses[i] * pos[1, i, b]
-    xc /= mt
-    yc /= mt
-    sr = 0.0
-    si = 0.0
+    for b in range(nb):
+        fx = 0.0
+        fy = 0.0
+        for i in range(n_ions):
+            fx += masses[i] * px[i, b]
+            fy += masses[i] * py[i, b]
+        zr[b] = fx / mt  # centre of mass, stored in the scratch arrays
+        zi[b] = fy / mt
+        sr[b] = 0.0
+        si[b] = 0.0
     for i in range(n_ions):
-        x = pos[0, i, b] - xc
-        y = pos[1, i, b] - yc
-        zr = 1.0
-        zi = 0.0
-        for _ in range(n):
-            t = zr * x - zi * y
-            zi = zr * y + zi * x
-            zr = t
-        sr += charges[i] * zr
-        si += charges[i] * zi
-    return math.atan2(si, sr)
+        q = charges[i]
+        for b in range(nb):
+            x = px[i, b] - zr[b]
+            y = py[i, b] - zi[b]
+            ar = x
+            ai = y
+            for _ in range(n - 1):
+                t = ar * x - ai * y
+                ai = ar * y + ai * x
+                ar = t
+            sr[b] += q * ar
+            si[b] += q * ai
+    for b in range(nb):
+        out[b] = math.atan2(si[b], sr[b])
+
+
+@njit(cache=True)
+def lag_phases(pos, masses, charges, n):
+    """Phase of the order-n moment about the centre of mass for every
+    trajectory of ``pos`` (3, N, T); used to start the lag tracking."""
+    n_ions = pos.shape[1]
+    T = pos.shape[2]
+    px = np.empty((n_ions, T))
+    py = np.empty((n_ions, T))
+    for i in range(n_ions):
+        for b in range(T):
+            px[i, b] = pos[0, i, b]
+            py[i, b] = pos[1, i, b]
+    out = np.empty(T)
+    _lag_raw(px, py, masses, charges, n, np.empty(T), np.empty(T), np.empty(T), np.empty(T), out)
+    return out
 
 
 @njit(cache=True)
@@ -160,7 +211,9 @@ def advance(pos, vel, dt, n_steps, fracs, w2, stray_acc, qm, kq_i, kq_j, pin_n, 
     lag_stride : int, steps between lag updates.
     lag_u : (2, T) [unwrapped phase arg(M_n) - n theta, last raw phase];
         updated in place.
-    chunk : int, trajectories per parallel work item.
+    chunk : int, trajectories per parallel work item. Each chunk is copied
+        into local (N, B) arrays per component: with them the compiler can
+        prove that nothing aliases and vectorises every loop.
     """
     n_ions = pos.shape[1]
     T = pos.shape[2]
@@ -170,29 +223,50 @@ def advance(pos, vel, dt, n_steps, fracs, w2, stray_acc, qm, kq_i, kq_j, pin_n, 
         b0 = c * chunk
         b1 = min(T, b0 + chunk)
         nb = b1 - b0
-        acc = np.empty((3, n_ions, nb))
+        px = np.empty((n_ions, nb))
+        py = np.empty((n_ions, nb))
+        pz = np.empty((n_ions, nb))
+        vx = np.empty((n_ions, nb))
+        vy = np.empty((n_ions, nb))
+        vz = np.empty((n_ions, nb))
+        ax = np.empty((n_ions, nb))
+        ay = np.empty((n_ions, nb))
+        az = np.empty((n_ions, nb))
+        for i in range(n_ions):
+            for b in range(nb):
+                px[i, b] = pos[0, i, b0 + b]
+                py[i, b] = pos[1, i, b0 + b]
+                pz[i, b] = pos[2, i, b0 + b]
+                vx[i, b] = vel[0, i, b0 + b]
+                vy[i, b] = vel[1, i, b0 + b]
+                vz[i, b] = vel[2, i, b0 + b]
         zr = np.empty(nb)
         zi = np.empty(nb)
-        _accel(pos, b0, b1, acc, w2, stray_acc, qm, kq_i, kq_j, pin_n, c_re[0], c_im[0], zr, zi)
+        fx = np.empty(nb)
+        fy = np.empty(nb)
+        fz = np.empty(nb)
+        raw = np.empty(nb)
+        _accel(px, py, pz, ax, ay, az, w2, stray_acc, qm, kq_i, kq_j, pin_n, c_re[0], c_im[0], zr, zi, fx, fy, fz)
         for s in range(n_steps):
             for k in range(n_sub):
                 h = fracs[k] * dt
-                hh = 0.5 * h
-                for i in range(n_ions):
-                    for u in range(3):
-                        for b in range(nb):
-                            v = vel[u, i, b0 + b] + hh * acc[u, i, b]
-                            vel[u, i, b0 + b] = v
-                            pos[u, i, b0 + b] += h * v
+                _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
+                _drift(px, py, pz, vx, vy, vz, h)
                 e = n_sub * s + k + 1
-                _accel(pos, b0, b1, acc, w2, stray_acc, qm, kq_i, kq_j, pin_n, c_re[e], c_im[e], zr, zi)
-                for i in range(n_ions):
-                    for u in range(3):
-                        for b in range(nb):
-                            vel[u, i, b0 + b] += hh * acc[u, i, b]
+                _accel(px, py, pz, ax, ay, az, w2, stray_acc, qm, kq_i, kq_j, pin_n, c_re[e], c_im[e], zr, zi, fx, fy, fz)
+                _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
             if lag_n > 0 and (s + 1) % lag_stride == 0 and lag_track[s + 1] == 1:
                 th = lag_n * lag_theta[s + 1]
+                _lag_raw(px, py, masses, charges, lag_n, zr, zi, fx, fy, raw)
                 for b in range(nb):
-                    raw = _lag_phase(pos, b0 + b, masses, charges, lag_n) - th
-                    lag_u[0, b0 + b] += _wrap(raw - lag_u[1, b0 + b])
-                    lag_u[1, b0 + b] = raw
+                    r = raw[b] - th
+                    lag_u[0, b0 + b] += _wrap(r - lag_u[1, b0 + b])
+                    lag_u[1, b0 + b] = r
+        for i in range(n_ions):
+            for b in range(nb):
+                pos[0, i, b0 + b] = px[i, b]
+                pos[1, i, b0 + b] = py[i, b]
+                pos[2, i, b0 + b] = pz[i, b]
+                vel[0, i, b0 + b] = vx[i, b]
+                vel[1, i, b0 + b] = vy[i, b]
+                vel[2, i, b0 + b] = vz[i, b]

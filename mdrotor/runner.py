@@ -40,9 +40,11 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
     opts = cfg.run
     n_traj = int(trajectories if trajectories is not None else opts.trajectories)
     seed = int(seed if seed is not None else opts.seed)
-    chunk = int(chunk if chunk is not None else opts.chunk)
     threads = threads if threads is not None else opts.threads
     _set_threads(threads)
+    chunk = int(chunk if chunk is not None else opts.chunk)
+    if chunk == 0:  # auto: about four work items per thread; results do not depend on it
+        chunk = int(np.clip(n_traj // (4 * _get_threads()), 32, 256))
     plan = make_plan(cfg)
     idx = np.arange(n_traj) if order is None else np.asarray(order)
     pos, vel = initial_states(plan, seed, idx)

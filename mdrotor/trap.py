@@ -19,7 +19,8 @@ anisotropy, ``radial_split``, is taken as DC).
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
@@ -60,6 +61,9 @@ class Trap:
 
     def omega_sq(self, masses_kg: np.ndarray, charges_c: np.ndarray) -> np.ndarray:
         """Per-ion, per-axis secular angular frequency squared (N, 3); rad^2/s^2."""
+        return _omega_sq(self, tuple(np.asarray(masses_kg, dtype=float)), tuple(np.asarray(charges_c, dtype=float))).copy()
+
+    def _omega_sq(self, masses_kg: np.ndarray, charges_c: np.ndarray) -> np.ndarray:
         s = (np.asarray(charges_c) / np.asarray(masses_kg)) / (self.ref_charge_c / self.ref_mass_kg)
         out = np.empty((len(s), 3))
         if self.a is not None and self.q is not None and self.f_drive_hz is not None:
@@ -84,3 +88,9 @@ class Trap:
     def spring_constants(self, masses_kg, charges_c) -> np.ndarray:
         """K_{i,u} = m_i w_{u,i}^2 (N, 3); N/m."""
         return np.asarray(masses_kg)[:, None] * self.omega_sq(masses_kg, charges_c)
+
+
+@lru_cache(maxsize=64)
+def _omega_sq(trap: Trap, masses: tuple, charges: tuple) -> np.ndarray:
+    # the Mathieu exponents are worth caching: statics ask for them often
+    return trap._omega_sq(np.array(masses), np.array(charges))
