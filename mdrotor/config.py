@@ -289,9 +289,8 @@ def _trap(raw, species, source) -> Trap:
         f_drive = units.parse(tr["f_drive"], "frequency", "trap.f_drive", source)
         if not f_drive > 0:
             raise InputError("trap.f_drive", "expected a positive drive frequency", source)
-    rf_phase = 0.0
-    if "rf_phase" in tr:
-        rf_phase = None if tr["rf_phase"] == "random" else units.parse(tr["rf_phase"], "angle", "trap.rf_phase", source)
+    rf_phase = tr.get("rf_phase", "random")
+    rf_phase = None if rf_phase == "random" else units.parse(rf_phase, "angle", "trap.rf_phase", source)
     a = q = None
     if "q" in tr or "a" in tr:
         if f_drive is None:

@@ -32,6 +32,7 @@ HBAR = sc.hbar
 KB = sc.k
 K_COULOMB = 1.0 / (4.0 * np.pi * sc.epsilon_0)
 BLOCK_STEPS = 2048
+RF_STEPS_PER_PERIOD = 64
 
 
 @dataclass
@@ -44,6 +45,7 @@ class Plan:
     charges: np.ndarray
     species_ids: np.ndarray
     w2: np.ndarray
+    rf2: np.ndarray
     stray_acc: np.ndarray
     qm: np.ndarray
     kq_i: np.ndarray
@@ -68,7 +70,29 @@ class Plan:
     wigner: bool
     series_interval_s: float | None
     f_fast_hz: float
+    f_drive_hz: float = 0.0
+    rf_orbit: tuple | None = None
     notes: list = field(default_factory=list)
+
+    @property
+    def rf(self) -> bool:
+        return bool(np.any(self.rf2 != 0.0))
+
+    def kernel_model(self) -> tuple:
+        return (self.w2, self.rf2, self.stray_acc, self.qm, self.kq_i, self.kq_j)
+
+    def rf_phases(self, seed: int, indices) -> np.ndarray:
+        """RF phase of every trajectory at t = 0: one of the RF_STEPS_PER_PERIOD
+        phases of the RF orbit, fixed (nearest to ``trap.rf_phase``) or
+        drawn from the trajectory's own key (stream 2)."""
+        from .sampling import trajectory_rng
+
+        step = TWO_PI / RF_STEPS_PER_PERIOD
+        fixed = self.cfg.trap.rf_phase_rad
+        if fixed is not None:
+            return np.full(len(indices), step * (round(float(fixed) / step) % RF_STEPS_PER_PERIOD))
+        return np.array([step * trajectory_rng(seed, int(i), 2).integers(RF_STEPS_PER_PERIOD) for i in indices])
+
 
     @property
     def n_steps(self) -> int:
@@ -103,6 +127,9 @@ def make_plan(cfg) -> Plan:
     m, q = cfg.masses_kg, cfg.charges_c
     n = len(m)
     w2 = cfg.trap.omega_sq(m, q)
+    rf2 = np.zeros_like(w2)
+    if cfg.trap.model == "rf":
+        w2, rf2 = cfg.trap.rf_terms(m, q)
     stray_acc = (q / m)[:, None] * np.asarray(cfg.trap.stray_field_v_per_m)[None, :]
     kqq = K_COULOMB * np.outer(q, q)
     kq_i = kqq / m[:, None]
@@ -111,7 +138,7 @@ def make_plan(cfg) -> Plan:
     strength = np.array([t.strength for t in cfg.pinning], dtype=float)
     angle = np.array([t.angle_rad for t in cfg.pinning], dtype=float)
     f0 = float(sched.f_rot_hz(0.0))
-    plan = Plan(cfg, sched, m, q, _species_ids(cfg), w2, stray_acc, q / m, kq_i, kq_j, orders, strength, angle,
+    plan = Plan(cfg, sched, m, q, _species_ids(cfg), w2, rf2, stray_acc, q / m, kq_i, kq_j, orders, strength, angle,
                 None, f0, 0.0, False, False, 0.0, [], [], None, 0, -1, 0.0, 0.0,
                 cfg.observe.loss_radius_m, cfg.initial.wigner, cfg.observe.series_interval_s, 0.0)
     scales0 = plan.pin_scales(0.0)
@@ -142,11 +169,16 @@ def make_plan(cfg) -> Plan:
             plan.notes.append("no pinning term has a moment on this crystal: it is not pinned; "
                               f"moments {margin['moments']}")
     # time step from the fastest frequency in the problem
-    f_sec = float(np.sqrt(np.max(w2))) / TWO_PI
+    f_sec = float(np.sqrt(np.max(cfg.trap.omega_sq(m, q)))) / TWO_PI
     f_modes = float(np.max(cr.modes.freq_hz)) + abs(f0) if len(cr.modes.omega) else 0.0
     f_pin = float(np.max(orders)) * sched.max_f_rot_hz() if len(orders) else 0.0
     plan.f_fast_hz = max(f_sec, f_modes, f_pin)
-    dt = cfg.run.dt_s if cfg.run.dt_s is not None else 1.0 / (plan.f_fast_hz * cfg.run.steps_per_period)
+    dt = 1.0 / (plan.f_fast_hz * cfg.run.steps_per_period)
+    if cfg.trap.model == "rf":
+        plan.f_drive_hz = float(cfg.trap.f_drive_hz)
+        dt = min(dt, 1.0 / (plan.f_drive_hz * RF_STEPS_PER_PERIOD))
+    if cfg.run.dt_s is not None:
+        dt = cfg.run.dt_s
     plan.dt_s = dt
     for st in sched.stages:
         k = max(1, int(math.ceil(st.duration_s / dt * (1 - 1e-12))))
@@ -155,6 +187,8 @@ def make_plan(cfg) -> Plan:
     from .kernels import substep_fractions
 
     plan.fracs = substep_fractions(cfg.run.integrator)
+    if plan.rf and f0 == 0.0:
+        plan.rf_orbit = rf_orbit(plan)
     return plan
 
 
@@ -207,7 +241,87 @@ def initial_states(plan: Plan, seed: int, indices: np.ndarray):
             v[:, 0], v[:, 1] = c * v[:, 0] - s * v[:, 1], s * v[:, 0] + c * v[:, 1]
         pos[:, :, b] = r.T
         vel[:, :, b] = v.T
+    if plan.rf:
+        _add_micromotion(plan, pos, vel, plan.rf_phases(seed, indices))
     return pos, vel
+
+
+def _add_micromotion(plan: Plan, pos, vel, phases) -> None:
+    """Put the sampled secular states on the RF orbit at t = 0.
+
+    The equilibrium crystal is replaced by its periodic orbit under the full
+    RF force (found numerically, :func:`rf_orbit`, so the Coulomb coupling of
+    the micromotion and the integrator's own discretisation are included),
+    taken at each trajectory's RF phase. The thermal deviation U from the
+    equilibrium gets the lowest-order micromotion, u = U (1 - (q/2)
+    cos(W t + phase)), u' = U' (1 - (q/2) cos) + U (q/2) W sin (Leibfried et
+    al., Rev. Mod. Phys. 75, 281 (2003)). A crystal that rotates at t = 0 gets
+    the lowest-order micromotion on the whole state.
+    """
+    W = TWO_PI * plan.f_drive_hz
+    qh = 0.5 * plan.cfg.trap.q_per_ion(plan.masses, plan.charges).T[:, :, None]  # (3, N, 1)
+    c, s = np.cos(phases)[None, None, :], np.sin(phases)[None, None, :]
+    if plan.rf_orbit is None:
+        u0 = pos.copy()
+        pos *= 1.0 - qh * c
+        vel *= 1.0 - qh * c
+        vel += u0 * qh * W * s
+        return
+    orbit_p, orbit_v = plan.rf_orbit
+    k = np.rint(phases / (TWO_PI / RF_STEPS_PER_PERIOD)).astype(int) % RF_STEPS_PER_PERIOD
+    r0 = plan.crystal0.positions_m.T[:, :, None]
+    du = pos - r0
+    pos[:] = orbit_p[k].transpose(1, 2, 0) + du * (1.0 - qh * c)
+    vel[:] = orbit_v[k].transpose(1, 2, 0) + vel * (1.0 - qh * c) + du * qh * W * s
+
+
+def rf_orbit(plan: Plan, *, tol: float = 1e-12, max_iter: int = 12):
+    """The periodic orbit of the equilibrium crystal under the full RF force.
+
+    Newton's method on the one-period map P (integrated with the run's own
+    stepper at dt = T_RF / RF_STEPS_PER_PERIOD, potential frozen at t = 0):
+    solve P(z) = z for the phase-space point z at RF phase 0, with the
+    Jacobian from finite differences, all perturbed copies integrated as one
+    batch of trajectories. Returns the orbit's positions and velocities at
+    the RF_STEPS_PER_PERIOD step phases, each (K, 3, N).
+    """
+    n = len(plan.masses)
+    dim = 6 * n
+    W = TWO_PI * plan.f_drive_hz
+    dt = (TWO_PI / W) / RF_STEPS_PER_PERIOD
+    qh = 0.5 * plan.cfg.trap.q_per_ion(plan.masses, plan.charges)  # (N, 3)
+    r0 = plan.crystal0.positions_m
+    z = np.concatenate([(r0 * (1.0 - qh)).ravel(), np.zeros(3 * n)])  # lowest order at phase 0
+    scale = np.concatenate([np.full(3 * n, np.max(np.abs(r0)) + 1e-6), np.full(3 * n, W * (np.max(np.abs(r0)) + 1e-6))])
+    stepper = _Stepper(plan, dim + 1, dim + 1, np.zeros(dim + 1))
+    eps = 1e-7
+
+    def one_period(states):
+        p = np.ascontiguousarray(states[:, : 3 * n].reshape(-1, n, 3).transpose(2, 1, 0))
+        v = np.ascontiguousarray(states[:, 3 * n:].reshape(-1, n, 3).transpose(2, 1, 0))
+        stepper.advance(p, v, 0, 0.0, dt, RF_STEPS_PER_PERIOD, frozen=True)
+        return np.concatenate([p.transpose(2, 1, 0).reshape(-1, 3 * n), v.transpose(2, 1, 0).reshape(-1, 3 * n)], axis=1)
+
+    for _ in range(max_iter):
+        batch = np.repeat(z[None, :], dim + 1, axis=0)
+        batch[1:] += np.diag(eps * scale)
+        out = one_period(batch)
+        res = out[0] - z
+        if np.max(np.abs(res) / scale) < tol:
+            break
+        jac = (out[1:] - out[0]).T / (eps * scale)[None, :]
+        step = np.linalg.lstsq(jac - np.eye(dim), -res, rcond=1e-10)[0]
+        z = z + step
+    # sample the orbit at every step phase
+    p = np.ascontiguousarray(z[: 3 * n].reshape(1, n, 3).transpose(2, 1, 0))
+    v = np.ascontiguousarray(z[3 * n:].reshape(1, n, 3).transpose(2, 1, 0))
+    stepper1 = _Stepper(plan, 1, 1, np.zeros(1))
+    op, ov = [], []
+    for j in range(RF_STEPS_PER_PERIOD):
+        op.append(p[:, :, 0].copy())
+        ov.append(v[:, :, 0].copy())
+        stepper1.advance(p, v, 0, j * dt, dt, 1, frozen=True)
+    return np.array(op), np.array(ov)
 
 
 def _curl_rotation(r, v, r0, m, w):
@@ -253,25 +367,27 @@ class RawRun:
 
 
 def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, progress=None,
-              observe_stages: bool = True) -> RawRun:
-    """Run the whole schedule on the given states (modified in place)."""
-    from .kernels import advance, lag_phases
-    from .observables import observe
+              observe_stages: bool = True, rf_phases: np.ndarray | None = None) -> RawRun:
+    """Run the whole schedule on the given states (modified in place).
+
+    ``rf_phases`` (T,): each trajectory's RF phase at t = 0 (RF model only).
+    """
+    from .kernels import lag_phases
 
     sched = plan.schedule
     T = pos.shape[2]
-    lag_u = np.zeros((2, T))
+    if plan.rf and rf_phases is None:
+        raise ValueError("the RF model needs each trajectory's RF phase")
+    stepper = _Stepper(plan, T, chunk, rf_phases)
     if plan.lag_n > 0:
         raw = lag_phases(pos, plan.masses, plan.charges, plan.lag_n)
-        lag_u[0] = plan.lag_u_ref + np.array([_wrap(r - plan.lag_u_ref) for r in raw])
-        lag_u[1] = raw
+        stepper.lag_u[0] = plan.lag_u_ref + np.array([_wrap(r - plan.lag_u_ref) for r in raw])
+        stepper.lag_u[1] = raw
     t0 = time.perf_counter()
-    initial = observe(plan, pos, vel, 0.0, lag_u) if observe_stages else {}
+    initial = stepper.observe(pos, vel, 0, 0.0, plan.stage_dt[0]) if observe_stages else {}
     stages, series = {}, []
     t = 0.0
     bounds = sched.boundaries_s
-    # a lag update every spp/4 steps: the pinning turns by at most 2 pi / 4 per order n in between
-    lag_stride = max(1, plan.cfg.run.steps_per_period // 4)
     last_series = 0.0
     for k, st in enumerate(sched.stages):
         n_left = plan.stage_steps[k]
@@ -282,35 +398,92 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
             blk = max(1, min(BLOCK_STEPS, int(round(plan.series_interval_s / dt))))
         while n_left > 0:
             nb = min(blk, n_left)
-            ts = bounds[k] + dt * (step0 + np.arange(nb + 1))
-            # force-evaluation times: block start, then the end of each sub-step
-            sub = np.cumsum(plan.fracs)
-            te = np.concatenate([[ts[0]], (ts[:-1, None] + dt * sub[None, :]).ravel()])
-            te = np.minimum(te, bounds[k + 1])
-            c_re, c_im = _pin_coefficients(plan, te)
-            theta_steps = sched.theta_rad(ts)
-            if plan.lag_n > 0:
-                track = (np.abs(sched.pinning_scale(ts, plan.lag_term)) >= plan.lag_threshold).astype(np.uint8)
-            else:
-                track = np.zeros(nb + 1, dtype=np.uint8)
-            advance(pos, vel, dt, nb, plan.fracs, plan.w2, plan.stray_acc, plan.qm, plan.kq_i, plan.kq_j,
-                    plan.pin_orders, c_re, c_im, plan.masses, plan.charges, plan.lag_n, theta_steps, track,
-                    lag_stride, lag_u, chunk)
+            stepper.advance(pos, vel, k, bounds[k] + dt * step0, dt, nb)
             n_left -= nb
             step0 += nb
             t = bounds[k] + dt * step0
             if progress is not None:
                 progress.update(nb * T)
             if plan.series_interval_s and t - last_series >= plan.series_interval_s - 0.5 * dt and n_left > 0:
-                series.append(_series_point(observe(plan, pos, vel, t, lag_u), t, st.name))
+                series.append(_series_point(stepper.observe(pos, vel, k, t, dt), t, st.name))
                 last_series = t
         t = bounds[k + 1]
         if observe_stages or k == len(sched.stages) - 1:
-            stages[st.name] = observe(plan, pos, vel, t, lag_u)
+            stages[st.name] = stepper.observe(pos, vel, k, t, dt)
         if plan.series_interval_s:
             series.append(_series_point(stages[st.name], t, st.name))
             last_series = t
     return RawRun(plan, initial, stages, series, time.perf_counter() - t0, T)
+
+
+class _Stepper:
+    """Builds the kernel's per-block arrays and observes (secular state in RF runs)."""
+
+    def __init__(self, plan: Plan, n_traj: int, chunk: int, rf_phases):
+        self.plan = plan
+        self.chunk = chunk
+        self.lag_u = np.zeros((2, n_traj))
+        # a lag update every spp/4 steps: the pinning turns by at most 2 pi / 4 per order n in between
+        self.lag_stride = max(1, plan.cfg.run.steps_per_period // 4)
+        ph = np.zeros(n_traj) if rf_phases is None else np.asarray(rf_phases, dtype=float)
+        self.ph_c, self.ph_s = np.cos(ph), np.sin(ph)
+
+    def advance(self, pos, vel, stage: int, t_start: float, dt: float, n: int, lag_u=None, frozen: bool = False) -> None:
+        """Advance ``n`` steps from ``t_start``; ``frozen``: the schedule held
+        at t = 0 (the RF drive still runs from phase W t_start)."""
+        from .kernels import advance
+
+        plan = self.plan
+        sched = plan.schedule
+        end = sched.boundaries_s[stage + 1]
+        ts = t_start + dt * np.arange(n + 1)
+        # force-evaluation times: block start, then the end of each sub-step
+        sub = np.cumsum(plan.fracs)
+        te = np.concatenate([[ts[0]], (ts[:-1, None] + dt * sub[None, :]).ravel()])
+        if t_start + dt * n <= end * (1 + 1e-12):
+            te = np.minimum(te, end)
+        c_re, c_im = _pin_coefficients(plan, np.zeros_like(te) if frozen else te)
+        if plan.lag_n > 0:
+            track = (np.abs(sched.pinning_scale(ts, plan.lag_term)) >= plan.lag_threshold).astype(np.uint8)
+        else:
+            track = np.zeros(n + 1, dtype=np.uint8)
+        W = TWO_PI * plan.f_drive_hz
+        drive = (np.cos(W * te), np.sin(W * te), self.ph_c, self.ph_s)
+        lag = (plan.masses, plan.charges, plan.lag_n, sched.theta_rad(ts), track, self.lag_stride,
+               self.lag_u if lag_u is None else lag_u)
+        advance(pos, vel, dt, n, plan.fracs, plan.kernel_model(), drive, (plan.pin_orders, c_re, c_im), lag, self.chunk)
+
+    def observe(self, pos, vel, stage: int, t: float, dt: float) -> dict:
+        """Observables at time t. In an RF run they are measured on the
+        secular motion, from two consecutive RF periods after t (run on a
+        copy): the secular position is the mean of the two period averages,
+        the secular velocity their difference over T_RF (both refer to t +
+        T_RF; the filters' gains are divided out per mode), and L_z is the
+        average of the instantaneous L_z over both periods."""
+        from .observables import observe
+
+        plan = self.plan
+        if not plan.rf:
+            return observe(plan, pos, vel, t, self.lag_u)
+        n = max(1, int(round(1.0 / (plan.f_drive_hz * dt))))
+        p, v = pos.copy(), vel.copy()
+        lag_u = self.lag_u.copy()
+        means = [np.zeros_like(p), np.zeros_like(p)]
+        ke = np.zeros(pos.shape[2])
+        lz = np.zeros(pos.shape[2])
+        m = plan.masses[None, :, None]
+        for j in range(2 * n):
+            self.advance(p, v, stage, t + j * dt, dt, 1, lag_u)
+            means[j // n] += p / n
+            ke += 0.5 * np.sum(m * v * v, axis=(0, 1)) / (2 * n)
+            lz += np.sum(m[0] * (p[0] * v[1] - p[1] * v[0]), axis=0) / (2 * n)
+        period = n * dt
+        p_sec = 0.5 * (means[0] + means[1])
+        v_sec = (means[1] - means[0]) / period
+        out = observe(plan, p_sec, v_sec, t + period, lag_u, window_s=period, L_z=lz)
+        # time-averaged kinetic energy of the micromotion: <KE> - KE(secular velocity)
+        out["micromotion_ke_j"] = ke - 0.5 * np.sum(m * v_sec * v_sec, axis=(0, 1))
+        return out
 
 
 def _wrap(a):

@@ -16,7 +16,7 @@ size or the number of threads.
 
 Acceleration of ion i (see :mod:`mdrotor.statics` for the potential)::
 
-    a_i = -w_{u,i}^2 u_i + (Q_i/m_i) E_stray
+    a_i = -w_{u,i}^2 u_i [+ 2 (W/2)^2 q_{u,i} cos(W t + phase) u_i] + (Q_i/m_i) E_stray
           - (Q_i/m_i) grad Re[C_p(t) z_i^n_p]       for each multipole term p
           + sum_j k Q_i Q_j (r_i - r_j) / (m_i |r_i - r_j|^3)
 
@@ -49,8 +49,14 @@ def substep_fractions(integrator: str) -> np.ndarray:
 
 
 @njit(cache=True)
-def _accel(px, py, pz, ax, ay, az, w2, stray_acc, qm, kq_i, kq_j, pin_n, c_re, c_im, zr, zi, fx, fy, fz):
-    """Accelerations (ax, ay, az) of one chunk; every array (N, B) or (B,)."""
+def _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re, c_im, zr, zi, fx, fy, fz):
+    """Accelerations (ax, ay, az) of one chunk; every array (N, B) or (B,).
+
+    Trap: a_u = -(w2_u - rf2_u rf[b]) u, with w2 = (W/2)^2 a_u and
+    rf2 = 2 (W/2)^2 q_u and rf[b] = cos(W t + phase_b) in the RF model
+    (u'' = -(W^2/4)(a - 2 q cos(W t)) u, Leibfried et al., Rev. Mod. Phys.
+    75, 281 (2003)); w2 = w_u^2 and rf2 = 0 for the pseudopotential.
+    """
     n_ions, nb = px.shape
     for i in range(n_ions):
         wx, wy, wz = w2[i, 0], w2[i, 1], w2[i, 2]
@@ -59,6 +65,12 @@ def _accel(px, py, pz, ax, ay, az, w2, stray_acc, qm, kq_i, kq_j, pin_n, c_re, c
             ax[i, b] = sx - wx * px[i, b]
             ay[i, b] = sy - wy * py[i, b]
             az[i, b] = sz - wz * pz[i, b]
+        qx, qy, qz = rf2[i, 0], rf2[i, 1], rf2[i, 2]
+        if qx != 0.0 or qy != 0.0 or qz != 0.0:
+            for b in range(nb):
+                ax[i, b] += qx * rf[b] * px[i, b]
+                ay[i, b] += qy * rf[b] * py[i, b]
+                az[i, b] += qz * rf[b] * pz[i, b]
     for p in range(pin_n.shape[0]):
         n = pin_n[p]
         cr = c_re[p]
@@ -185,9 +197,15 @@ def _wrap(a):
     return a - 2.0 * math.pi * math.floor((a + math.pi) / (2.0 * math.pi))
 
 
+@njit(cache=True)
+def _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e):
+    """rf[b] = cos(W t_e + phase_b) = cos W t_e cos phase_b - sin W t_e sin phase_b."""
+    for b in range(rf.shape[0]):
+        rf[b] = rf_c[e] * ph_c[b0 + b] - rf_s[e] * ph_s[b0 + b]
+
+
 @njit(cache=True, parallel=True)
-def advance(pos, vel, dt, n_steps, fracs, w2, stray_acc, qm, kq_i, kq_j, pin_n, c_re, c_im,
-            masses, charges, lag_n, lag_theta, lag_track, lag_stride, lag_u, chunk):
+def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, chunk):
     """Advance every trajectory by ``n_steps`` steps of length ``dt``.
 
     Parameters
@@ -195,26 +213,36 @@ def advance(pos, vel, dt, n_steps, fracs, w2, stray_acc, qm, kq_i, kq_j, pin_n, 
     pos, vel : (3, N, T) float64, m and m/s; updated in place.
     dt : float, s. n_steps : int.
     fracs : (S,) sub-step fractions of dt (1 for Verlet, 3 for order 4).
-    w2 : (N, 3) secular angular frequency squared per ion and axis, rad^2/s^2.
-    stray_acc : (N, 3) Q_i E_stray / m_i, m/s^2.
-    qm : (N,) Q_i / m_i, C/kg.
-    kq_i, kq_j : (N, N) k Q_i Q_j / m_i and / m_j (upper triangle used).
-    pin_n : (P,) int64 multipole orders.
-    c_re, c_im : (S n_steps + 1, P) complex coefficient C_p at each force
-        evaluation: eval e = S s + k + 1 is the end of sub-step k of step s;
-        eval 0 is the block start.
-    masses, charges : (N,) for the lag phase.
-    lag_n : int, order of the pinning whose lag is tracked (0: none).
-    lag_theta : (n_steps + 1,) pinning angle theta(t) at the step ends.
-    lag_track : (n_steps + 1,) uint8, 1 while the pinning is strong enough
-        to define a lag.
-    lag_stride : int, steps between lag updates.
-    lag_u : (2, T) [unwrapped phase arg(M_n) - n theta, last raw phase];
-        updated in place.
+    model : tuple (w2, rf2, stray_acc, qm, kq_i, kq_j)
+        w2, rf2 : (N, 3) static and RF spring terms, rad^2/s^2 (see _accel);
+        stray_acc : (N, 3) Q_i E_stray / m_i, m/s^2; qm : (N,) Q_i / m_i,
+        C/kg; kq_i, kq_j : (N, N) k Q_i Q_j / m_i and / m_j (upper triangle).
+    drive : tuple (rf_c, rf_s, ph_c, ph_s)
+        cos and sin of W t at every force evaluation (E,), cos and sin of
+        each trajectory's RF phase (T,). Ignored when rf2 is zero.
+    pin : tuple (pin_n, c_re, c_im)
+        (P,) int64 multipole orders; (E, P) complex coefficient C_p at each
+        force evaluation: eval e = S s + k + 1 is the end of sub-step k of
+        step s; eval 0 is the block start. E = S n_steps + 1.
+    lag : tuple (masses, charges, lag_n, lag_theta, lag_track, lag_stride, lag_u)
+        lag_n: order of the pinning whose lag is tracked (0: none);
+        lag_theta, lag_track : (n_steps + 1,) pinning angle and a uint8 flag
+        (1 while the pinning is strong enough to define a lag) at the step
+        ends; lag_stride: steps between updates; lag_u : (2, T) [unwrapped
+        phase arg(M_n) - n theta, last raw phase], updated in place.
     chunk : int, trajectories per parallel work item. Each chunk is copied
         into local (N, B) arrays per component: with them the compiler can
         prove that nothing aliases and vectorises every loop.
     """
+    w2, rf2, stray_acc, qm, kq_i, kq_j = model
+    rf_c, rf_s, ph_c, ph_s = drive
+    pin_n, c_re, c_im = pin
+    masses, charges, lag_n, lag_theta, lag_track, lag_stride, lag_u = lag
+    use_rf = False
+    for i in range(rf2.shape[0]):
+        for u in range(3):
+            if rf2[i, u] != 0.0:
+                use_rf = True
     n_ions = pos.shape[1]
     T = pos.shape[2]
     n_sub = fracs.shape[0]
@@ -246,14 +274,21 @@ def advance(pos, vel, dt, n_steps, fracs, w2, stray_acc, qm, kq_i, kq_j, pin_n, 
         fy = np.empty(nb)
         fz = np.empty(nb)
         raw = np.empty(nb)
-        _accel(px, py, pz, ax, ay, az, w2, stray_acc, qm, kq_i, kq_j, pin_n, c_re[0], c_im[0], zr, zi, fx, fy, fz)
+        rf = np.zeros(nb)
+        if use_rf:
+            _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, 0)
+        _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[0], c_im[0],
+               zr, zi, fx, fy, fz)
         for s in range(n_steps):
             for k in range(n_sub):
                 h = fracs[k] * dt
                 _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
                 _drift(px, py, pz, vx, vy, vz, h)
                 e = n_sub * s + k + 1
-                _accel(px, py, pz, ax, ay, az, w2, stray_acc, qm, kq_i, kq_j, pin_n, c_re[e], c_im[e], zr, zi, fx, fy, fz)
+                if use_rf:
+                    _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e)
+                _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[e], c_im[e],
+                       zr, zi, fx, fy, fz)
                 _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
             if lag_n > 0 and (s + 1) % lag_stride == 0 and lag_track[s + 1] == 1:
                 th = lag_n * lag_theta[s + 1]

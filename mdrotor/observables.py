@@ -135,8 +135,16 @@ def _rotate_positions(r: np.ndarray, phi: float) -> np.ndarray:
     return out
 
 
-def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarray) -> dict:
-    """All per-trajectory observables at time ``t_s`` (see module docstring)."""
+def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarray, *,
+            window_s: float | None = None, L_z: np.ndarray | None = None) -> dict:
+    """All per-trajectory observables at time ``t_s`` (see module docstring).
+
+    ``window_s``: pos and vel are secular estimates filtered by RF-period
+    windows (:meth:`mdrotor.engine._Stepper.observe`); each mode's normal
+    coordinates are divided by the filters' known gains at its frequency,
+    sin(w T) / (w T) for positions and sinc^2(w T / 2) for velocities.
+    ``L_z`` (J s): the angular momentum to report instead of the one from
+    pos and vel (the RF-period average of the instantaneous L_z)."""
     from scipy.optimize import linear_sum_assignment
 
     m = plan.masses
@@ -145,6 +153,9 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     safe_pos = np.where(nonfinite[None, None], 0.0, pos)
     safe_vel = np.where(nonfinite[None, None], 0.0, vel)
     lz, lcom, icom = angular_momentum(safe_pos, safe_vel, m)
+    if L_z is not None:
+        lcom = lcom + (L_z - lz)
+        lz = np.asarray(L_z, dtype=float)
     w = np.where(icom > 0, lcom / np.where(icom > 0, icom, 1.0), 0.0)
     lost = np.any(safe_pos[0] ** 2 + safe_pos[1] ** 2 + safe_pos[2] ** 2 > plan.loss_radius_m**2, axis=0)
     out = {"L_hbar": lz / HBAR, "L_com_hbar": lcom / HBAR, "f_rot_hz": w / TWO_PI,
@@ -240,8 +251,13 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     for kn in range(kk):
         sel = good & (nearest == kn)
         if np.any(sel):
-            e = frame.modes[kn].project(dxi[sel], dpi[sel])
-            mode_n[sel] = e - (0.5 if plan.wigner else 0.0)
+            md = frame.modes[kn]
+            qn, pn = md.normal_coordinates(dxi[sel], dpi[sel])
+            if window_s:
+                x = md.omega * window_s
+                qn = qn / (np.sin(x) / x)
+                pn = pn / np.sinc(x / (2 * np.pi)) ** 2
+            mode_n[sel] = 0.5 * (qn * qn + pn * pn) / HBAR - (0.5 if plan.wigner else 0.0)
     out["reordered"] = reordered
     out["mode_n"] = mode_n
     status = np.zeros(n_traj, dtype=np.int64)

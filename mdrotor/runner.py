@@ -48,6 +48,7 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
     plan = make_plan(cfg)
     idx = np.arange(n_traj) if order is None else np.asarray(order)
     pos, vel = initial_states(plan, seed, idx)
+    phases = plan.rf_phases(seed, idx) if plan.rf else None
     bar = None
     if progress:
         from tqdm import tqdm
@@ -55,7 +56,7 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         bar = tqdm(total=plan.n_steps * len(idx), unit="traj-step", unit_scale=True, file=sys.stderr,
                    desc="mdrotor run", leave=False)
     try:
-        raw = integrate(plan, pos, vel, chunk=chunk, progress=bar)
+        raw = integrate(plan, pos, vel, chunk=chunk, progress=bar, rf_phases=phases)
     finally:
         if bar is not None:
             bar.close()

@@ -327,13 +327,16 @@ class Modes:
         (..., M) array: E_k / (hbar w_k) (subtract 1/2 for phonon numbers
         under Wigner sampling).
         """
+        q, p = self.normal_coordinates(dxi, dpi)
+        return 0.5 * (q * q + p * p) / HBAR
+
+    def normal_coordinates(self, dxi: np.ndarray, dpi: np.ndarray):
+        """Normal coordinates (Q_k, P_k), each (..., M), in sqrt(J s)."""
         n3 = dxi.shape[-1]
         eqx, eqp = self.e_q[:, :n3], self.e_q[:, n3:]
         epx, epp = self.e_p[:, :n3], self.e_p[:, n3:]
         # Q = zeta^T J e_P = xi . epp - pi . epx ; P = -(xi . eqp - pi . eqx)
-        q = dxi @ epp.T - dpi @ epx.T
-        p = -(dxi @ eqp.T - dpi @ eqx.T)
-        return 0.5 * (q * q + p * p) / HBAR
+        return dxi @ epp.T - dpi @ epx.T, -(dxi @ eqp.T - dpi @ eqx.T)
 
 
 def normal_modes(pot: Potential, r0: np.ndarray, *, zero_tol: float = 1e-6) -> Modes:

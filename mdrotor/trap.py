@@ -46,7 +46,8 @@ class Trap:
     stray_field_v_per_m : tuple of 3 floats
         Static uniform stray field.
     rf_phase_rad : float or None
-        RF phase at t = 0 (``None``: random per trajectory).
+        RF phase at t = 0 (``None``: random per trajectory; used by the
+        ``rf`` model only).
     """
 
     f_secular_hz: tuple
@@ -84,6 +85,25 @@ class Trap:
         for i, si in enumerate(s):
             out[i] = si * w2_dc + si**2 * w2_rf
         return out
+
+    def rf_terms(self, masses_kg, charges_c) -> tuple[np.ndarray, np.ndarray]:
+        """Per-ion static and RF spring terms of the full RF force (rad^2/s^2).
+
+        u'' = -(w2_u - rf2_u cos(W t + phase)) u with w2 = (W/2)^2 s a_u and
+        rf2 = 2 (W/2)^2 s q_u, s the charge-to-mass ratio relative to the
+        reference species (Mathieu form of Leibfried et al., Rev. Mod. Phys.
+        75, 281 (2003)).
+        """
+        s = (np.asarray(charges_c) / np.asarray(masses_kg)) / (self.ref_charge_c / self.ref_mass_kg)
+        half_w2 = (np.pi * self.f_drive_hz) ** 2
+        w2 = half_w2 * s[:, None] * np.asarray(self.a)[None, :]
+        rf2 = 2.0 * half_w2 * s[:, None] * np.asarray(self.q)[None, :]
+        return w2, rf2
+
+    def q_per_ion(self, masses_kg, charges_c) -> np.ndarray:
+        """Mathieu q per ion and axis (N, 3), scaled by charge-to-mass."""
+        s = (np.asarray(charges_c) / np.asarray(masses_kg)) / (self.ref_charge_c / self.ref_mass_kg)
+        return s[:, None] * np.asarray(self.q)[None, :]
 
     def spring_constants(self, masses_kg, charges_c) -> np.ndarray:
         """K_{i,u} = m_i w_{u,i}^2 (N, 3); N/m."""

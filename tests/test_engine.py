@@ -36,9 +36,10 @@ def step(plan, pos, vel, n_steps, dt=None, t0=0.0, lag=False):
     ts = t0 + dt * np.arange(n_steps + 1)
     te = np.concatenate([[ts[0]], (ts[:-1, None] + dt * sub[None, :]).ravel()])
     c_re, c_im = _pin_coefficients(plan, te)
-    advance(pos, vel, dt, n_steps, plan.fracs, plan.w2, plan.stray_acc, plan.qm, plan.kq_i, plan.kq_j,
-            plan.pin_orders, c_re, c_im, plan.masses, plan.charges, 0, np.zeros(n_steps + 1),
-            np.zeros(n_steps + 1, np.uint8), 1, np.zeros((2, pos.shape[2])), 16)
+    n_t = pos.shape[2]
+    drive = (np.zeros(len(te)), np.zeros(len(te)), np.ones(n_t), np.zeros(n_t))
+    lag = (plan.masses, plan.charges, 0, np.zeros(n_steps + 1), np.zeros(n_steps + 1, np.uint8), 1, np.zeros((2, n_t)))
+    advance(pos, vel, dt, n_steps, plan.fracs, plan.kernel_model(), drive, (plan.pin_orders, c_re, c_im), lag, 16)
 
 
 def energy(plan, pos, vel):
