@@ -40,6 +40,27 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--threads", type=int, default=None, help="threads for the kernels (default: all cores)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     _add_common(p)
+
+    p = sub.add_parser("rotor", help="quantum-rotor quantities, diffusion and coherence of a result or a config")
+    p.add_argument("source", help="result file (.h5) or run config (.toml)")
+    p.add_argument("--k", type=int, default=None, help="branch separation in quanta (default: the allowed-L spacing)")
+    p.add_argument("--diffusion", default=None, metavar="D", help="angular-momentum diffusion constant in hbar^2/s (default: fitted or from the noise spectrum)")
+    p.add_argument("--contrast", type=float, default=0.5, help="target contrast at the exchange time for the coherence budget (default 0.5)")
+    _add_common(p)
+
+    p = sub.add_parser("compare-trap", help="the same config and seed with the pseudopotential and with the full RF force")
+    p.add_argument("config", help="run config (TOML) with trap.f_drive")
+    p.add_argument("--trajectories", type=int, default=None, help="number of trajectories (overrides run.trajectories)")
+    p.add_argument("--seed", type=int, default=None, help="base seed (overrides run.seed)")
+    p.add_argument("--threads", type=int, default=None, help="threads for the kernels (default: all cores)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    _add_common(p)
+
+    from .optimize import add_optimize_parser
+    from .sweep import add_sweep_parser
+
+    add_sweep_parser(sub)  # each adds its own --set, --json, --quiet
+    add_optimize_parser(sub)
     return ap
 
 
@@ -53,6 +74,22 @@ def main(argv=None) -> int:
             return cmd_crystal(args)
         if args.command == "run":
             return cmd_run(args)
+        if args.command == "rotor":
+            from .rotor_report import cli_rotor
+
+            return cli_rotor(args)
+        if args.command == "sweep":
+            from .sweep import cli_sweep
+
+            return cli_sweep(args)
+        if args.command == "optimize":
+            from .optimize import cli_optimize
+
+            return cli_optimize(args)
+        if args.command == "compare-trap":
+            from .compare import cli_compare
+
+            return cli_compare(args)
     except InputError as e:
         print(f"mdrotor: error: {e.line()}", file=sys.stderr)
         return EXIT_INPUT

@@ -496,6 +496,10 @@ def from_dict(raw: dict, source: str = "<dict>", base_dir=None) -> Config:
                  f_start_hz=f_start, search_seed=_int(raw["crystal"].get("search_seed", 0), "crystal.search_seed", source, 0),
                  noise=raw.get("noise", {}), raw=raw)
     _check_rotation(cfg)
+    if cfg.noise:
+        from .noise import model_from_config
+
+        model_from_config(cfg)  # validate now: one message before anything runs
     return cfg
 
 

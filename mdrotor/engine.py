@@ -32,6 +32,8 @@ HBAR = sc.hbar
 KB = sc.k
 K_COULOMB = 1.0 / (4.0 * np.pi * sc.epsilon_0)
 BLOCK_STEPS = 2048
+# the kernel's "no noise" arrays (fixed ndim so that one compiled kernel serves both)
+NO_NOISE = (np.zeros((0, 3, 0)), np.zeros(0, dtype=np.int64), np.zeros((0, 0, 0)), np.zeros((0, 0, 0)))
 RF_STEPS_PER_PERIOD = 64
 
 
@@ -72,7 +74,13 @@ class Plan:
     f_fast_hz: float
     f_drive_hz: float = 0.0
     rf_orbit: tuple | None = None
+    noise: object = None
     notes: list = field(default_factory=list)
+
+    @property
+    def omega_radial_min(self) -> float:
+        """Lowest radial secular angular frequency over the ions (rad/s)."""
+        return float(np.sqrt(np.min(self.cfg.trap.omega_sq(self.masses, self.charges)[:, :2])))
 
     @property
     def rf(self) -> bool:
@@ -187,6 +195,11 @@ def make_plan(cfg) -> Plan:
     from .kernels import substep_fractions
 
     plan.fracs = substep_fractions(cfg.run.integrator)
+    if cfg.noise:
+        from .noise import model_from_config
+
+        model = model_from_config(cfg)
+        plan.noise = None if model.is_empty else model
     if plan.rf and f0 == 0.0:
         plan.rf_orbit = rf_orbit(plan)
     return plan
@@ -367,10 +380,12 @@ class RawRun:
 
 
 def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, progress=None,
-              observe_stages: bool = True, rf_phases: np.ndarray | None = None) -> RawRun:
+              observe_stages: bool = True, rf_phases: np.ndarray | None = None, noise_state=None) -> RawRun:
     """Run the whole schedule on the given states (modified in place).
 
     ``rf_phases`` (T,): each trajectory's RF phase at t = 0 (RF model only).
+    ``noise_state``: from ``plan.noise.new_state(seed, indices)`` when the
+    config has noise.
     """
     from .kernels import lag_phases
 
@@ -378,7 +393,9 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
     T = pos.shape[2]
     if plan.rf and rf_phases is None:
         raise ValueError("the RF model needs each trajectory's RF phase")
-    stepper = _Stepper(plan, T, chunk, rf_phases)
+    if plan.noise is not None and noise_state is None:
+        raise ValueError("a run with noise needs the trajectories' noise state")
+    stepper = _Stepper(plan, T, chunk, rf_phases, noise_state)
     if plan.lag_n > 0:
         raw = lag_phases(pos, plan.masses, plan.charges, plan.lag_n)
         stepper.lag_u[0] = plan.lag_u_ref + np.array([_wrap(r - plan.lag_u_ref) for r in raw])
@@ -398,7 +415,7 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
             blk = max(1, min(BLOCK_STEPS, int(round(plan.series_interval_s / dt))))
         while n_left > 0:
             nb = min(blk, n_left)
-            stepper.advance(pos, vel, k, bounds[k] + dt * step0, dt, nb)
+            stepper.advance(pos, vel, k, bounds[k] + dt * step0, dt, nb, noise_step0=step0)
             n_left -= nb
             step0 += nb
             t = bounds[k] + dt * step0
@@ -419,8 +436,9 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
 class _Stepper:
     """Builds the kernel's per-block arrays and observes (secular state in RF runs)."""
 
-    def __init__(self, plan: Plan, n_traj: int, chunk: int, rf_phases):
+    def __init__(self, plan: Plan, n_traj: int, chunk: int, rf_phases, noise_state=None):
         self.plan = plan
+        self.noise_state = noise_state
         self.chunk = chunk
         self.lag_u = np.zeros((2, n_traj))
         # a lag update every spp/4 steps: the pinning turns by at most 2 pi / 4 per order n in between
@@ -428,9 +446,12 @@ class _Stepper:
         ph = np.zeros(n_traj) if rf_phases is None else np.asarray(rf_phases, dtype=float)
         self.ph_c, self.ph_s = np.cos(ph), np.sin(ph)
 
-    def advance(self, pos, vel, stage: int, t_start: float, dt: float, n: int, lag_u=None, frozen: bool = False) -> None:
+    def advance(self, pos, vel, stage: int, t_start: float, dt: float, n: int, lag_u=None, frozen: bool = False,
+                noise_step0: int | None = None) -> None:
         """Advance ``n`` steps from ``t_start``; ``frozen``: the schedule held
-        at t = 0 (the RF drive still runs from phase W t_start)."""
+        at t = 0 (the RF drive still runs from phase W t_start). Noise acts
+        only when ``noise_step0`` (the block's first step within the stage)
+        is given: measurement windows run without it."""
         from .kernels import advance
 
         plan = self.plan
@@ -451,7 +472,16 @@ class _Stepper:
         drive = (np.cos(W * te), np.sin(W * te), self.ph_c, self.ph_s)
         lag = (plan.masses, plan.charges, plan.lag_n, sched.theta_rad(ts), track, self.lag_stride,
                self.lag_u if lag_u is None else lag_u)
-        advance(pos, vel, dt, n, plan.fracs, plan.kernel_model(), drive, (plan.pin_orders, c_re, c_im), lag, self.chunk)
+        noise = NO_NOISE
+        if plan.noise is not None and noise_step0 is not None and plan.noise.active(sched.stages[stage].name):
+            blk = plan.noise.generate(self.noise_state, t_start_s=sched.boundaries_s[stage], dt_s=dt, step0=noise_step0,
+                                      n_steps=n, stage=sched.stages[stage].name)
+            noise = (blk.field_v_per_m if blk.field_v_per_m is not None else NO_NOISE[0],
+                     blk.orders if blk.g_re is not None else NO_NOISE[1],
+                     blk.g_re if blk.g_re is not None else NO_NOISE[2],
+                     blk.g_im if blk.g_im is not None else NO_NOISE[3])
+        advance(pos, vel, dt, n, plan.fracs, plan.kernel_model(), drive, (plan.pin_orders, c_re, c_im), lag, noise,
+                self.chunk)
 
     def observe(self, pos, vel, stage: int, t: float, dt: float) -> dict:
         """Observables at time t. In an RF run they are measured on the

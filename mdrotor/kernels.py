@@ -198,6 +198,50 @@ def _wrap(a):
 
 
 @njit(cache=True)
+def _noise_field_accel(qm, b0, s, n_field, ex, ey, ez):
+    """(Q/m) E(s): the uniform noise field's acceleration for step s."""
+    n_ions, nb = ex.shape
+    for i in range(n_ions):
+        f = qm[i]
+        for b in range(nb):
+            ex[i, b] = f * n_field[s, 0, b0 + b]
+            ey[i, b] = f * n_field[s, 1, b0 + b]
+            ez[i, b] = f * n_field[s, 2, b0 + b]
+
+
+@njit(cache=True)
+def _noise_accel(px, py, qm, b0, s, n_orders, n_gre, n_gim, ex, ey, ez, nx, ny, nz, zr, zi):
+    """Noise accelerations (nx, ny, nz) at the current positions for step s:
+    the uniform field's (ex, ey, ez), plus -(Q/m) grad Re[g_n(s) z^n] for each
+    multipole order (the pinning formula with C = g_n, :mod:`mdrotor.multipole`)."""
+    n_ions, nb = px.shape
+    for i in range(n_ions):
+        for b in range(nb):
+            nx[i, b] = ex[i, b]
+            ny[i, b] = ey[i, b]
+            nz[i, b] = ez[i, b]
+    for p in range(n_orders.shape[0]):
+        n = n_orders[p]
+        for i in range(n_ions):
+            f = qm[i] * n
+            for b in range(nb):
+                zr[b] = 1.0
+                zi[b] = 0.0
+            for _ in range(n - 1):
+                for b in range(nb):
+                    x = px[i, b]
+                    y = py[i, b]
+                    t = zr[b] * x - zi[b] * y
+                    zi[b] = zr[b] * y + zi[b] * x
+                    zr[b] = t
+            for b in range(nb):
+                cr = n_gre[s, p, b0 + b]
+                ci = n_gim[s, p, b0 + b]
+                nx[i, b] -= f * (cr * zr[b] - ci * zi[b])
+                ny[i, b] += f * (cr * zi[b] + ci * zr[b])
+
+
+@njit(cache=True)
 def _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e):
     """rf[b] = cos(W t_e + phase_b) = cos W t_e cos phase_b - sin W t_e sin phase_b."""
     for b in range(rf.shape[0]):
@@ -205,7 +249,7 @@ def _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e):
 
 
 @njit(cache=True, parallel=True)
-def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, chunk):
+def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, noise, chunk):
     """Advance every trajectory by ``n_steps`` steps of length ``dt``.
 
     Parameters
@@ -230,6 +274,13 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, chunk):
         (1 while the pinning is strong enough to define a lag) at the step
         ends; lag_stride: steps between updates; lag_u : (2, T) [unwrapped
         phase arg(M_n) - n theta, last raw phase], updated in place.
+    noise : tuple (n_field, n_orders, n_gre, n_gim)
+        Noise samples held constant over each step (:mod:`mdrotor.noise`):
+        uniform field (n_steps, 3, T) in V/m (or shape (0, 3, 0) for none),
+        multipole orders (K,) and their coefficients g_re, g_im (n_steps,
+        K, T) in V/m^n. They act in every half-kick of the step, at the
+        positions of that half-kick, and are kept out of the stored
+        deterministic acceleration.
     chunk : int, trajectories per parallel work item. Each chunk is copied
         into local (N, B) arrays per component: with them the compiler can
         prove that nothing aliases and vectorises every loop.
@@ -238,6 +289,7 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, chunk):
     rf_c, rf_s, ph_c, ph_s = drive
     pin_n, c_re, c_im = pin
     masses, charges, lag_n, lag_theta, lag_track, lag_stride, lag_u = lag
+    n_field, n_orders, n_gre, n_gim = noise
     use_rf = False
     for i in range(rf2.shape[0]):
         for u in range(3):
@@ -275,14 +327,29 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, chunk):
         fz = np.empty(nb)
         raw = np.empty(nb)
         rf = np.zeros(nb)
+        nx = np.zeros((n_ions, nb))
+        ny = np.zeros((n_ions, nb))
+        nz = np.zeros((n_ions, nb))
+        ex = np.zeros((n_ions, nb))
+        ey = np.zeros((n_ions, nb))
+        ez = np.zeros((n_ions, nb))
+        has_field = n_field.shape[0] > 0
+        has_multipole = n_orders.shape[0] > 0
         if use_rf:
             _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, 0)
         _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[0], c_im[0],
                zr, zi, fx, fy, fz)
         for s in range(n_steps):
+            if has_field:
+                _noise_field_accel(qm, b0, s, n_field, ex, ey, ez)
             for k in range(n_sub):
                 h = fracs[k] * dt
                 _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
+                if has_multipole:
+                    _noise_accel(px, py, qm, b0, s, n_orders, n_gre, n_gim, ex, ey, ez, nx, ny, nz, zr, zi)
+                    _kick(vx, vy, vz, nx, ny, nz, 0.5 * h)
+                elif has_field:
+                    _kick(vx, vy, vz, ex, ey, ez, 0.5 * h)
                 _drift(px, py, pz, vx, vy, vz, h)
                 e = n_sub * s + k + 1
                 if use_rf:
@@ -290,6 +357,11 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, chunk):
                 _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[e], c_im[e],
                        zr, zi, fx, fy, fz)
                 _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
+                if has_multipole:
+                    _noise_accel(px, py, qm, b0, s, n_orders, n_gre, n_gim, ex, ey, ez, nx, ny, nz, zr, zi)
+                    _kick(vx, vy, vz, nx, ny, nz, 0.5 * h)
+                elif has_field:
+                    _kick(vx, vy, vz, ex, ey, ez, 0.5 * h)
             if lag_n > 0 and (s + 1) % lag_stride == 0 and lag_track[s + 1] == 1:
                 th = lag_n * lag_theta[s + 1]
                 _lag_raw(px, py, masses, charges, lag_n, zr, zi, fx, fy, raw)

@@ -97,10 +97,15 @@ def mode_frame(plan, t_s: float, w_traj: np.ndarray, pinned: bool) -> ModeFrame:
         return ModeFrame(np.array([f]), cr.positions_m[None], [cr.modes], True)
     ok = np.isfinite(w_traj)
     wmin, wmax = (np.min(w_traj[ok]), np.max(w_traj[ok])) if np.any(ok) else (0.0, 0.0)
+    if len(plan.masses) == 1 or max(abs(wmin), abs(wmax)) < TWO_PI * W_GRID_HZ:
+        # not rotating (or a single ion): the lab frame, static anisotropy and stray field included
+        cr = compute_crystal(plan.potential(0.0, 0.0, np.zeros(len(plan.pin_orders))), 0.0, start=plan.crystal0.positions_m)
+        return ModeFrame(np.array([0.0]), cr.positions_m[None], [cr.modes], False)
     # L / I_inst scatters around the rate of the relative equilibrium with
     # the same L by the thermal stretch of I: widen the grid to cover it
     pad = 0.03 * max(abs(wmin), abs(wmax)) + TWO_PI * W_GRID_HZ
-    wmin, wmax = wmin - pad, wmax + pad
+    w_lim = 0.98 * plan.omega_radial_min
+    wmin, wmax = max(wmin - pad, -w_lim), min(wmax + pad, w_lim)
     k = int(np.clip(1 + np.ceil((wmax - wmin) / (TWO_PI * W_GRID_HZ)), 1, 32))
     fs = np.linspace(wmin, wmax, k) / TWO_PI
     r_list, modes = [], []
@@ -172,9 +177,12 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
         out["slips"] = np.zeros(n_traj, dtype=np.int64)
     # modes
     pinned = plan.pinned_at(t_s)
+    # a crystal spinning faster than the radial confinement flies apart
+    lost |= np.abs(w) >= 0.98 * plan.omega_radial_min
+    out["lost"] = lost
     good = ~nonfinite & ~lost
     frame = mode_frame(plan, t_s, np.where(good, w, np.nan), pinned)
-    if not pinned and len(frame.f_hz) > 1:
+    if not pinned and len(frame.f_hz) > 1:  # (a single node is the lab frame or a rigid ensemble)
         # the crystal's own rate: the relative equilibrium with the same L,
         # I_eq(w) w = L_com, inverted on the grid (I_eq(w) w increases with w)
         w_nodes = TWO_PI * frame.f_hz
@@ -203,6 +211,8 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
             node = np.clip(np.floor(x).astype(np.int64), 0, k - 2)
             weight = np.clip(x - node, 0.0, 1.0)
         f_frame = w / TWO_PI
+        if len(frame.f_hz) == 1 and frame.f_hz[0] == 0.0:
+            f_frame = np.zeros(n_traj)  # lab frame
     kk = len(frame.f_hz)
     nxt = np.minimum(node + 1, kk - 1)
     r_eq = (1 - weight)[:, None, None] * frame.r_eq[node] + weight[:, None, None] * frame.r_eq[nxt]  # (T, N, 3)

@@ -14,6 +14,7 @@ import numpy as np
 from . import __version__
 
 TWO_PI = 2.0 * np.pi
+KB = 1.380649e-23  # J/K (exact, SI 2019)
 
 
 def run(cfg, *, trajectories: int | None = None, seed: int | None = None, threads: int | None = None,
@@ -49,6 +50,7 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
     idx = np.arange(n_traj) if order is None else np.asarray(order)
     pos, vel = initial_states(plan, seed, idx)
     phases = plan.rf_phases(seed, idx) if plan.rf else None
+    noise_state = plan.noise.new_state(seed, idx) if plan.noise is not None else None
     bar = None
     if progress:
         from tqdm import tqdm
@@ -56,7 +58,7 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         bar = tqdm(total=plan.n_steps * len(idx), unit="traj-step", unit_scale=True, file=sys.stderr,
                    desc="mdrotor run", leave=False)
     try:
-        raw = integrate(plan, pos, vel, chunk=chunk, progress=bar, rf_phases=phases)
+        raw = integrate(plan, pos, vel, chunk=chunk, progress=bar, rf_phases=phases, noise_state=noise_state)
     finally:
         if bar is not None:
             bar.close()
@@ -99,7 +101,48 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
     if len(cfg.pinning):
         schedule["pinning_strength_si"] = np.stack([sched.pinning_scale(grid, p) * t.strength for p, t in enumerate(cfg.pinning)], axis=-1)
     series = _series_arrays(raw.series) if raw.series else None
-    return Result(attrs, initial, stages, series, schedule)
+    extra = {}
+    if plan.rf:
+        extra["micromotion"] = micromotion_report(plan, raw)
+    if plan.noise is not None:
+        from .noise import run_rates
+
+        rates = run_rates(plan, raw)
+        if rates:
+            extra["noise"] = rates
+    return Result(attrs, initial, stages, series, schedule, extra)
+
+
+def micromotion_report(plan, raw) -> dict:
+    """Intrinsic micromotion of the rotating crystal at the end of the run.
+
+    Each ion at distance r_i from the RF null moves on the RF orbit with
+    amplitude (q_i / 2) r_i per in-plane axis (lowest order, Leibfried et al.,
+    Rev. Mod. Phys. 75, 281 (2003); for a stray-field displacement the same
+    law is the excess micromotion of D.J. Berkeland et al., J. Appl. Phys.
+    83, 5025 (1998)), so its time-averaged micromotion kinetic energy is
+    m_i (q_i W r_i)^2 / 16 (x and y together). The measured value is the
+    RF-period average of the kinetic energy minus that of the secular
+    velocity, averaged over trajectories.
+    """
+    from .statics import compute_crystal
+    from .stats import mean_sem
+
+    fin = list(raw.stages.values())[-1]
+    ok = (fin["status"] & (2 | 8)) == 0
+    f_end = float(np.mean(fin["f_rot_hz"][ok])) if np.any(ok) else 0.0
+    t_end = plan.schedule.duration_s
+    cr = compute_crystal(plan.potential(f_end, float(plan.schedule.theta_rad(t_end)), plan.pin_scales(t_end)), f_end,
+                         start=plan.crystal0.positions_m)
+    q = plan.cfg.trap.q_per_ion(plan.masses, plan.charges)
+    W = TWO_PI * plan.f_drive_hz
+    r = cr.positions_m
+    radius = np.hypot(r[:, 0], r[:, 1])
+    ke = float(np.sum(plan.masses[:, None] * (q * W * r) ** 2 / 16.0))
+    meas, err = mean_sem(fin["micromotion_ke_j"][ok])
+    return {"amplitude_radial_m": 0.5 * np.abs(q[:, 0]) * radius, "amplitude_axial_m": 0.5 * np.abs(q[:, 2] * r[:, 2]),
+            "radius_m": radius, "f_rot_hz": f_end,
+            "ke_lowest_order_j": ke, "ke_measured_j": meas, "ke_measured_err_j": err}
 
 
 def _series_arrays(points: list) -> dict:
@@ -172,6 +215,31 @@ def summary_text(res, path=None) -> str:
     for k, (lab, kind, f) in enumerate(zip(fin.modes["label"], fin.modes["kind"], fin.modes["freq_hz"])):
         lines.append(f"  {k:4d}  {lab:<18s} {kind:<13s} {f / 1e3:10.4f}   {s['mode_n_mean'][k]:10.4g} +- {s['mode_n_err'][k]:.2g}")
     lines.append(f"  differential total {s['differential_n_mean']:.4g} +- {s['differential_n_err']:.2g}, COM total {s['com_n_mean']:.4g} +- {s['com_n_err']:.2g}")
+    nz = res.extra.get("noise")
+    if nz:
+        lines.append("")
+        lines.append(f"noise rates over stage '{nz['stage']}' ({nz['t0_s'] * 1e3:.4g} to {nz['t1_s'] * 1e3:.4g} ms, {nz['n_trajectories']} trajectories"
+                     f"{', pinned' if nz['pinned'] else ', free rotation'}):")
+        if "D_fit_hbar2_per_s" in nz:
+            lines.append(f"  L diffusion D: fitted {nz['D_fit_hbar2_per_s']:.4g} +- {nz['D_fit_err_hbar2_per_s']:.2g} hbar^2/s, "
+                         f"analytic {nz['D_analytic_total_hbar2_per_s']:.4g} hbar^2/s (rigid crystal at {nz['f_rot_hz'] / 1e3:.4g} kHz)")
+        for o, d in zip(np.atleast_1d(nz.get("D_analytic_orders", [])), np.atleast_1d(nz.get("D_analytic_hbar2_per_s", []))):
+            lines.append(f"    order {int(o)}{' (uniform field)' if int(o) == 1 else ''}: {d:.4g} hbar^2/s")
+        if "turchette_quanta_per_s" in nz:
+            tq = np.atleast_1d(nz["turchette_quanta_per_s"])
+            lines.append(f"  COM heating (Turchette) x, y, z: {tq[0]:.4g}, {tq[1]:.4g}, {tq[2]:.4g} quanta/s (lab-frame COM modes)")
+        for lab, r, e in zip(nz["heating_labels"], np.atleast_1d(nz["heating_fit_quanta_per_s"]), np.atleast_1d(nz["heating_fit_err_quanta_per_s"])):
+            lines.append(f"  heating {lab:<16s} fitted {r:11.4g} +- {e:.2g} quanta/s")
+    mm = res.extra.get("micromotion")
+    if mm:
+        lines.append("")
+        lines.append(f"RF micromotion at the end (crystal rotating at {mm['f_rot_hz'] / 1e3:.4g} kHz), amplitude per ion:")
+        for i, (ar, az, rad) in enumerate(zip(np.atleast_1d(mm["amplitude_radial_m"]), np.atleast_1d(mm["amplitude_axial_m"]),
+                                              np.atleast_1d(mm["radius_m"]))):
+            lines.append(f"  ion {i}: radial {ar * 1e9:8.2f} nm, axial {az * 1e9:8.2f} nm   (radius {rad * 1e6:.3f} um)")
+        lines.append(f"  time-averaged micromotion kinetic energy: {mm['ke_measured_j'] / KB * 1e3:.4g} +- {mm['ke_measured_err_j'] / KB * 1e3:.2g} mK k_B "
+                     f"(lowest order {mm['ke_lowest_order_j'] / KB * 1e3:.4g} mK k_B)")
+        lines.append("  phonons and L are measured on the secular motion (two RF-period averages; see README)")
     return "\n".join(lines)
 
 

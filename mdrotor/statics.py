@@ -44,6 +44,7 @@ from . import multipole as mp
 from .errors import PhysicsError
 
 K_COULOMB = 1.0 / (4.0 * np.pi * sc.epsilon_0)
+SLOW_ROTATION_HZ = 10.0
 HBAR = sc.hbar
 TWO_PI = 2.0 * np.pi
 
@@ -378,8 +379,13 @@ def normal_modes(pot: Potential, r0: np.ndarray, *, zero_tol: float = 1e-6) -> M
     g1 = np.concatenate([rot.ravel(), (-w * xi0 * np.array([1.0, 1.0, 0.0])).ravel()])
     keff = kmw - w * w * _inplane(n)
     tang = rot.ravel()
-    symmetric = np.linalg.norm(tang) > 0 and (
-        np.linalg.norm(keff @ tang) < 1e-9 * np.linalg.norm(keff, 2) * np.linalg.norm(tang))
+    # symmetric about the centre of mass: no multipole, isotropic in-plane
+    # springs, no in-plane stray field unless every ion has the same Q/m (it
+    # then only shifts the crystal); decided from the potential, not from
+    # rounding-limited numbers
+    symmetric = (np.linalg.norm(tang) > 0 and not any(c != 0 for _, c in pot.multipoles)
+                 and np.array_equal(pot.spring_n_per_m[:, 0], pot.spring_n_per_m[:, 1])
+                 and (not np.any(pot.stray_field_v_per_m[:2]) or np.ptp(pot.charges_c / pot.masses_kg) == 0))
     if symmetric:
         g2 = np.linalg.lstsq(ja, g1, rcond=None)[0]
         s12 = g1 @ jm @ g2
@@ -591,6 +597,11 @@ def compute_crystal(pot: Potential, f_rot_hz: float = 0.0, *, seed: int = 0,
     """
     from dataclasses import replace
 
+    if abs(f_rot_hz) < SLOW_ROTATION_HZ:
+        # below ~1 hbar of L for any crystal here: the lab frame, where the
+        # nearly degenerate rotating-frame pairs (split by 2 w) are not
+        # resolvable in double precision
+        f_rot_hz = 0.0
     pot = replace(pot, omega_frame=TWO_PI * f_rot_hz)
     eq = find_equilibrium(pot, seed=seed, start=start)
     modes = normal_modes(pot, eq.positions_m)

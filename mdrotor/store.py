@@ -93,6 +93,8 @@ def save_result(res: Result, path) -> None:
                             eg.attrs[f"{k}.{kk}"] = vv
                     elif np.ndim(v) == 0 and not isinstance(v, np.ndarray):
                         eg.attrs[k] = v
+                    elif isinstance(v, (list, tuple)) and all(isinstance(x, str) for x in v):
+                        eg.create_dataset(k, data=np.array(v, dtype=object), dtype=_str_dtype())
                     else:
                         eg.create_dataset(k, data=np.asarray(v))
         os.replace(tmp, path)
@@ -155,8 +157,11 @@ def load_result(path) -> Result:
             if gname in ("initial", "stages", "final", "modes", "summary", "series", "schedule"):
                 continue
             g = f[gname]
-            content = dict(g.attrs)
+            content = {k: (v.item() if hasattr(v, "item") and np.ndim(v) == 0 else v) for k, v in g.attrs.items()}
             for k in g:
-                content[k] = g[k][()]
+                v = g[k][()]
+                if getattr(v, "dtype", None) == object:
+                    v = [x.decode() if isinstance(x, bytes) else str(x) for x in v]
+                content[k] = v
             extra[gname] = content
     return Result(attrs, initial, stages, series, schedule, extra)

@@ -1,0 +1,1408 @@
+r"""Electric-field noise: configuration, time-domain synthesis, analytic rates.
+
+Noise from nearby surfaces heats the crystal and exerts random torques on it.
+The sources are far from the crystal compared with its size, so the noise is
+spatially smooth; mdrotor keeps a uniform field and in-plane field
+multipoles of order n >= 2. The same noise values act on every ion of a
+trajectory; different trajectories see independent realisations.
+
+Conventions
+-----------
+*Uniform field.* ``E(t) = (E_x, E_y, E_z)`` in V/m; an ion of charge Q feels
+``F = Q E``.
+
+*Multipole noise of order n* (same machinery as the pinning, see
+:mod:`mdrotor.multipole`)::
+
+    Phi_n(x, y, t) = Re[ g_n(t) (x + i y)^n ],    g_n = g_re + i g_im  [V/m^n]
+
+An ion has potential energy ``Q Phi_n``. ``g_n`` plays the role of the
+pinning's complex coefficient ``C = c_n e^{-i n theta}``: a pinning term and
+a noise term of the same order add as ``Re[(C + g_n) z^n]``, so the kernel
+can add ``g_n`` to ``C``. ``g_re`` alone is a standing multipole along the
+x axis (n = 2: ``g_re (x^2 - y^2)``), ``g_im`` alone the one turned by
+``-pi/(2n)`` (n = 2: ``-2 g_im x y``).
+
+*Spectral densities.* Every noise component is a stationary Gaussian
+process with a one-sided power spectral density ``S(f)`` per Hz,
+``<x^2> = int_0^inf S(f) df``, ``R(tau) = <x(t + tau) x(t)> =
+int_0^inf S(f) cos(2 pi f tau) df`` (Wiener-Khinchin). For the field,
+each selected Cartesian component has ``S`` in V^2/m^2/Hz, the components
+independent. For order n, ``g_re`` and ``g_im`` are independent and each has
+the configured ``S`` in V^2/m^(2n)/Hz, so ``<|g_n|^2> = 2 int S df``; the
+noise has no preferred orientation. ``S`` is what ``scipy.signal.welch``
+(``scaling="density"``, one-sided) returns for a record of the component.
+
+PSD terms (the configured ``S`` is their sum; ``level`` in PSD units):
+
+* ``white``:       ``S = level``.
+* ``power``:       ``S = level (f / f_ref)^(-alpha)`` for ``f_min <= f <= f_max``
+  and 0 outside, ``0 <= alpha <= 2``.
+* ``lorentzian``:  ``S = level [L(f - f_c) + L(f + f_c)] / [1 + L(2 f_c)]``,
+  ``L(u) = 1 / (1 + (u / width)^2)``: a peak at ``f_c`` with half width at
+  half maximum ``width`` and ``S(f_c) = level``. The mirror term
+  ``L(f + f_c)`` is the one-sided fold of a spectrum at ``+-f_c``; it is
+  negligible for ``f_c >> width`` and makes ``f_c = 0`` the low-pass
+  ``level / (1 + (f / width)^2)``.
+
+Per stage, a noise entry's PSD is multiplied by a scale (``stages``,
+amplitude squared), e.g. noise injected only during free rotation.
+Deterministic tones ``A cos(2 pi f t + phase)`` (or a rotating multipole
+``g_n = A e^{-i (2 pi f t + phase)}``) are on during chosen stages; ``t`` is
+the run time (0 at the start of the first stage).
+
+Time-domain synthesis
+---------------------
+Each noise sample is the exact average of a continuous-time process over one
+integration step: sample ``k`` of a block is ``(1/dt) int x(t) dt`` over
+``[t_k, t_k + dt)``, ``t_k = t_start + dt (step0 + k)``, and the kernel
+holds it constant over that step (every sub-step kick of step k uses it).
+For a position-independent force the momentum transferred in a step is then
+exactly ``Q int E dt`` of the continuous process. The continuous process is
+a sum of independent pieces:
+
+* white level ``S_w``: the step average of white noise is Gaussian with
+  variance ``S_w / (2 dt)``, independent between steps (a discrete white
+  kick, momentum ``Q E_k dt``; this reproduces the heating rate of
+  Turchette et al., below);
+* Ornstein-Uhlenbeck (OU) modes, real (``dx = -gamma x dt + noise``, one-sided
+  PSD ``(4 sigma^2 / gamma) / (1 + (2 pi f / gamma)^2)``) or rotating complex
+  (``dz = -(gamma - i Omega) z dt + noise``, ``x = Re z``, PSD
+  ``(2 sigma^2 / gamma) [L(f - f_c) + L(f + f_c)]`` with ``Omega = 2 pi f_c``,
+  width ``gamma / 2 pi``; ``sigma^2 = <x^2>``). A Lorentzian term is one mode
+  (rotating if ``f_c > 0``) and is exact. A power law is fitted by real OU
+  modes: corners log-spaced at 2 per decade from 1.5 decades below
+  ``f_min`` to 1.5 decades above ``f_max``, weights by non-negative least
+  squares on the relative error over the band (the sum-of-Lorentzians
+  representation of 1/f^alpha noise: M.S. Keshner, Proc. IEEE 70, 212
+  (1982)). The fit is checked on a fine grid and refined (3, 4, 6 per
+  decade) until the largest relative error in the band is below 0.2 %
+  (:attr:`Spectrum.fit_rel_error` reports it; 0 < alpha < 2 typically gives
+  < 0.1 %, the edge cases alpha = 0 or 2 about 0.1 %). Outside the band the
+  synthesised spectrum is not zero: it flattens below ``f_min`` and falls as
+  ``f^-2`` above ``f_max`` (:meth:`Spectrum.psd_generated` gives it exactly).
+
+OU modes advance with the exact joint Gaussian update of the state and its
+step integral (D.T. Gillespie, Phys. Rev. E 54, 2084 (1996), extended to the
+complex rate ``lambda = gamma - i Omega``): with ``mu = lambda dt``,
+``phi(w) = (1 - e^{-w}) / w`` and ``a = gamma dt``::
+
+    z_{k+1} = e^{-mu} z_k + xi_k,        avg_k = Re[phi(mu) z_k] + eta_k
+    <|xi|^2> = 2 sigma^2 (1 - e^{-2a})
+    <|eta|^2> = 4 a sigma^2 [1 - 2 Re phi(mu) + phi(2a)] / |mu|^2
+    <xi eta*> = 4 a sigma^2 [phi(mu) - phi(2a)] / conj(mu)
+
+(``xi``, ``eta`` circular complex Gaussians; the real mode uses the real
+parts, whose covariances are half of these). The recursion is run with
+``scipy.signal.lfilter`` whose final state is carried to the next block, so
+the samples do not depend on how the time axis is cut into blocks.
+In the band the dynamics responds to (``f << 1/dt``) the sampled sequence
+has the configured PSD times ``sinc^2(f dt)`` plus aliases, within 0.3 %
+for ``f dt <= 1/40`` (the engine's default time step).
+
+Randomness: trajectory ``b`` of a run with seed ``s`` draws from
+``mdrotor.sampling.trajectory_rng(s, b, stream=1)``: first the stationary
+initial OU states, then per block an array ``(n_steps, n_normals)`` of
+standard normals in a fixed order (entries in config order; per entry and
+axis/part: white, then per real mode (xi, eta), then per rotating mode
+(Re xi, Im xi, Re eta)). Results are bit-identical whatever the block
+lengths, the trajectory chunks or the thread count.
+
+Cost: per step and trajectory, 1 normal for a white component, 2 per real
+OU mode, 3 per rotating mode. A power law over D decades uses at most
+2 D + 7 modes per component (x, y, z or re, im), fewer after the fit
+drops unused corners (11 for 1 kHz to 10 MHz, alpha = 1). Drawing the
+normals dominates: with such a power law on x, y, z (68 normals) generation
+takes about 2 us per step and trajectory on one core.
+
+Heating of the centre-of-mass motion
+------------------------------------
+A uniform field with one-sided PSD ``S_E`` (V^2/m^2/Hz) along a mode axis
+heats a single ion of mass m and charge Q in a mode of frequency
+``f = omega / 2 pi`` at
+
+    dn/dt = Q^2 S_E(f) / (4 m hbar omega)
+
+(Q.A. Turchette et al., Phys. Rev. A 61, 063418 (2000); M. Brownnutt et al.,
+Rev. Mod. Phys. 87, 1419 (2015)). The centre-of-mass mode of N identical
+ions is an oscillator of mass N m and charge N Q: ``dn/dt = N Q^2 S_E /
+(4 m hbar omega)``, the energy rate N times the single-ion rate. A uniform
+field couples to nothing else in a crystal of identical ions.
+
+Angular-momentum diffusion of a rotating crystal
+------------------------------------------------
+A rigid crystal rotating about the trap axis has lab positions
+``z_i(t) = z_i^b e^{i phi(t)}``, ``phi = phi_0 + 2 pi f_rot t``, with body
+positions ``z_i^b`` (any fixed orientation). Its energy in order-n noise is
+``U = Re[g(t) M_n e^{i n phi}]`` with the body-frame moment
+``M_n = sum_i Q_i (z_i^b)^n`` (C m^n; ``|M_n|`` does not depend on the body
+orientation). The torque about the axis is
+
+    tau = -dU/dphi = -Re[i n g M_n e^{i n phi}] = n Im[g M_n e^{i n phi}]
+        = n |M_n| (g_re sin psi + g_im cos psi),   psi = n phi + arg M_n.
+
+With ``g_re``, ``g_im`` independent with autocorrelations ``R_re``, ``R_im``,
+
+    <tau(t + s) tau(t)> = n^2 |M_n|^2 [R_re(s) sin psi(t+s) sin psi(t)
+                                       + R_im(s) cos psi(t+s) cos psi(t)].
+
+For ``R_re = R_im = R`` this is stationary, ``n^2 |M_n|^2 R(s) cos(n w s)``
+(``w = 2 pi f_rot``); otherwise its average over the rotation phase is
+``n^2 |M_n|^2 [R_re + R_im](s) cos(n w s) / 2``. The diffusion constant,
+``<(L(t) - L(0))^2> = 2 D t`` for t much longer than the torque's
+correlation time, is ``D = (1/2) int_{-inf}^{inf} <tau(s) tau(0)> ds``.
+With ``int R(s) cos(2 pi f s) ds = S(f) / 2`` (one-sided S)::
+
+    D_n = n^2 |M_n|^2 [S_re(n |f_rot|) + S_im(n |f_rot|)] / 8
+        = n^2 |M_n|^2 S(n |f_rot|) / 4        (our multipole noise, S_re = S_im = S)
+
+It is resonant: only the noise at ``n f_rot`` counts, and it scales with the
+crystal's order-n moment squared. A regular N-gon of identical ions has
+``M_n = 0`` unless N divides n (``sum_k e^{2 pi i k n / N} = 0``), so it
+does not diffuse under order-n noise then. Different orders and components
+are independent, so their D add. ``D_hbar2_per_s = D / hbar^2`` is what
+:mod:`mdrotor.coherence` takes; order-n noise kicks L by ``+-n`` quanta
+(``kick_quanta = n`` there). The derivation assumes a rigid crystal whose
+rotation rate the noise does not change during the torque correlation time
+(weak noise, centrifugal stretch included in ``z_i^b``); it is checked
+against a Monte-Carlo of the torque integral in ``tests/test_noise.py``.
+
+*Uniform field on a mixed crystal.* The torque about the centre of mass is
+``d x E`` with the dipole ``d = sum_i Q_i (r_i - R_cm)``; in the notation
+above this is order n = 1 with ``M_1 = sum_i Q_i (z_i - z_cm)`` and
+``(g_re, g_im) = (-E_x, E_y)`` (``-E . r = Re[-(E_x - i E_y) z]``), so
+``D_1 = |M_1|^2 [S_Ex(|f_rot|) + S_Ey(|f_rot|)] / 8``. For identical ions
+``M_1 = (Q/m) sum_i m_i (z_i - z_cm) = 0``: no torque, no diffusion. (Rigid-
+rotor approximation: in a mixed crystal the field also drives the
+centre-of-mass modes, which couple to the rotation through the trap.)
+
+*Tones.* A tone at exactly ``n f_rot`` exerts a steady torque (L grows
+linearly). With ``g_re = A cos(2 pi f t + p)``, ``f = n f_rot`` and the
+fast terms averaged out, ``dL/dt = (n A |M_n| / 2) sin(n phi_0 + arg M_n -
+p)``; ``g_im = A cos(...)`` gives ``(n A |M_n| / 2) cos(n phi_0 + arg M_n -
+p)``; the rotating tone ``g = A e^{-i (2 pi f t + p)}`` (a co-rotating
+multipole, a weak pinning) gives ``n A |M_n| sin(n phi_0 + arg M_n - p)``,
+twice the standing tone, of which only one of the two counter-rotating
+halves is resonant. :func:`tone_torque` returns the amplitude
+(``n A |M_n| / 2`` or ``n A |M_n|``).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import NamedTuple
+
+import numpy as np
+from scipy import constants as sc
+
+from . import units
+from .errors import InputError
+
+__all__ = [
+    "PsdTerm",
+    "Spectrum",
+    "NoiseSource",
+    "Tone",
+    "NoiseModel",
+    "NoiseState",
+    "NoiseBlock",
+    "DiffusionConstant",
+    "parse_noise",
+    "model_from_config",
+    "turchette_heating_rate",
+    "com_heating_rate",
+    "diffusion_constant",
+    "psd_for_diffusion",
+    "tone_torque",
+]
+
+HBAR = sc.hbar
+TWO_PI = 2.0 * math.pi
+AXES = ("x", "y", "z")
+KINDS = ("white", "power", "lorentzian")
+COMPONENTS = ("re", "im", "rotating")
+
+FIT_DENSITIES = (2, 3, 4, 6)       # OU corners per decade, tried in turn
+FIT_EXTENSION_DECADES = 1.5        # corners reach this far beyond the band
+FIT_TOLERANCE = 2e-3               # largest relative error accepted in the band
+DRAW_BUDGET_BYTES = 32 * 2**20     # random normals held at once by generate()
+
+_SRC = "mdrotor.noise"
+
+ENTRY_KEYS = {"axes", "psd", "stages"}
+MULTIPOLE_KEYS = {"order", "psd", "stages"}
+TERM_KEYS = {
+    "white": {"kind", "level"},
+    "power": {"kind", "level", "f_ref", "alpha", "f_min", "f_max"},
+    "lorentzian": {"kind", "level", "f_center", "width"},
+}
+TONE_KEYS = {"target", "axis", "order", "component", "amplitude", "frequency", "phase", "stages"}
+
+
+# ---------------------------------------------------------------------------
+# PSD dimensions
+# ---------------------------------------------------------------------------
+def psd_dimensionality(order: int) -> str:
+    """Pint dimensionality of a PSD of order ``order`` (0: uniform field).
+
+    V^2/m^2/Hz for the field, V^2/m^(2n)/Hz for the order-n coefficient."""
+    p = 2 if order == 0 else 2 * int(order)
+    return f"[electric_potential]**2/[length]**{p}*[time]"
+
+
+def psd_example(order: int) -> str:
+    return "1e-12 V^2/m^2/Hz" if order == 0 else f"1e-4 V^2/m^{2 * int(order)}/Hz"
+
+
+def _amp_dimensionality(order: int) -> str:
+    return "[electric_potential]/[length]" if order == 0 else units.multipole_dimension(order)
+
+
+def _amp_example(order: int) -> str:
+    return "1e-3 V/m" if order == 0 else units.multipole_example(order)
+
+
+# ---------------------------------------------------------------------------
+# Spectra
+# ---------------------------------------------------------------------------
+def _lorentz(u, width):
+    return 1.0 / (1.0 + (np.asarray(u, dtype=float) / width) ** 2)
+
+
+@dataclass(frozen=True)
+class PsdTerm:
+    """One term of a one-sided PSD (SI: level in V^2/m^(2n)/Hz, n = 1 for the field).
+
+    ``kind`` is ``"white"``, ``"power"`` (uses ``f_ref_hz``, ``alpha``,
+    ``f_min_hz``, ``f_max_hz``) or ``"lorentzian"`` (``f_center_hz``,
+    ``width_hz``); formulas in the module docstring.
+    """
+
+    kind: str
+    level: float
+    f_ref_hz: float = 0.0
+    alpha: float = 0.0
+    f_min_hz: float = 0.0
+    f_max_hz: float = 0.0
+    f_center_hz: float = 0.0
+    width_hz: float = 0.0
+
+    def value(self, f_hz) -> np.ndarray:
+        """Configured S(f) of this term at ``f_hz`` (>= 0)."""
+        f = np.abs(np.asarray(f_hz, dtype=float))
+        if self.kind == "white":
+            return np.full_like(f, self.level)
+        if self.kind == "power":
+            inside = (f >= self.f_min_hz) & (f <= self.f_max_hz)
+            with np.errstate(divide="ignore"):
+                s = self.level * (np.where(inside, f, self.f_ref_hz) / self.f_ref_hz) ** (-self.alpha)
+            return np.where(inside, s, 0.0)
+        w, fc = self.width_hz, self.f_center_hz
+        return self.level * (_lorentz(f - fc, w) + _lorentz(f + fc, w)) / (1.0 + _lorentz(2 * fc, w))
+
+
+@dataclass(frozen=True, eq=False)
+class Spectrum:
+    """A configured PSD and its synthesis (white level plus OU modes).
+
+    Attributes
+    ----------
+    terms : tuple of PsdTerm
+    white_level : float
+        Summed level of the white terms (PSD units).
+    corner_hz : (M,) array
+        OU mode widths ``gamma / 2 pi``, Hz.
+    center_hz : (M,) array
+        Rotation frequencies ``Omega / 2 pi`` (0: real mode), Hz.
+    variance : (M,) array
+        ``sigma^2``, the variance each mode adds to the component.
+    fit_rel_error : float
+        Largest relative error of the power-law fits over their bands.
+    """
+
+    terms: tuple
+    white_level: float
+    corner_hz: np.ndarray
+    center_hz: np.ndarray
+    variance: np.ndarray
+    fit_rel_error: float = 0.0
+
+    @property
+    def is_real(self) -> np.ndarray:
+        return self.center_hz == 0.0
+
+    def psd(self, f_hz) -> np.ndarray:
+        """Configured one-sided S(f) (sum of the terms)."""
+        f = np.asarray(f_hz, dtype=float)
+        out = np.zeros_like(f)
+        for t in self.terms:
+            out = out + t.value(f)
+        return out
+
+    def psd_generated(self, f_hz) -> np.ndarray:
+        """One-sided PSD of the synthesised continuous process (white + OU modes)."""
+        f = np.abs(np.asarray(f_hz, dtype=float))
+        out = np.full_like(f, self.white_level)
+        for fw, fc, var in zip(self.corner_hz, self.center_hz, self.variance):
+            gamma = TWO_PI * fw
+            out = out + (2.0 * var / gamma) * (_lorentz(f - fc, fw) + _lorentz(f + fc, fw))
+        return out
+
+    @classmethod
+    def from_terms(cls, terms) -> "Spectrum":
+        white = 0.0
+        corners, centers, variances = [], [], []
+        err = 0.0
+        for t in terms:
+            if t.kind == "white":
+                white += t.level
+            elif t.kind == "lorentzian":
+                if t.level == 0.0:
+                    continue
+                w, fc = t.width_hz, t.f_center_hz
+                corners.append(w)
+                centers.append(fc)
+                variances.append(t.level * math.pi * w / (1.0 + float(_lorentz(2 * fc, w))))
+            else:
+                if t.level == 0.0:
+                    continue
+                fj, cj, e = fit_power_law(t.level, t.f_ref_hz, t.alpha, t.f_min_hz, t.f_max_hz)
+                err = max(err, e)
+                corners.extend(fj)
+                centers.extend([0.0] * len(fj))
+                variances.extend(cj * math.pi * fj / 2.0)
+        return cls(tuple(terms), white, np.array(corners, dtype=float), np.array(centers, dtype=float),
+                   np.array(variances, dtype=float), err)
+
+
+def fit_power_law(level: float, f_ref_hz: float, alpha: float, f_min_hz: float, f_max_hz: float):
+    """Sum of real OU spectra ``c_j / (1 + (f / f_j)^2)`` fitted to a power law.
+
+    Corners log-spaced (2, 3, 4 or 6 per decade, the first that meets
+    :data:`FIT_TOLERANCE`) from 1.5 decades below ``f_min`` to 1.5 decades
+    above ``f_max``; weights ``c_j >= 0`` by bounded least squares on the
+    relative error over the band (M.S. Keshner, Proc. IEEE 70, 212 (1982)
+    for the representation).
+
+    Returns
+    -------
+    corner_hz : (M,) array
+    weight : (M,) array, PSD units (each mode's low-frequency level)
+    max_rel_error : float
+        Largest ``|S_fit / S - 1|`` on a grid of 200 points per decade.
+    """
+    from scipy.optimize import lsq_linear
+
+    lo, hi = math.log10(f_min_hz), math.log10(f_max_hz)
+    span = max(hi - lo, 1e-3)
+    f_fit = np.logspace(lo, hi, max(60, int(60 * span)))
+    f_chk = np.logspace(lo, hi, max(400, int(200 * span)))
+    target_fit = (f_fit / f_ref_hz) ** (-alpha)
+    target_chk = (f_chk / f_ref_hz) ** (-alpha)
+    best = None
+    for dens in FIT_DENSITIES:
+        a, b = lo - FIT_EXTENSION_DECADES, hi + FIT_EXTENSION_DECADES
+        m = int(math.ceil((b - a) * dens)) + 1
+        fj = np.logspace(a, b, m)
+        A = _lorentz(f_fit[:, None], fj[None, :]) / target_fit[:, None]
+        col = np.linalg.norm(A, axis=0)
+        sol = lsq_linear(A / col, np.ones(len(f_fit)), bounds=(0.0, np.inf), method="bvls")
+        c = sol.x / col
+        keep = c > 0
+        fj, c = fj[keep], c[keep]
+        err = float(np.max(np.abs(_lorentz(f_chk[:, None], fj[None, :]) @ c / target_chk - 1.0)))
+        if best is None or err < best[2]:
+            best = (fj, c * level, err)
+        if err <= FIT_TOLERANCE:
+            break
+    return best
+
+
+# ---------------------------------------------------------------------------
+# Model records
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class NoiseSource:
+    """One independent stationary process feeding one output channel.
+
+    Attributes
+    ----------
+    target : {"field", "multipole"}
+    channel : int
+        Field axis (0, 1, 2) or index into :attr:`NoiseModel.orders`.
+    part : int
+        0 (``g_re``) or 1 (``g_im``) for multipoles; 0 for the field.
+    order : int
+        Multipole order n (0 for the field).
+    spectrum : Spectrum
+    stage_scale : dict
+        PSD scale per stage name; stages not listed get ``default_scale``.
+    default_scale : float
+    key : str
+        Config key path of the entry (for messages).
+    """
+
+    target: str
+    channel: int
+    part: int
+    order: int
+    spectrum: Spectrum
+    stage_scale: dict
+    default_scale: float
+    key: str
+
+    def scale(self, stage: str | None) -> float:
+        """PSD scale (amplitude squared) during ``stage`` (None: 1)."""
+        if stage is None:
+            return 1.0
+        return float(self.stage_scale.get(stage, self.default_scale))
+
+    @property
+    def n_real(self) -> int:
+        return int(np.count_nonzero(self.spectrum.is_real))
+
+    @property
+    def n_rotating(self) -> int:
+        return len(self.spectrum.center_hz) - self.n_real
+
+    @property
+    def n_normals(self) -> int:
+        """Standard normals drawn per step."""
+        return (1 if self.spectrum.white_level > 0 else 0) + 2 * self.n_real + 3 * self.n_rotating
+
+    @property
+    def n_init(self) -> int:
+        """Standard normals drawn for the stationary initial state."""
+        return self.n_real + 2 * self.n_rotating
+
+
+@dataclass(frozen=True)
+class Tone:
+    """A deterministic tone (SI).
+
+    ``target = "field"``: ``E_axis += A cos(2 pi f t + phase)``, A in V/m.
+    ``target = "multipole"``: component ``"re"``/``"im"`` adds
+    ``A cos(2 pi f t + phase)`` to ``g_re``/``g_im``; ``"rotating"`` adds
+    ``A e^{-i (2 pi f t + phase)}`` to ``g_n``; A in V/m^n. ``stages``: names
+    during which it is on (None: always).
+    """
+
+    target: str
+    channel: int
+    order: int
+    component: str
+    amplitude: float
+    frequency_hz: float
+    phase_rad: float
+    stages: tuple | None
+    key: str = ""
+
+    def on(self, stage: str | None) -> bool:
+        return stage is None or self.stages is None or stage in self.stages
+
+    def step_average(self, t_mid_s: np.ndarray, dt_s: float) -> tuple:
+        """(re, im) contributions averaged over steps centred at ``t_mid_s``.
+
+        The average of ``cos(2 pi f t + p)`` over ``[t_mid - dt/2, t_mid +
+        dt/2]`` is ``cos(2 pi f t_mid + p) sinc(f dt)``."""
+        psi = TWO_PI * self.frequency_hz * t_mid_s + self.phase_rad
+        a = self.amplitude * float(np.sinc(self.frequency_hz * dt_s))
+        if self.component == "rotating":
+            return a * np.cos(psi), -a * np.sin(psi)
+        if self.component == "im":
+            return None, a * np.cos(psi)
+        return a * np.cos(psi), None
+
+
+class DiffusionConstant(NamedTuple):
+    """Angular-momentum diffusion constant, ``<dL^2> = 2 D t``."""
+
+    D_si: float            # (J s)^2 / s
+    D_hbar2_per_s: float   # hbar^2 / s
+
+
+@dataclass
+class NoiseBlock:
+    """Noise samples for one block of steps and a set of trajectories.
+
+    Sample ``k`` is the average over step k, ``[t_k, t_k + dt)`` with
+    ``t_k = t_start_s + dt_s (step0 + k)``; hold it constant over the step.
+
+    Attributes
+    ----------
+    field_v_per_m : (n_steps, 3, T) float64 or None
+        Uniform field (E_x, E_y, E_z), V/m; None when the model has no field noise.
+    g_re, g_im : (n_steps, K, T) float64 or None
+        Multipole coefficients for ``orders``, V/m^n; None when K = 0.
+    orders : (K,) int64
+    """
+
+    field_v_per_m: np.ndarray | None
+    g_re: np.ndarray | None
+    g_im: np.ndarray | None
+    orders: np.ndarray
+    t_start_s: float
+    dt_s: float
+    step0: int
+    n_steps: int
+
+
+@dataclass(eq=False)
+class NoiseState:
+    """Per-trajectory generator state, carried from block to block.
+
+    ``rngs[b]`` is ``trajectory_rng(seed, indices[b], stream=1)``; ``z`` and
+    ``zi`` hold, per source, the OU states at the end of the last block and
+    the ``lfilter`` state (real modes float (M_r, T), rotating modes complex
+    (M_c, T)).
+    """
+
+    seed: int
+    indices: np.ndarray
+    rngs: list
+    z_real: list
+    zi_real: list
+    z_rot: list
+    zi_rot: list
+    dt_s: float | None = None
+    cache: dict = field(default_factory=dict)
+
+    @property
+    def n_trajectories(self) -> int:
+        return len(self.indices)
+
+
+# ---------------------------------------------------------------------------
+# OU step coefficients
+# ---------------------------------------------------------------------------
+_GL_X, _GL_W = np.polynomial.legendre.leggauss(32)
+_GL_X = 0.5 * (_GL_X + 1.0)
+_GL_W = 0.5 * _GL_W
+
+
+def _phi(w):
+    """(1 - e^{-w}) / w for complex w (1 at w = 0)."""
+    w = np.asarray(w, dtype=complex)
+    small = np.abs(w) < 1e-8
+    safe = np.where(small, 1.0, w)
+    return np.where(small, 1.0 - w / 2.0, -np.expm1(-safe) / safe)
+
+
+def ou_step_covariance(gamma: float, omega: float, var: float, dt: float):
+    """Exact one-step coefficients of an OU mode and its step average.
+
+    Parameters
+    ----------
+    gamma : float
+        Damping rate, 1/s (> 0).
+    omega : float
+        Rotation rate Omega, rad/s (0: real mode).
+    var : float
+        ``sigma^2``, variance of the real part.
+    dt : float
+        Step, s.
+
+    Returns
+    -------
+    decay : complex
+        ``e^{-mu}``, ``mu = (gamma - i Omega) dt``.
+    mean : complex
+        ``phi(mu)``: ``<avg | z_k> = Re[phi(mu) z_k]``.
+    cov : (3, 3) array
+        Covariance of ``(Re xi, Im xi, Re eta)`` (module docstring); the
+        leading (Re xi, Re eta) block serves a real mode.
+    """
+    mu = complex(gamma * dt, -omega * dt)
+    a = gamma * dt
+    p = -2.0 * var * math.expm1(-2.0 * a)                      # <|xi|^2>
+    if abs(mu) <= 2.0:
+        # entire integrands on [0, 1]; 32-point Gauss-Legendre is exact to rounding
+        ph = _phi(mu * _GL_X)
+        g = float(np.sum(_GL_W * _GL_X**2 * np.abs(ph) ** 2))
+        k = complex(np.sum(_GL_W * _GL_X * np.exp(-mu * _GL_X) * np.conj(ph)))
+    else:
+        phi_mu = complex(_phi(mu))
+        phi_2a = float(np.real(_phi(2.0 * a)))
+        g = (1.0 - 2.0 * phi_mu.real + phi_2a) / abs(mu) ** 2
+        k = (phi_mu - phi_2a) / mu.conjugate()
+    q = 4.0 * a * var * g                                       # <|eta|^2>
+    c = 4.0 * a * var * k                                       # <xi eta*>
+    cov = np.array([[p / 2, 0.0, c.real / 2],
+                    [0.0, p / 2, c.imag / 2],
+                    [c.real / 2, c.imag / 2, q / 2]])
+    return complex(np.exp(-mu)), complex(_phi(mu)), cov
+
+
+def _cholesky(cov: np.ndarray) -> np.ndarray:
+    try:
+        return np.linalg.cholesky(cov)
+    except np.linalg.LinAlgError:
+        # rounding can leave a vanishing eigenvalue slightly negative
+        jitter = 1e-14 * float(np.max(np.diag(cov)))
+        return np.linalg.cholesky(cov + jitter * np.eye(len(cov)))
+
+
+@dataclass(frozen=True, eq=False)
+class _SourceCoefficients:
+    white_sd: float
+    real_decay: np.ndarray   # (M_r,)
+    real_mean: np.ndarray
+    real_chol: np.ndarray    # (M_r, 2, 2)
+    rot_decay: np.ndarray    # (M_c,) complex
+    rot_mean: np.ndarray     # complex
+    rot_chol: np.ndarray     # (M_c, 3, 3)
+
+
+def _coefficients(src: NoiseSource, dt: float) -> _SourceCoefficients:
+    sp = src.spectrum
+    rd, rm, rc, cd, cm, cc = [], [], [], [], [], []
+    for fw, fc, var in zip(sp.corner_hz, sp.center_hz, sp.variance):
+        decay, mean, cov = ou_step_covariance(TWO_PI * fw, TWO_PI * fc, var, dt)
+        if fc == 0.0:
+            rd.append(decay.real)
+            rm.append(mean.real)
+            rc.append(_cholesky(cov[np.ix_([0, 2], [0, 2])]))
+        else:
+            cd.append(decay)
+            cm.append(mean)
+            cc.append(_cholesky(cov))
+    return _SourceCoefficients(
+        math.sqrt(sp.white_level / (2.0 * dt)),
+        np.array(rd, dtype=float), np.array(rm, dtype=float), np.array(rc, dtype=float).reshape(-1, 2, 2),
+        np.array(cd, dtype=complex), np.array(cm, dtype=complex), np.array(cc, dtype=float).reshape(-1, 3, 3))
+
+
+# ---------------------------------------------------------------------------
+# The model
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class NoiseModel:
+    """Validated noise model (SI). Build it with :func:`parse_noise`.
+
+    Attributes
+    ----------
+    sources : tuple of NoiseSource
+    tones : tuple of Tone
+    orders : tuple of int
+        Multipole orders with noise or tones, ascending; channel k of
+        ``g_re``/``g_im`` is ``orders[k]``.
+    stage_names : tuple of str
+    """
+
+    sources: tuple = ()
+    tones: tuple = ()
+    orders: tuple = ()
+    stage_names: tuple = ()
+
+    # -- what is there ------------------------------------------------------
+    @property
+    def is_empty(self) -> bool:
+        return not self.sources and not self.tones
+
+    @property
+    def has_field(self) -> bool:
+        return any(s.target == "field" for s in self.sources) or any(t.target == "field" for t in self.tones)
+
+    @property
+    def has_multipole(self) -> bool:
+        return len(self.orders) > 0
+
+    @property
+    def n_normals_per_step(self) -> int:
+        return sum(s.n_normals for s in self.sources)
+
+    def active(self, stage: str | None) -> bool:
+        """True if any noise or tone is on during ``stage``.
+
+        The engine may skip generation in inactive stages: the OU processes
+        then pause, and their state stays a stationary sample."""
+        return (any(s.scale(stage) > 0 and (s.spectrum.white_level > 0 or len(s.spectrum.variance))
+                    for s in self.sources)
+                or any(t.on(stage) and t.amplitude != 0 for t in self.tones))
+
+    # -- spectra --------------------------------------------------------------
+    def field_psd(self, axis, f_hz, stage: str | None = None, generated: bool = False) -> np.ndarray:
+        """One-sided PSD of the field component ``axis`` ("x", "y", "z" or
+        0..2) at ``f_hz``, V^2/m^2/Hz, including the stage scale."""
+        ax = _axis_index(axis, "axis", "field_psd")
+        return self._psd(lambda s: s.target == "field" and s.channel == ax, f_hz, stage, generated)
+
+    def multipole_psd(self, order: int, f_hz, stage: str | None = None, generated: bool = False) -> np.ndarray:
+        """One-sided PSD of each of ``g_re`` and ``g_im`` of ``order`` at
+        ``f_hz``, V^2/m^(2n)/Hz, including the stage scale."""
+        return self._psd(lambda s: s.target == "multipole" and s.order == order and s.part == 0,
+                         f_hz, stage, generated)
+
+    def _psd(self, select, f_hz, stage, generated):
+        f = np.asarray(f_hz, dtype=float)
+        out = np.zeros_like(f)
+        for s in self.sources:
+            if select(s):
+                sp = s.spectrum.psd_generated(f) if generated else s.spectrum.psd(f)
+                out = out + s.scale(stage) * sp
+        return out
+
+    # -- analytic rates -------------------------------------------------------
+    def com_heating_rates(self, masses_kg, charges_c, f_com_hz, stage: str | None = None,
+                          generated: bool = False) -> np.ndarray:
+        """Heating of the centre-of-mass modes along x, y, z, quanta/s.
+
+        Parameters
+        ----------
+        masses_kg, charges_c : (N,) arrays (identical charge-to-mass ratio)
+        f_com_hz : (3,) array
+            COM mode frequencies along x, y, z, Hz.
+        """
+        f = np.asarray(f_com_hz, dtype=float).reshape(3)
+        return np.array([com_heating_rate(float(self.field_psd(u, f[u], stage, generated)),
+                                          masses_kg, charges_c, f[u]) for u in range(3)])
+
+    def rotor_diffusion(self, positions_m, masses_kg, charges_c, f_rot_hz: float,
+                        stage: str | None = None, generated: bool = False) -> dict:
+        """Angular-momentum diffusion of a rigid crystal rotating at ``f_rot_hz``.
+
+        Parameters
+        ----------
+        positions_m : (N, 2) or (N, 3) array
+            Crystal positions (any orientation) about the rotation axis, m.
+        masses_kg, charges_c : (N,) arrays
+        f_rot_hz : float
+            Rotation frequency, Hz.
+        stage : str, optional
+            Apply this stage's PSD scales.
+        generated : bool
+            Use the synthesised PSD instead of the configured one.
+
+        Returns
+        -------
+        dict
+            ``{n: DiffusionConstant}`` for every multipole order with noise,
+            ``1`` for the uniform field (torque on the dipole about the
+            centre of mass; zero for identical ions) and ``"total"``.
+        """
+        from .multipole import moment
+
+        xy = np.asarray(positions_m, dtype=float)[:, :2]
+        m = np.asarray(masses_kg, dtype=float)
+        q = np.asarray(charges_c, dtype=float)
+        fr = abs(float(f_rot_hz))
+        out = {}
+        if any(s.target == "field" for s in self.sources):
+            zc = np.sum(m[:, None] * xy, axis=0) / np.sum(m)
+            m1 = moment(xy - zc, q, 1)
+            sx = float(self.field_psd(0, fr, stage, generated))
+            sy = float(self.field_psd(1, fr, stage, generated))
+            out[1] = diffusion_constant(1, m1, sx, sy)
+        for n in sorted({s.order for s in self.sources if s.target == "multipole"}):
+            s_n = float(self.multipole_psd(n, n * fr, stage, generated))
+            out[n] = diffusion_constant(n, moment(xy, q, n), s_n)
+        total = sum(d.D_si for d in out.values())
+        out["total"] = DiffusionConstant(total, total / HBAR**2)
+        return out
+
+    # -- time-domain synthesis -------------------------------------------------
+    def new_state(self, seed: int, indices) -> NoiseState:
+        """Generator state for trajectories ``indices`` of a run with ``seed``.
+
+        Draws the stationary initial OU states from
+        ``trajectory_rng(seed, index, stream=1)``."""
+        from .sampling import trajectory_rng
+
+        idx = np.asarray(indices, dtype=np.int64).reshape(-1)
+        T = len(idx)
+        rngs = [trajectory_rng(int(seed), int(i), 1) for i in idx]
+        n_init = sum(s.n_init for s in self.sources)
+        draws = np.empty((T, n_init))
+        for b, r in enumerate(rngs):
+            r.standard_normal(out=draws[b])
+        z_real, zi_real, z_rot, zi_rot = [], [], [], []
+        col = 0
+        for s in self.sources:
+            var = s.spectrum.variance
+            real = s.spectrum.is_real
+            sd_r = np.sqrt(var[real])
+            sd_c = np.sqrt(var[~real])
+            mr, mc = len(sd_r), len(sd_c)
+            zr = (draws[:, col:col + mr] * sd_r).T.copy()
+            col += mr
+            u = draws[:, col:col + 2 * mc].reshape(T, mc, 2)
+            zc = ((u[..., 0] + 1j * u[..., 1]) * sd_c).T.copy()
+            col += 2 * mc
+            z_real.append(zr)
+            zi_real.append(np.zeros_like(zr))
+            z_rot.append(zc)
+            zi_rot.append(np.zeros_like(zc))
+        return NoiseState(int(seed), idx, rngs, z_real, zi_real, z_rot, zi_rot)
+
+    def generate(self, state: NoiseState, *, t_start_s: float, dt_s: float, step0: int, n_steps: int,
+                 stage: str | None = None) -> NoiseBlock:
+        """Noise samples for the next ``n_steps`` steps of every trajectory of ``state``.
+
+        Parameters
+        ----------
+        state : NoiseState
+            From :meth:`new_state`; advanced in place.
+        t_start_s, dt_s, step0 : float, float, int
+            Step k of the block covers ``[t_k, t_k + dt_s)``,
+            ``t_k = t_start_s + dt_s * (step0 + k)`` (the engine's stage
+            start, stage step and step index within the stage). Only the
+            tones depend on the time; the processes continue from the state.
+        n_steps : int
+        stage : str, optional
+            Stage name (PSD scales and tones); None: scale 1, every tone on.
+
+        Returns
+        -------
+        NoiseBlock
+        """
+        if n_steps < 0 or not dt_s > 0:
+            raise ValueError("generate needs n_steps >= 0 and dt_s > 0")
+        T = state.n_trajectories
+        K = len(self.orders)
+        field_arr = np.zeros((n_steps, 3, T)) if self.has_field else None
+        g_re = np.zeros((n_steps, K, T)) if K else None
+        g_im = np.zeros((n_steps, K, T)) if K else None
+        new_dt = state.dt_s != dt_s
+        coeffs = state.cache.get(dt_s)
+        if coeffs is None:
+            coeffs = [_coefficients(s, dt_s) for s in self.sources]
+            state.cache = {dt_s: coeffs}
+        n_norm = self.n_normals_per_step
+        if n_steps > 0 and n_norm > 0:
+            tc = max(1, min(T, DRAW_BUDGET_BYTES // (8 * n_steps * n_norm)))
+            for c0 in range(0, T, tc):
+                c1 = min(T, c0 + tc)
+                draws = np.empty((c1 - c0, n_steps, n_norm))
+                for b in range(c0, c1):
+                    state.rngs[b].standard_normal(out=draws[b - c0])
+                col = 0
+                for si, (src, cf) in enumerate(zip(self.sources, coeffs)):
+                    y, col = _run_source(src, cf, state, si, draws, col, c0, c1, new_dt)
+                    a = math.sqrt(src.scale(stage))
+                    if a != 1.0:
+                        y *= a
+                    if src.target == "field":
+                        field_arr[:, src.channel, c0:c1] += y.T
+                    else:
+                        (g_re if src.part == 0 else g_im)[:, src.channel, c0:c1] += y.T
+        state.dt_s = dt_s
+        if n_steps > 0:
+            t_mid = t_start_s + dt_s * (step0 + np.arange(n_steps) + 0.5)
+            for tone in self.tones:
+                if not tone.on(stage) or tone.amplitude == 0:
+                    continue
+                re, im = tone.step_average(t_mid, dt_s)
+                if tone.target == "field":
+                    field_arr[:, tone.channel, :] += re[:, None]
+                    continue
+                if re is not None:
+                    g_re[:, tone.channel, :] += re[:, None]
+                if im is not None:
+                    g_im[:, tone.channel, :] += im[:, None]
+        return NoiseBlock(field_arr, g_re, g_im, np.array(self.orders, dtype=np.int64),
+                          float(t_start_s), float(dt_s), int(step0), int(n_steps))
+
+
+def _run_source(src, cf, state, si, draws, col, c0, c1, new_dt):
+    """Samples (Tc, n_steps) of one source for trajectories c0:c1; advances its state."""
+    from scipy.signal import lfilter
+
+    tc, n = draws.shape[0], draws.shape[1]
+    y = np.zeros((tc, n))
+    if src.spectrum.white_level > 0:
+        y += cf.white_sd * draws[:, :, col]
+        col += 1
+    zr, zir = state.z_real[si], state.zi_real[si]
+    for j in range(len(cf.real_decay)):
+        L = cf.real_chol[j]
+        u1, u2 = draws[:, :, col], draws[:, :, col + 1]
+        col += 2
+        xi = L[0, 0] * u1
+        eta = L[1, 0] * u1 + L[1, 1] * u2
+        e = cf.real_decay[j]
+        z0 = zr[j, c0:c1]
+        zi = e * z0 if new_dt else zir[j, c0:c1]
+        zs, zf = lfilter([1.0], [1.0, -e], xi, axis=1, zi=zi[:, None])
+        y += cf.real_mean[j] * np.concatenate([z0[:, None], zs[:, :-1]], axis=1) + eta
+        zr[j, c0:c1] = zs[:, -1]
+        zir[j, c0:c1] = zf[:, 0]
+    zc, zic = state.z_rot[si], state.zi_rot[si]
+    for j in range(len(cf.rot_decay)):
+        L = cf.rot_chol[j]
+        u1, u2, u3 = draws[:, :, col], draws[:, :, col + 1], draws[:, :, col + 2]
+        col += 3
+        xi = (L[0, 0] * u1) + 1j * (L[1, 0] * u1 + L[1, 1] * u2)
+        eta = L[2, 0] * u1 + L[2, 1] * u2 + L[2, 2] * u3
+        e = cf.rot_decay[j]
+        z0 = zc[j, c0:c1]
+        zi = e * z0 if new_dt else zic[j, c0:c1]
+        zs, zf = lfilter(np.array([1.0 + 0j]), np.array([1.0 + 0j, -e]), xi, axis=1, zi=zi[:, None])
+        start = np.concatenate([z0[:, None], zs[:, :-1]], axis=1)
+        y += (cf.rot_mean[j] * start).real + eta
+        zc[j, c0:c1] = zs[:, -1]
+        zic[j, c0:c1] = zf[:, 0]
+    return y, col
+
+
+# ---------------------------------------------------------------------------
+# Parsing
+# ---------------------------------------------------------------------------
+def parse_noise(raw, source: str = "<dict>", stage_names=()) -> NoiseModel:
+    """Validate a ``[noise]`` table into a :class:`NoiseModel`.
+
+    Shape (every table optional; ``[[...]]`` may also be a single table)::
+
+        [[noise.field]]                 # uniform field
+        axes = ["x", "y"]               # default ["x", "y", "z"]; independent, same PSD
+        psd = [ { kind = "white", level = "1e-12 V^2/m^2/Hz" },
+                { kind = "power", level = "1e-12 V^2/m^2/Hz", f_ref = "1 MHz",
+                  alpha = 1.0, f_min = "1 kHz", f_max = "10 MHz" },
+                { kind = "lorentzian", level = "1e-11 V^2/m^2/Hz",
+                  f_center = "400 kHz", width = "10 kHz" } ]
+        stages = { free = 1.0, spin-up = 0.0 }   # PSD scale; unlisted stages 1
+                                                 # (or a list: on only there)
+        [[noise.multipole]]
+        order = 2                       # n >= 2; g_re and g_im each get this PSD
+        psd = { kind = "white", level = "1e-4 V^2/m^4/Hz" }
+        [[noise.tone]]
+        target = "multipole"            # or "field" (then axis = "x" | "y" | "z")
+        order = 2
+        component = "re"                # "re" | "im" | "rotating"
+        amplitude = "10 V/m^2"          # V/m for the field
+        frequency = "400 kHz"
+        phase = "0 deg"                 # default 0
+        stages = ["free"]               # default: all stages
+
+    Parameters
+    ----------
+    raw : dict
+        The ``[noise]`` table (``Config.noise``).
+    source : str
+        File name for messages.
+    stage_names : sequence of str
+        Names of the schedule's stages (``stages`` keys must be among them).
+
+    Raises
+    ------
+    InputError
+        Naming the key path (``noise.field[0].psd[1].level``) and what was expected.
+    """
+    if raw is None:
+        raw = {}
+    if not isinstance(raw, dict):
+        raise InputError("noise", "expected a table with [[noise.field]], [[noise.multipole]], [[noise.tone]]", source)
+    for k in raw:
+        if k not in ("field", "multipole", "tone"):
+            raise InputError(f"noise.{k}", "unknown key; expected one of ['field', 'multipole', 'tone']", source)
+    names = tuple(stage_names)
+    sources = []
+    field_items = _items(raw.get("field"), "noise.field", source)
+    for key, it in field_items:
+        _check_keys(it, key, ENTRY_KEYS, source)
+        axes = it.get("axes", list(AXES))
+        if isinstance(axes, str):
+            axes = [axes]
+        if not isinstance(axes, list) or not axes or any(a not in AXES for a in axes) or len(set(axes)) != len(axes):
+            raise InputError(f"{key}.axes", f"expected a non-empty list of distinct axes from ['x', 'y', 'z'], got {axes!r}", source)
+        spec = _spectrum(_require(it, "psd", key, source, "a PSD term or a list of terms"), f"{key}.psd", 0, source)
+        scales, default = _stage_scales(it.get("stages"), f"{key}.stages", names, source)
+        for a in axes:
+            sources.append(NoiseSource("field", AXES.index(a), 0, 0, spec, scales, default, key))
+    multi = []
+    for key, it in _items(raw.get("multipole"), "noise.multipole", source):
+        _check_keys(it, key, MULTIPOLE_KEYS, source)
+        order = _order(_require(it, "order", key, source, "the multipole order n >= 2"), f"{key}.order", source)
+        spec = _spectrum(_require(it, "psd", key, source, "a PSD term or a list of terms"), f"{key}.psd", order, source)
+        scales, default = _stage_scales(it.get("stages"), f"{key}.stages", names, source)
+        multi.append((order, spec, scales, default, key))
+    tones_raw = []
+    for key, it in _items(raw.get("tone"), "noise.tone", source):
+        tones_raw.append((key, _tone(it, key, names, source)))
+    orders = tuple(sorted({m[0] for m in multi} | {t[1]["order"] for t in tones_raw if t[1]["target"] == "multipole"}))
+    for order, spec, scales, default, key in multi:
+        k = orders.index(order)
+        sources.append(NoiseSource("multipole", k, 0, order, spec, scales, default, key))
+        sources.append(NoiseSource("multipole", k, 1, order, spec, scales, default, key))
+    tones = []
+    for key, d in tones_raw:
+        ch = d["axis"] if d["target"] == "field" else orders.index(d["order"])
+        tones.append(Tone(d["target"], ch, d["order"], d["component"], d["amplitude"], d["frequency"],
+                          d["phase"], d["stages"], key))
+    return NoiseModel(tuple(sources), tuple(tones), orders, names)
+
+
+def model_from_config(cfg) -> NoiseModel:
+    """:func:`parse_noise` of a :class:`mdrotor.config.Config`."""
+    names = [s.name for s in cfg.schedule.stages] if cfg.schedule is not None else []
+    return parse_noise(cfg.noise, cfg.source, names)
+
+
+def _items(v, key, source):
+    if v is None:
+        return []
+    if isinstance(v, dict):
+        return [(key, v)]
+    if not isinstance(v, list) or not all(isinstance(x, dict) for x in v):
+        raise InputError(key, "expected a table or an array of tables ([[" + key + "]])", source)
+    return [(f"{key}[{i}]", x) for i, x in enumerate(v)]
+
+
+def _check_keys(table, key, allowed, source):
+    if not isinstance(table, dict):
+        raise InputError(key, "expected a table", source)
+    for k in table:
+        if k not in allowed:
+            raise InputError(f"{key}.{k}", f"unknown key; expected one of {sorted(allowed)}", source)
+
+
+def _require(table, k, key, source, what):
+    if k not in table:
+        raise InputError(f"{key}.{k}", f"missing; expected {what}", source)
+    return table[k]
+
+
+def _order(v, key, source) -> int:
+    if isinstance(v, bool) or not isinstance(v, int) or v < 2:
+        raise InputError(key, f"expected an integer multipole order n >= 2 (the uniform field is [[noise.field]]), got {v!r}", source)
+    return v
+
+
+def _number(v, key, source, what) -> float:
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+        raise InputError(key, f"expected {what}, got {v!r}", source)
+    return float(v)
+
+
+def _freq(v, key, source, positive=True) -> float:
+    f = units.parse(v, "frequency", key, source)
+    if not math.isfinite(f) or f < 0 or (positive and f == 0):
+        raise InputError(key, f"expected a {'positive' if positive else 'non-negative'} frequency such as '1 MHz', got {v!r}", source)
+    return f
+
+
+def _spectrum(spec, key, order, source) -> Spectrum:
+    items = [(key, spec)] if isinstance(spec, dict) else None
+    if items is None:
+        if not isinstance(spec, list) or not spec:
+            raise InputError(key, "expected a PSD term { kind = ..., level = ... } or a non-empty list of them", source)
+        items = [(f"{key}[{i}]", t) for i, t in enumerate(spec)]
+    terms = []
+    for k, t in items:
+        if not isinstance(t, dict):
+            raise InputError(k, "expected a PSD term { kind = ..., level = ... }", source)
+        kind = _require(t, "kind", k, source, f"one of {list(KINDS)}")
+        if kind not in KINDS:
+            raise InputError(f"{k}.kind", f"expected one of {list(KINDS)}, got {kind!r}", source)
+        _check_keys(t, k, TERM_KEYS[kind], source)
+        level = units.parse(_require(t, "level", k, source, f"a PSD such as '{psd_example(order)}'"), "custom",
+                            f"{k}.level", source, dimensionality=psd_dimensionality(order), example=psd_example(order))
+        if not math.isfinite(level) or level < 0:
+            raise InputError(f"{k}.level", f"expected a non-negative PSD such as '{psd_example(order)}', got {t['level']!r}", source)
+        if kind == "white":
+            terms.append(PsdTerm("white", level))
+        elif kind == "power":
+            f_ref = _freq(_require(t, "f_ref", k, source, "the reference frequency of the level, such as '1 MHz'"), f"{k}.f_ref", source)
+            alpha = _number(_require(t, "alpha", k, source, "the exponent alpha in f^-alpha, 0 to 2"), f"{k}.alpha", source, "an exponent between 0 and 2")
+            if not 0.0 <= alpha <= 2.0:
+                raise InputError(f"{k}.alpha", f"expected an exponent between 0 and 2 (a sum of Lorentzians cannot rise or fall faster than f^-2), got {alpha!r}", source)
+            f_min = _freq(_require(t, "f_min", k, source, "the lower band edge, such as '1 kHz'"), f"{k}.f_min", source)
+            f_max = _freq(_require(t, "f_max", k, source, "the upper band edge, such as '10 MHz'"), f"{k}.f_max", source)
+            if not f_max > f_min:
+                raise InputError(f"{k}.f_max", f"expected an upper band edge above f_min ({t['f_min']!r}), got {t['f_max']!r}", source)
+            terms.append(PsdTerm("power", level, f_ref_hz=f_ref, alpha=alpha, f_min_hz=f_min, f_max_hz=f_max))
+        else:
+            fc = _freq(t.get("f_center", "0 Hz"), f"{k}.f_center", source, positive=False)
+            w = _freq(_require(t, "width", k, source, "the half width at half maximum, such as '10 kHz'"), f"{k}.width", source)
+            terms.append(PsdTerm("lorentzian", level, f_center_hz=fc, width_hz=w))
+    return Spectrum.from_terms(terms)
+
+
+def _stage_scales(v, key, names, source):
+    if v is None:
+        return {}, 1.0
+    if isinstance(v, list):
+        for i, s in enumerate(v):
+            _stage_name(s, f"{key}[{i}]", names, source)
+        return {s: 1.0 for s in v}, 0.0
+    if not isinstance(v, dict):
+        raise InputError(key, "expected a table { stage = PSD scale } or a list of stage names", source)
+    out = {}
+    for s, x in v.items():
+        _stage_name(s, f"{key}.{s}", names, source)
+        val = _number(x, f"{key}.{s}", source, "a non-negative PSD scale (amplitude squared), e.g. 1.0")
+        if val < 0:
+            raise InputError(f"{key}.{s}", f"expected a non-negative PSD scale (amplitude squared), got {x!r}", source)
+        out[s] = val
+    return out, 1.0
+
+
+def _stage_name(s, key, names, source):
+    if not isinstance(s, str):
+        raise InputError(key, f"expected a stage name, got {s!r}", source)
+    if s not in names:
+        raise InputError(key, f"no stage named {s!r}; the stages are {list(names)}", source)
+
+
+def _tone(it, key, names, source) -> dict:
+    _check_keys(it, key, TONE_KEYS, source)
+    target = _require(it, "target", key, source, "'field' or 'multipole'")
+    if target not in ("field", "multipole"):
+        raise InputError(f"{key}.target", f"expected 'field' or 'multipole', got {target!r}", source)
+    d = {"target": target, "axis": 0, "order": 0, "component": "re"}
+    if target == "field":
+        for bad in ("order", "component"):
+            if bad in it:
+                raise InputError(f"{key}.{bad}", "only for target = 'multipole'; a field tone has an axis", source)
+        a = _require(it, "axis", key, source, "'x', 'y' or 'z'")
+        if a not in AXES:
+            raise InputError(f"{key}.axis", f"expected 'x', 'y' or 'z', got {a!r}", source)
+        d["axis"] = AXES.index(a)
+    else:
+        if "axis" in it:
+            raise InputError(f"{key}.axis", "only for target = 'field'; a multipole tone has an order and a component", source)
+        d["order"] = _order(_require(it, "order", key, source, "the multipole order n >= 2"), f"{key}.order", source)
+        comp = it.get("component", "re")
+        if comp not in COMPONENTS:
+            raise InputError(f"{key}.component", f"expected one of {list(COMPONENTS)}, got {comp!r}", source)
+        d["component"] = comp
+    n = d["order"]
+    amp = units.parse(_require(it, "amplitude", key, source, f"an amplitude such as '{_amp_example(n)}'"), "custom",
+                      f"{key}.amplitude", source, dimensionality=_amp_dimensionality(n), example=_amp_example(n))
+    if not math.isfinite(amp) or amp < 0:
+        raise InputError(f"{key}.amplitude", f"expected a non-negative amplitude such as '{_amp_example(n)}' (use phase for the sign)", source)
+    d["amplitude"] = amp
+    d["frequency"] = _freq(_require(it, "frequency", key, source, "a frequency such as '400 kHz'"), f"{key}.frequency", source, positive=False)
+    d["phase"] = units.parse(it.get("phase", 0.0), "angle", f"{key}.phase", source)
+    st = it.get("stages")
+    if st is None:
+        d["stages"] = None
+    else:
+        if not isinstance(st, list):
+            raise InputError(f"{key}.stages", "expected a list of stage names during which the tone is on", source)
+        for i, s in enumerate(st):
+            _stage_name(s, f"{key}.stages[{i}]", names, source)
+        d["stages"] = tuple(st)
+    return d
+
+
+# ---------------------------------------------------------------------------
+# Analytic rates (pure formulas)
+# ---------------------------------------------------------------------------
+def _err(key, expected, func):
+    return InputError(key, expected, f"{_SRC}.{func}")
+
+
+def _nonneg(x, key, func) -> float:
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        raise _err(key, f"a finite number >= 0, got {x!r}", func) from None
+    if not math.isfinite(v) or v < 0:
+        raise _err(key, f"a finite number >= 0, got {x!r}", func)
+    return v
+
+
+def _positive(x, key, func) -> float:
+    v = _nonneg(x, key, func)
+    if v == 0:
+        raise _err(key, f"a finite number > 0, got {x!r}", func)
+    return v
+
+
+def _axis_index(axis, key, func) -> int:
+    if axis in AXES:
+        return AXES.index(axis)
+    if isinstance(axis, (int, np.integer)) and not isinstance(axis, bool) and 0 <= axis < 3:
+        return int(axis)
+    raise _err(key, f"'x', 'y', 'z' or 0..2, got {axis!r}", func)
+
+
+def turchette_heating_rate(S_E_v2_m2_hz: float, mass_kg: float, charge_c: float, f_mode_hz: float) -> float:
+    """Heating rate of one ion's motional mode by uniform field noise, quanta/s.
+
+    ``dn/dt = Q^2 S_E(f) / (4 m hbar omega)``, ``omega = 2 pi f``
+    (Q.A. Turchette et al., Phys. Rev. A 61, 063418 (2000); M. Brownnutt et
+    al., Rev. Mod. Phys. 87, 1419 (2015)).
+
+    Parameters
+    ----------
+    S_E_v2_m2_hz : float
+        One-sided field PSD along the mode axis at the mode frequency, V^2/m^2/Hz.
+    mass_kg, charge_c : float
+    f_mode_hz : float
+        Mode frequency, Hz.
+    """
+    func = "turchette_heating_rate"
+    s = _nonneg(S_E_v2_m2_hz, "S_E_v2_m2_hz", func)
+    m = _positive(mass_kg, "mass_kg", func)
+    q = float(charge_c)
+    f = _positive(f_mode_hz, "f_mode_hz", func)
+    return q * q * s / (4.0 * m * HBAR * TWO_PI * f)
+
+
+def com_heating_rate(S_E_v2_m2_hz: float, masses_kg, charges_c, f_mode_hz: float) -> float:
+    """Heating rate of the centre-of-mass mode of N ions along one axis, quanta/s.
+
+    The COM of ions with one charge-to-mass ratio is an oscillator of mass
+    ``sum m`` and charge ``sum Q``: Turchette's formula with those, i.e.
+    N times the single-ion energy rate for identical ions.
+
+    Raises
+    ------
+    InputError
+        If the ions' Q/m differ (the COM motion is then not a normal mode).
+    """
+    func = "com_heating_rate"
+    m = np.atleast_1d(np.asarray(masses_kg, dtype=float))
+    q = np.atleast_1d(np.asarray(charges_c, dtype=float))
+    if m.shape != q.shape or np.any(m <= 0):
+        raise _err("masses_kg", "positive masses, one per charge", func)
+    qm = q / m
+    if np.any(np.abs(qm - qm[0]) > 1e-12 * abs(qm[0])):
+        raise _err("charges_c", "ions with one charge-to-mass ratio (the centre of mass of a mixed crystal is not a normal mode)", func)
+    return turchette_heating_rate(S_E_v2_m2_hz, float(np.sum(m)), float(np.sum(q)), f_mode_hz)
+
+
+def diffusion_constant(order: int, moment_c_mn, S_re: float, S_im: float | None = None) -> DiffusionConstant:
+    """Angular-momentum diffusion of a rigid rotor under order-n field-multipole noise.
+
+    ``D = n^2 |M_n|^2 (S_re + S_im) / 8`` with the PSDs at ``n |f_rot|``;
+    ``S_im = S_re`` (default) gives ``n^2 |M_n|^2 S / 4``. Derivation in the
+    module docstring; ``<(L(t) - L(0))^2> = 2 D t``.
+
+    Parameters
+    ----------
+    order : int
+        n >= 1 (1: uniform in-plane field, ``S_re = S_Ex``, ``S_im = S_Ey``,
+        moment about the centre of mass).
+    moment_c_mn : complex or float
+        Order-n moment ``M_n = sum_i Q_i z_i^n`` of the crystal, C m^n.
+    S_re, S_im : float
+        One-sided PSDs of ``g_re`` and ``g_im`` at ``n |f_rot|``, V^2/m^(2n)/Hz.
+
+    Returns
+    -------
+    DiffusionConstant
+        ``(D_si, D_hbar2_per_s)``.
+    """
+    func = "diffusion_constant"
+    if isinstance(order, bool) or not isinstance(order, (int, np.integer)) or order < 1:
+        raise _err("order", f"an integer order n >= 1, got {order!r}", func)
+    s_re = _nonneg(S_re, "S_re", func)
+    s_im = s_re if S_im is None else _nonneg(S_im, "S_im", func)
+    m2 = abs(complex(moment_c_mn)) ** 2
+    d = order**2 * m2 * (s_re + s_im) / 8.0
+    return DiffusionConstant(d, d / HBAR**2)
+
+
+def psd_for_diffusion(D_hbar2_per_s: float, order: int, moment_c_mn) -> float:
+    """Multipole-noise PSD at ``n f_rot`` (each of g_re, g_im) that gives ``D``.
+
+    Inverse of :func:`diffusion_constant`: ``S = 4 hbar^2 D / (n^2 |M_n|^2)``,
+    V^2/m^(2n)/Hz; e.g. with ``D`` from :func:`mdrotor.coherence.coherence_budget`.
+    """
+    func = "psd_for_diffusion"
+    d = _nonneg(D_hbar2_per_s, "D_hbar2_per_s", func)
+    if isinstance(order, bool) or not isinstance(order, (int, np.integer)) or order < 1:
+        raise _err("order", f"an integer order n >= 1, got {order!r}", func)
+    m2 = abs(complex(moment_c_mn)) ** 2
+    if m2 == 0:
+        return math.inf
+    return 4.0 * HBAR**2 * d / (order**2 * m2)
+
+
+def tone_torque(order: int, moment_c_mn, amplitude: float, component: str = "re") -> float:
+    """Largest mean torque of a tone at exactly ``n f_rot`` on a rigid rotor, N m.
+
+    ``n A |M_n| / 2`` for a standing tone (component ``"re"`` or ``"im"``),
+    ``n A |M_n|`` for a rotating one; the mean torque is this times
+    ``sin(n phi_0 + arg M_n - phase)`` (``cos`` for ``"im"``), see the
+    module docstring. L changes linearly at this rate.
+    """
+    func = "tone_torque"
+    if isinstance(order, bool) or not isinstance(order, (int, np.integer)) or order < 1:
+        raise _err("order", f"an integer order n >= 1, got {order!r}", func)
+    if component not in COMPONENTS:
+        raise _err("component", f"one of {list(COMPONENTS)}, got {component!r}", func)
+    a = _nonneg(amplitude, "amplitude", func)
+    t = order * a * abs(complex(moment_c_mn))
+    return t if component == "rotating" else t / 2.0
+
+
+# ---------------------------------------------------------------------------
+# Rates from a run: analytic next to fitted
+# ---------------------------------------------------------------------------
+def run_rates(plan, raw) -> dict:
+    """Analytic and fitted noise rates of a finished run.
+
+    The stage used is the last one in which the noise is on; its start is
+    the previous stage's end (or t = 0). Fitted, with standard errors:
+
+    * ``D`` from the growth of the L variance, D = (var L(t1) - var L(t0)) /
+      (2 (t1 - t0)) (<dL^2> = 2 D t; the error from the normal-theory
+      standard error of each variance, var sqrt(2 / (n - 1))). Meaningful
+      when the crystal rotates freely in that stage (pinning off).
+    * heating per mode, (<n_k>(t1) - <n_k>(t0)) / (t1 - t0), with the
+      standard errors of the two means, for modes present at both times.
+
+    Analytic, for the crystal rotating at the fitted stage's mean rate:
+    Turchette COM heating along x, y, z and D per multipole order
+    (:meth:`NoiseModel.rotor_diffusion`).
+    """
+    from .statics import compute_crystal
+    from .stats import OK_MASK
+
+    model = plan.noise
+    sched = plan.schedule
+    names = [s.name for s in sched.stages]
+    active = [k for k, nm in enumerate(names) if model.active(nm)]
+    if not active:
+        return {}
+    k = active[-1]
+    stage = names[k]
+    after = raw.stages[stage]
+    before = raw.initial if k == 0 else raw.stages.get(names[k - 1])
+    if before is None or not before:
+        return {}
+    t0, t1 = float(sched.boundaries_s[k]), float(sched.boundaries_s[k + 1])
+    ok = ((after["status"] & OK_MASK) == 0) & ((before["status"] & OK_MASK) == 0)
+    n = int(np.sum(ok))
+    out = {"stage": stage, "t0_s": t0, "t1_s": t1, "n_trajectories": n, "pinned": bool(plan.pinned_at(t1))}
+    l0, l1 = before["L_com_hbar"][ok], after["L_com_hbar"][ok]
+    if n > 2:
+        v0, v1 = np.var(l0, ddof=1), np.var(l1, ddof=1)
+        out["D_fit_hbar2_per_s"] = (v1 - v0) / (2 * (t1 - t0))
+        out["D_fit_err_hbar2_per_s"] = np.hypot(v0, v1) * np.sqrt(2.0 / (n - 1)) / (2 * (t1 - t0))
+    m0, m1 = before["_modes"], after["_modes"]
+    labels, fitted, errs = [], [], []
+    for j, lab in enumerate(m1.labels):
+        if lab in m0.labels:
+            i = m0.labels.index(lab)
+            a, b = before["mode_n"][ok, i], after["mode_n"][ok, j]
+            labels.append(lab)
+            fitted.append((np.mean(b) - np.mean(a)) / (t1 - t0))
+            errs.append(np.hypot(np.std(a, ddof=1), np.std(b, ddof=1)) / np.sqrt(max(n, 2)) / (t1 - t0))
+    out["heating_labels"] = labels
+    out["heating_fit_quanta_per_s"] = np.array(fitted)
+    out["heating_fit_err_quanta_per_s"] = np.array(errs)
+    # analytic: the crystal rotating at the stage-end mean rate
+    f_end = float(np.mean(after["f_rot_hz"][ok])) if n else 0.0
+    cr = compute_crystal(plan.potential(f_end, float(sched.theta_rad(t1)), plan.pin_scales(t1)), f_end,
+                         start=plan.crystal0.positions_m)
+    com = {lab: f for lab, f, kind in zip(cr.modes.labels, cr.modes.freq_hz, cr.modes.kinds) if kind == "com"}
+    if model.has_field:
+        # lab-frame COM frequencies along x, y, z from the secular frequencies (the COM of identical ions)
+        fx, fy, fz = np.sqrt(plan.cfg.trap.omega_sq(plan.masses[:1], plan.charges[:1])[0]) / (2 * np.pi)
+        try:
+            out["turchette_quanta_per_s"] = model.com_heating_rates(plan.masses, plan.charges, [fx, fy, fz], stage)
+            out["turchette_axes"] = ["x", "y", "z"]
+        except Exception:  # mixed charge-to-mass: no single COM mode
+            pass
+    del com
+    diff = model.rotor_diffusion(cr.positions_m, plan.masses, plan.charges, f_end, stage)
+    out["D_analytic_orders"] = np.array([o for o in diff if o != "total"], dtype=np.int64)
+    out["D_analytic_hbar2_per_s"] = np.array([diff[o].D_hbar2_per_s for o in diff if o != "total"])
+    out["D_analytic_total_hbar2_per_s"] = diff["total"].D_hbar2_per_s
+    out["f_rot_hz"] = f_end
+    return out

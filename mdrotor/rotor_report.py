@@ -1,0 +1,200 @@
+"""``mdrotor rotor``: quantum-rotor quantities of a result or a config.
+
+Collects, for the crystal rotating at the end of the run (or of the config's
+schedule): the moment of inertia with its centrifugal stretch, hbar / I, the
+rotational lines for Delta L = 1..k with the width from the L spread, the
+exchange time (branches k quanta apart turn by 2 pi / N relative to each
+other) and the revival time, the spin statistics and allowed L ladder, the
+angular-momentum diffusion constant D (given, fitted from the run's noise,
+or analytic from the config's noise spectrum), the Ramsey and echo contrast
+it leaves (:mod:`mdrotor.coherence`), and the coherence budget: the largest
+D, and the noise PSD at n f_rot that produces it, that still leaves a chosen
+contrast at the exchange time.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+from scipy import constants as sc
+
+HBAR = sc.hbar
+TWO_PI = 2.0 * np.pi
+
+
+def _from_result(path):
+    import tomllib
+
+    from . import load
+    from .config import from_dict
+
+    res = load(path)
+    cfg = from_dict(tomllib.loads(res.attrs["config_text"]), str(path))
+    s = res.summary
+    f = float(s["f_rot_mean_hz"])
+    fitted = None
+    nz = res.extra.get("noise")
+    if nz and "D_fit_hbar2_per_s" in nz:
+        fitted = (float(nz["D_fit_hbar2_per_s"]), float(nz["D_fit_err_hbar2_per_s"]))
+    return cfg, f, float(s["L_mean_hbar"]), float(s["L_std_hbar"]), fitted, "result"
+
+
+def _from_config(path, overrides):
+    from .config import load_config
+
+    cfg = load_config(path, overrides)
+    f = float(cfg.schedule.f_rot_hz(cfg.schedule.duration_s)) if cfg.schedule is not None else cfg.f_start_hz
+    return cfg, f, None, 0.0, None, "config"
+
+
+def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float | None = None,
+                  contrast: float = 0.5, k_lines: int = 3, overrides=()) -> dict:
+    """All rotor quantities as a JSON-ready dict (see module docstring).
+
+    Parameters
+    ----------
+    source : path
+        A result file (``.h5``) or a run config (``.toml``).
+    k : int, optional
+        Branch separation in quanta (default: the allowed ladder's spacing).
+    diffusion_hbar2_per_s : float, optional
+        D to use instead of the fitted or analytic one.
+    contrast : float
+        Target contrast of the coherence budget at the exchange time.
+    """
+    from . import coherence as coh
+    from . import rotor
+    from .errors import InputError
+    from .multipole import moment
+    from .statics import compute_crystal, model_potential
+
+    p = Path(source)
+    if p.suffix in (".h5", ".hdf5"):
+        cfg, f, l_mean, sigma_l, fitted, kind = _from_result(p)
+    else:
+        cfg, f, l_mean, sigma_l, fitted, kind = _from_config(p, overrides)
+    if not 0 < contrast < 1:
+        raise InputError("--contrast", "expected a contrast between 0 and 1", "command line")
+    sched = cfg.schedule
+    t_end = sched.duration_s if sched is not None else 0.0
+    scales = [sched.pinning_scale(t_end, j) for j in range(len(cfg.pinning))] if sched is not None else None
+    cr = compute_crystal(model_potential(cfg, f, pin_scale=scales), f, seed=cfg.search_seed)
+    I = cr.moment_of_inertia_kg_m2
+    n_ions = cr.positions_m.shape[0]
+    names = [s.name for s in cfg.species]
+    identical = len(set(names)) == 1
+    stat = cfg.species[0].statistics if identical else "mixed"
+    mod, res_ = rotor.allowed_L_ladder(n_ions, stat if stat in ("boson", "fermion") else "unknown", identical)
+    if k is None:
+        k = int(mod) if mod > 1 else 1
+    if l_mean is None:
+        l_mean = I * TWO_PI * f / HBAR
+    lines = rotor.transition_frequencies_hz(f, I, max(k_lines, k), sigma_l)
+    t_ex = float(rotor.exchange_time_s(I, k, n_ions))
+    t_rev = float(rotor.revival_time_s(I, k))
+    # the lowest multipole order that the crystal feels (its noise torques kick L by n quanta)
+    xy = cr.positions_m[:, :2] - np.sum(cr.masses_kg[:, None] * cr.positions_m[:, :2], axis=0) / np.sum(cr.masses_kg)
+    ref = [np.sum(np.abs(cr.charges_c) * np.hypot(*xy.T) ** n) for n in range(2, 13)]
+    order = next((n for n, r in zip(range(2, 13), ref) if abs(moment(xy, cr.charges_c, n)) > 1e-6 * r), 2)
+    m_n = moment(xy, cr.charges_c, order)
+    # D: given > fitted from the run > analytic from the config's noise
+    analytic = None
+    if cfg.noise:
+        from .noise import model_from_config
+
+        model = model_from_config(cfg)
+        if not model.is_empty:
+            stage = sched.stages[-1].name if sched is not None else None
+            analytic = model.rotor_diffusion(cr.positions_m, cr.masses_kg, cr.charges_c, f, stage)["total"].D_hbar2_per_s
+    if diffusion_hbar2_per_s is not None:
+        D, d_src = float(diffusion_hbar2_per_s), "given"
+    elif fitted is not None and fitted[0] > 0:
+        D, d_src = fitted[0], "fitted from the run"
+    elif analytic is not None:
+        D, d_src = float(analytic), "analytic from the noise spectrum"
+    else:
+        D, d_src = 0.0, "none (no noise given)"
+    kick = order
+    out = {
+        "source": str(source), "source_kind": kind, "n_ions": n_ions, "species": names,
+        "f_rot_hz": f, "L_mean_hbar": l_mean, "L_std_hbar": sigma_l,
+        "moment_of_inertia_kg_m2": I, "hbar_over_I_hz": float(rotor.hbar_over_I_hz(I)),
+        "statistics": stat, "allowed_L_mod": int(mod), "allowed_L_residue": int(res_),
+        "k": int(k), "lines": [{"dL": int(a), "freq_hz": float(b), "width_hz": float(c)}
+                               for a, b, c in zip(lines.k, lines.centre_hz, lines.width_hz)],
+        "exchange_time_s": t_ex, "revival_time_s": t_rev,
+        "diffusion_hbar2_per_s": D, "diffusion_source": d_src, "noise_order": order, "kick_quanta": kick,
+    }
+    if fitted is not None:
+        out["diffusion_fitted_hbar2_per_s"], out["diffusion_fitted_err_hbar2_per_s"] = fitted
+    if analytic is not None:
+        out["diffusion_analytic_hbar2_per_s"] = float(analytic)
+    if D > 0:
+        out["coherence_time_s"] = float(coh.coherence_time_s(k, D, I, kind="ramsey", kick_quanta=kick))
+        out["echo_coherence_time_s"] = float(coh.coherence_time_s(k, D, I, kind="echo", kick_quanta=kick))
+    else:
+        out["coherence_time_s"] = out["echo_coherence_time_s"] = float("inf")
+    out["ramsey_contrast_at_exchange"] = float(coh.ramsey_contrast(t_ex, k, D, I, kick_quanta=kick))
+    out["echo_contrast_at_exchange"] = float(coh.echo_contrast(t_ex, k, D, I, kick_quanta=kick))
+    out["ramsey_contrast_at_revival"] = float(coh.ramsey_contrast(t_rev, k, D, I, kick_quanta=kick))
+    out["short_time_law_valid_until_s"] = float(coh.short_time_validity_s(k, I, kick_quanta=kick))
+    budget = float(coh.coherence_budget(contrast, t_ex, k, I, kick_quanta=kick))
+    from .noise import psd_for_diffusion
+
+    out["budget_contrast"] = contrast
+    out["budget_diffusion_hbar2_per_s"] = budget
+    out["budget_psd_at_n_f_rot"] = float(psd_for_diffusion(budget, order, m_n))
+    out["budget_psd_unit"] = f"V^2/m^{2 * order}/Hz"
+    out["budget_psd_frequency_hz"] = order * abs(f)
+    return out
+
+
+def text(d: dict) -> str:
+    lines = [f"rotor of {d['n_ions']} ion(s) ({', '.join(sorted(set(d['species'])))}) from the {d['source_kind']} {d['source']}",
+             f"  rotating at {d['f_rot_hz'] / 1e3:.6g} kHz, L = {d['L_mean_hbar']:.6g} hbar"
+             + (f", spread {d['L_std_hbar']:.4g} hbar" if d['L_std_hbar'] else " (no spread from a config)"),
+             f"  moment of inertia I = {d['moment_of_inertia_kg_m2']:.6e} kg m^2 (centrifugally stretched), hbar/(2 pi I) = {d['hbar_over_I_hz']:.6g} Hz",
+             f"  spin statistics: {d['statistics']}; allowed L = {d['allowed_L_residue']} mod {d['allowed_L_mod']}",
+             "", "  rotational lines L -> L + dL:"]
+    for ln in d["lines"]:
+        lines.append(f"    dL = {ln['dL']}: {ln['freq_hz'] / 1e3:14.6f} kHz, width {ln['width_hz']:.4g} Hz")
+    lines += ["",
+              f"  branches k = {d['k']} quanta apart: exchange (2 pi / {d['n_ions']}) after {d['exchange_time_s'] * 1e3:.6g} ms, "
+              f"revival (2 pi) after {d['revival_time_s'] * 1e3:.6g} ms",
+              f"  angular-momentum diffusion D = {d['diffusion_hbar2_per_s']:.4g} hbar^2/s ({d['diffusion_source']}; "
+              f"order-{d['noise_order']} torques kick L by {d['kick_quanta']})"]
+    if "diffusion_fitted_hbar2_per_s" in d:
+        lines.append(f"    fitted {d['diffusion_fitted_hbar2_per_s']:.4g} +- {d['diffusion_fitted_err_hbar2_per_s']:.2g} hbar^2/s")
+    if "diffusion_analytic_hbar2_per_s" in d:
+        lines.append(f"    analytic {d['diffusion_analytic_hbar2_per_s']:.4g} hbar^2/s")
+    lines += [f"  coherence time (1/e): Ramsey {d['coherence_time_s'] * 1e3:.4g} ms, echo {d['echo_coherence_time_s'] * 1e3:.4g} ms",
+              f"  contrast at the exchange time: Ramsey {d['ramsey_contrast_at_exchange']:.4f}, echo {d['echo_contrast_at_exchange']:.4f}; "
+              f"Ramsey at the revival {d['ramsey_contrast_at_revival']:.4f}",
+              f"  the t^3 short-time law holds to 1 % until {d['short_time_law_valid_until_s'] * 1e3:.4g} ms",
+              f"  budget: contrast {d['budget_contrast']:.2f} at the exchange time needs D <= {d['budget_diffusion_hbar2_per_s']:.4g} hbar^2/s,",
+              f"          i.e. order-{d['noise_order']} field noise S <= {d['budget_psd_at_n_f_rot']:.4g} {d['budget_psd_unit']} at "
+              f"{d['budget_psd_frequency_hz'] / 1e3:.6g} kHz (n f_rot)"]
+    return "\n".join(lines)
+
+
+def cli_rotor(args) -> int:
+    from .errors import InputError
+
+    D = None
+    if args.diffusion is not None:
+        try:
+            D = float(args.diffusion)
+        except ValueError:
+            raise InputError("--diffusion", f"expected a number in hbar^2/s, got {args.diffusion!r}", "command line") from None
+        if D < 0:
+            raise InputError("--diffusion", "expected a non-negative diffusion constant in hbar^2/s", "command line")
+    if args.k is not None and args.k < 1:
+        raise InputError("--k", "expected a positive number of quanta", "command line")
+    d = rotor_summary(args.source, k=args.k, diffusion_hbar2_per_s=D, contrast=args.contrast, overrides=args.overrides)
+    if args.json:
+        print(json.dumps(d))
+    else:
+        print(text(d))
+    return 0

@@ -1,0 +1,148 @@
+"""Electric-field noise in the engine: heating, angular-momentum diffusion, tones."""
+
+import numpy as np
+import pytest
+from scipy import constants as sc
+
+import mdrotor
+from mdrotor.noise import diffusion_constant, tone_torque, turchette_heating_rate
+
+HBAR = sc.hbar
+TWO_PI = 2 * np.pi
+
+
+def cfg(n_ions, noise, *, f_start="0 Hz", duration="40 us", trajectories=2000, trap=None, temperature="0 K"):
+    d = {"species": {"ion": "40Ca+"}, "crystal": {"ions": n_ions},
+         "trap": trap or {"f_radial": "1.2 MHz", "f_axial": "2.9 MHz"},
+         "rotation": {"f_start": f_start}, "stage": [{"name": "free", "duration": duration}],
+         "initial": {"temperature": temperature, "wigner": False},
+         "run": {"trajectories": trajectories, "seed": 17}, "noise": noise}
+    return mdrotor.load_config(d)
+
+
+def _mode(res, label):
+    fin = res.final
+    k = fin.modes["label"].index(label)
+    return fin.arrays["mode_n"][:, k], fin.modes["freq_hz"][k]
+
+
+def test_single_ion_heating_turchette():
+    """White field noise along x heats the x motion at n_dot = e^2 S_E / (4 m
+    hbar w) (Q.A. Turchette et al., Phys. Rev. A 61, 063418 (2000)) within
+    5 %: 4000 trajectories from rest (the mean of E / (hbar w) has a 1.6 %
+    standard error)."""
+    S = 1e-11
+    c = cfg(1, {"field": {"axes": ["x"], "psd": {"kind": "white", "level": f"{S} V^2/m^2/Hz"}}},
+            trap={"f_radial": "1.2 MHz", "f_axial": "2.9 MHz", "radial_split": "0.2 MHz"}, trajectories=4000)
+    res = mdrotor.run(c)
+    t = res.final.t_s
+    n, f = _mode(res, "com-xy-2")  # the x mode (higher of the split pair)
+    assert abs(f - 1.3e6) < 1.0
+    rate = turchette_heating_rate(S, res.attrs["moment_of_inertia_kg_m2"] * 0 + 39.96 * sc.atomic_mass, sc.e, f)
+    from mdrotor.species import get_species
+
+    m = get_species("40Ca+").mass_kg
+    rate = turchette_heating_rate(S, m, sc.e, f)
+    assert rate == pytest.approx(sc.e**2 * S / (4 * m * HBAR * TWO_PI * f))
+    assert abs(np.mean(n) / (rate * t) - 1) < 0.05
+    other, _ = _mode(res, "com-xy-1")  # the y mode sees no noise
+    assert np.mean(other) < 1e-3 * np.mean(n)
+
+
+def test_crystal_com_heated_differential_not_no_torque():
+    """A uniform field heats only the centre-of-mass motion, N times the
+    single-ion energy rate (M. Brownnutt et al., Rev. Mod. Phys. 87, 1419
+    (2015)), and exerts no torque on a crystal of identical ions."""
+    S = 1e-11
+    c = cfg(3, {"field": {"axes": ["x", "y", "z"], "psd": {"kind": "white", "level": f"{S} V^2/m^2/Hz"}}},
+            trap={"f_radial": "1.0 MHz", "f_axial": "3.0 MHz"}, trajectories=1500)
+    res = mdrotor.run(c)
+    from mdrotor.species import get_species
+
+    m = get_species("40Ca+").mass_kg
+    t = res.final.t_s
+    fin = res.final
+    mn = fin.arrays["mode_n"]
+    for k, (lab, kind, f) in enumerate(zip(fin.modes["label"], fin.modes["kind"], fin.modes["freq_hz"])):
+        if kind == "com":
+            # Turchette with total mass 3m and charge 3e: 3 x the single-ion quanta rate
+            rate = turchette_heating_rate(S, 3 * m, 3 * sc.e, f)
+            assert abs(np.mean(mn[:, k]) / (rate * t) - 1) < 0.08, lab  # 1500 samples: 2.6 % sd
+        else:
+            assert np.mean(mn[:, k]) < 1e-6, lab
+    assert np.max(np.abs(fin.arrays["L_com_hbar"])) < 1e-3
+
+
+def _moment(res_or_cfg, order):
+    cr = mdrotor.crystal(res_or_cfg, None)
+    z = cr.positions_m[:, 0] + 1j * cr.positions_m[:, 1]
+    return np.sum(cr.charges_c * z**order)
+
+
+def test_quadrupole_noise_diffusion_two_ion_rotor():
+    """Quadrupole noise on a rotating pair: <(L - L0)^2> = 2 D t with D = n^2
+    |M_n|^2 S(n f_rot) / 4 (derived in mdrotor.noise; resonant at n f_rot),
+    within 5 % (6000 trajectories: 1.8 % sd of the variance); a noise band
+    away from 2 f_rot gives none."""
+    S = 100.0  # V^2/m^4/Hz: sigma_L ~ 1000 hbar after 20 us
+    c = cfg(2, {"multipole": {"order": 2, "psd": {"kind": "white", "level": f"{S} V^2/m^4/Hz"}}},
+            f_start="150 kHz", duration="20 us", trajectories=6000)
+    res = mdrotor.run(c)
+    M2 = _moment(c, 2)
+    D = diffusion_constant(2, M2, S).D_si
+    var = np.var(res.final.arrays["L_com_hbar"] * HBAR, ddof=1)
+    assert abs(var / (2 * D * res.final.t_s) - 1) < 0.05
+    # a Lorentzian at 20 kHz, 2 kHz wide: nothing near 300 kHz
+    c2 = cfg(2, {"multipole": {"order": 2, "psd": {"kind": "lorentzian", "level": f"{S} V^2/m^4/Hz",
+                                                   "f_center": "20 kHz", "width": "2 kHz"}}},
+             f_start="150 kHz", duration="20 us", trajectories=2000)
+    res2 = mdrotor.run(c2)
+    var2 = np.var(res2.final.arrays["L_com_hbar"] * HBAR, ddof=1)
+    assert var2 < 0.01 * var
+
+
+def test_tone_gives_coherent_torque():
+    """A rotating order-2 tone at 2 f_rot acts like a weak co-rotating pin:
+    a steady torque n A |M_n| sin(arg M_n(0) - phase) (derived in
+    mdrotor.noise): L grows linearly at that rate for every trajectory (each
+    starts at its own random orientation) to 1 %."""
+    A = 3.0  # V/m^2
+    f_rot = 150e3
+    c = cfg(2, {"tone": {"target": "multipole", "order": 2, "component": "rotating", "amplitude": f"{A} V/m^2",
+                         "frequency": f"{2 * f_rot} Hz", "phase": "0 deg"}},
+            f_start=f"{f_rot} Hz", duration="5 us", trajectories=40)
+    from mdrotor.engine import initial_states, make_plan
+
+    plan = make_plan(c)
+    pos, _ = initial_states(plan, c.run.seed, np.arange(40))
+    z = pos[0] + 1j * pos[1]
+    m_lab = np.sum(plan.charges[:, None] * z**2, axis=0)
+    res = mdrotor.run(c)
+    dl = (res.final.arrays["L_com_hbar"] - res.initial.arrays["L_com_hbar"]) * HBAR / res.final.t_s
+    expect = tone_torque(2, np.abs(m_lab[0]), A, "rotating") * np.sin(np.angle(m_lab))
+    big = np.abs(expect) > 0.3 * np.abs(expect).max()
+    assert np.allclose(dl[big], expect[big], rtol=0.01)
+
+
+def test_triangle_diffusion_by_order():
+    """A regular triangle of identical ions has no order-2 moment: quadrupole
+    noise does not make its L diffuse, order-3 noise does with D = 9 |M_3|^2
+    S(3 f_rot) / 4 (mdrotor.noise), within 5 %."""
+    trap = {"f_radial": "1.0 MHz", "f_axial": "3.0 MHz"}
+    S2, S3 = 100.0, 1e13
+    c2 = cfg(3, {"multipole": {"order": 2, "psd": {"kind": "white", "level": f"{S2} V^2/m^4/Hz"}}},
+             f_start="100 kHz", duration="20 us", trajectories=1000, trap=trap)
+    var2 = np.var(mdrotor.run(c2).final.arrays["L_com_hbar"] * HBAR, ddof=1)
+    M2 = _moment(c2, 2)
+    pair = cfg(2, {}, f_start="100 kHz", trap=trap)  # for scale: a pair's quadrupole moment
+    D_pair = diffusion_constant(2, _moment(pair, 2), S2).D_si
+    assert abs(M2) < 1e-12 * abs(_moment(pair, 2))
+    # what remains is second order: the noise first deforms the triangle (a
+    # dynamic order-2 moment), then torques it; below 1 % of a pair's diffusion
+    assert var2 < 1e-2 * 2 * D_pair * 20e-6
+    c3 = cfg(3, {"multipole": {"order": 3, "psd": {"kind": "white", "level": f"{S3} V^2/m^6/Hz"}}},
+             f_start="100 kHz", duration="20 us", trajectories=6000, trap=trap)
+    res3 = mdrotor.run(c3)
+    D3 = diffusion_constant(3, _moment(c3, 3), S3).D_si
+    var3 = np.var(res3.final.arrays["L_com_hbar"] * HBAR, ddof=1)
+    assert abs(var3 / (2 * D3 * res3.final.t_s) - 1) < 0.05
