@@ -65,6 +65,11 @@ class Potential:
     multipoles : tuple of (order, complex coefficient C in V/m^n)
     omega_frame : float
         Rotation rate of the frame, rad/s (0: lab frame).
+    external : tuple of objects
+        Extra static electric potentials, each with ``potential(r)`` (V),
+        ``field(r)`` (E = -grad phi, V/m) and ``hessian(r)`` (V/m^2) for
+        points r (P, 3) in m; an ion adds Q phi(r_i) (e.g. a surface-electrode
+        layout at its voltages, :mod:`mdrotor.electrodes`).
     """
 
     masses_kg: np.ndarray
@@ -73,6 +78,7 @@ class Potential:
     stray_field_v_per_m: np.ndarray = field(default_factory=lambda: np.zeros(3))
     multipoles: tuple = ()
     omega_frame: float = 0.0
+    external: tuple = ()
 
     @property
     def n_ions(self) -> int:
@@ -89,6 +95,8 @@ class Potential:
         e = 0.5 * np.sum(k * r * r) - np.sum(self.charges_c[:, None] * self.stray_field_v_per_m * r)
         for order, coeff in self.multipoles:
             e += np.sum(self.charges_c * mp.potential(r[:, :2], order, coeff))
+        for ext in self.external:
+            e += float(np.sum(self.charges_c * np.asarray(ext.potential(r))))
         d = r[:, None, :] - r[None, :, :]
         dist = np.sqrt(np.sum(d * d, axis=-1))
         iu = np.triu_indices(len(r), 1)
@@ -102,6 +110,8 @@ class Potential:
         g = k * r - self.charges_c[:, None] * self.stray_field_v_per_m
         for order, coeff in self.multipoles:
             g[:, :2] += self.charges_c[:, None] * mp.gradient(r[:, :2], order, coeff)
+        for ext in self.external:
+            g -= self.charges_c[:, None] * np.asarray(ext.field(r))
         d = r[:, None, :] - r[None, :, :]
         dist2 = np.sum(d * d, axis=-1)
         np.fill_diagonal(dist2, 1.0)
@@ -122,6 +132,10 @@ class Potential:
             hm = mp.hessian(r[:, :2], order, coeff)
             for i in range(n):
                 h[i, :2, i, :2] += self.charges_c[i] * hm[i]
+        for ext in self.external:
+            he = np.asarray(ext.hessian(r))
+            for i in range(n):
+                h[i, :, i, :] += self.charges_c[i] * he[i]
         eye = np.eye(3)
         for i in range(n):
             for j in range(i + 1, n):
@@ -383,7 +397,7 @@ def normal_modes(pot: Potential, r0: np.ndarray, *, zero_tol: float = 1e-6) -> M
     # springs, no in-plane stray field unless every ion has the same Q/m (it
     # then only shifts the crystal); decided from the potential, not from
     # rounding-limited numbers
-    symmetric = (np.linalg.norm(tang) > 0 and not any(c != 0 for _, c in pot.multipoles)
+    symmetric = (np.linalg.norm(tang) > 0 and not any(c != 0 for _, c in pot.multipoles) and not pot.external
                  and np.array_equal(pot.spring_n_per_m[:, 0], pot.spring_n_per_m[:, 1])
                  and (not np.any(pot.stray_field_v_per_m[:2]) or np.ptp(pot.charges_c / pot.masses_kg) == 0))
     if symmetric:
