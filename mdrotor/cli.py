@@ -122,7 +122,8 @@ def cmd_crystal(args) -> int:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         cr = crystal_from_config(cfg, f_rot)
-    margin = pinning_margin(cr, cr.potential.multipoles) if cfg.pinning else None
+    margin = (pinning_margin(cr, cr.potential.multipoles, cr.potential.external, [t.order for t in cfg.pinning])
+              if cfg.pinning else None)
     if args.json:
         print(json.dumps(crystal_json(cfg, cr, margin)))
     else:

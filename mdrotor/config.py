@@ -27,7 +27,7 @@ SECTIONS = {
     "species": {"ion", "custom"},
     "crystal": {"ions", "search_seed"},
     "trap": {"model", "f_radial", "f_axial", "radial_split", "f_drive", "a", "q", "stray_field", "rf_phase"},
-    "pinning": {"order", "strength", "angle", "name"},
+    "pinning": {"order", "strength", "angle", "name", "layout"},
     "rotation": {"f_start"},
     "stage": {"name", "duration", "f_rot", "pinning"},
     "initial": {"temperature", "wigner", "occupations"},
@@ -347,7 +347,7 @@ def _numbers(v, key, source):
     return v
 
 
-def _pinning(raw, source) -> tuple:
+def _pinning(raw, source, base_dir=None) -> tuple:
     pin = raw.get("pinning")
     if pin is None:
         return ()
@@ -364,7 +364,14 @@ def _pinning(raw, source) -> tuple:
         name = it.get("name", f"n{order}")
         if not isinstance(name, str):
             raise InputError(f"{sec}.name", "expected a string", source)
-        out.append(MultipoleTerm(order, strength, angle, name))
+        layout = None
+        if "layout" in it:
+            if not isinstance(it["layout"], str):
+                raise InputError(f"{sec}.layout", "expected the path of an electrode layout file", source)
+            from .electrodes.dynamics import layout_pinning
+
+            layout = layout_pinning(it["layout"], order, strength, base_dir=base_dir, key=f"{sec}.layout", source=source)
+        out.append(MultipoleTerm(order, strength, angle, name, layout))
     names = [t.name for t in out]
     if len(set(names)) != len(names):
         raise InputError("pinning", f"pinning terms need distinct names, got {names}", source)
@@ -486,7 +493,7 @@ def from_dict(raw: dict, source: str = "<dict>", base_dir=None) -> Config:
             raise InputError(k, f"unknown section; expected one of {sorted(SECTIONS)}", source)
     species = _species_list(raw, source)
     trap = _trap(raw, species, source)
-    pinning = _pinning(raw, source)
+    pinning = _pinning(raw, source, base_dir)
     rot = raw.get("rotation", {})
     _check_keys(rot, "rotation", SECTIONS["rotation"], source)
     f_start = units.parse(rot.get("f_start", 0.0), "frequency", "rotation.f_start", source)

@@ -34,6 +34,7 @@ K_COULOMB = 1.0 / (4.0 * np.pi * sc.epsilon_0)
 BLOCK_STEPS = 2048
 # the kernel's "no noise" arrays (fixed ndim so that one compiled kernel serves both)
 NO_NOISE = (np.zeros((0, 3, 0)), np.zeros(0, dtype=np.int64), np.zeros((0, 0, 0)), np.zeros((0, 0, 0)))
+NO_POLY = (np.zeros((0, 3), dtype=np.int64), np.zeros((1, 0)))
 RF_STEPS_PER_PERIOD = 64
 
 
@@ -76,6 +77,12 @@ class Plan:
     rf_orbit: tuple | None = None
     noise: object = None
     notes: list = field(default_factory=list)
+
+    @property
+    def pin_is_multipole(self) -> np.ndarray:
+        """1 for pinning terms applied as pure multipoles, 0 for layout terms
+        (those act through their polynomial potential)."""
+        return np.array([0.0 if t.layout is not None else 1.0 for t in self.cfg.pinning])
 
     @property
     def omega_radial_min(self) -> float:
@@ -480,7 +487,8 @@ class _Stepper:
                      blk.orders if blk.g_re is not None else NO_NOISE[1],
                      blk.g_re if blk.g_re is not None else NO_NOISE[2],
                      blk.g_im if blk.g_im is not None else NO_NOISE[3])
-        advance(pos, vel, dt, n, plan.fracs, plan.kernel_model(), drive, (plan.pin_orders, c_re, c_im), lag, noise,
+        poly = _poly_coefficients(plan, np.zeros_like(te) if frozen else te)
+        advance(pos, vel, dt, n, plan.fracs, plan.kernel_model(), drive, (plan.pin_orders, c_re, c_im), poly, lag, noise,
                 self.chunk)
 
     def observe(self, pos, vel, stage: int, t: float, dt: float) -> dict:
@@ -529,8 +537,21 @@ def _pin_coefficients(plan: Plan, te: np.ndarray):
     theta = plan.schedule.theta_rad(te)
     scales = plan.pin_scales(te)  # (E, P)
     ph = -plan.pin_orders[None, :] * (plan.pin_angle[None, :] + theta[:, None])
-    amp = scales * plan.pin_strength[None, :]
+    amp = scales * plan.pin_strength[None, :] * plan.pin_is_multipole[None, :]
     return np.ascontiguousarray(amp * np.cos(ph)), np.ascontiguousarray(amp * np.sin(ph))
+
+
+def _poly_coefficients(plan: Plan, te: np.ndarray) -> tuple:
+    """The layout pinning terms' polynomial coefficients at times te: (exps, (E, J))."""
+    terms = [(p, t) for p, t in enumerate(plan.cfg.pinning) if t.layout is not None]
+    if not terms:
+        return NO_POLY[0], np.zeros((len(te), 0))
+    theta = plan.schedule.theta_rad(te)
+    scales = plan.pin_scales(te)
+    coef = 0.0
+    for p, t in terms:
+        coef = coef + t.layout.coefficients(theta + t.angle_rad, scales[:, p])
+    return terms[0][1].layout.exps, np.ascontiguousarray(coef)
 
 
 def _series_point(obs: dict, t: float, stage: str) -> dict:

@@ -198,6 +198,44 @@ def _wrap(a):
 
 
 @njit(cache=True)
+def _poly_accel(px, py, pz, ax, ay, az, qm, exps, coef, xp, yp, zp):
+    """Add -(Q/m) grad phi for phi = sum_j coef_j x^a y^b z^c (the electrodes'
+    potential about the trap point, :mod:`mdrotor.electrodes.dynamics`).
+    xp, yp, zp: (D + 1, B) scratch for the powers."""
+    n_ions, nb = px.shape
+    deg = xp.shape[0] - 1
+    for i in range(n_ions):
+        for b in range(nb):
+            xp[0, b] = 1.0
+            yp[0, b] = 1.0
+            zp[0, b] = 1.0
+        for k in range(1, deg + 1):
+            for b in range(nb):
+                xp[k, b] = xp[k - 1, b] * px[i, b]
+                yp[k, b] = yp[k - 1, b] * py[i, b]
+                zp[k, b] = zp[k - 1, b] * pz[i, b]
+        for j in range(exps.shape[0]):
+            cj = coef[j] * qm[i]
+            if cj == 0.0:
+                continue
+            a = exps[j, 0]
+            bb = exps[j, 1]
+            c = exps[j, 2]
+            if a > 0:
+                f = cj * a
+                for b in range(nb):
+                    ax[i, b] -= f * xp[a - 1, b] * yp[bb, b] * zp[c, b]
+            if bb > 0:
+                f = cj * bb
+                for b in range(nb):
+                    ay[i, b] -= f * xp[a, b] * yp[bb - 1, b] * zp[c, b]
+            if c > 0:
+                f = cj * c
+                for b in range(nb):
+                    az[i, b] -= f * xp[a, b] * yp[bb, b] * zp[c - 1, b]
+
+
+@njit(cache=True)
 def _noise_field_accel(qm, b0, s, n_field, ex, ey, ez):
     """(Q/m) E(s): the uniform noise field's acceleration for step s."""
     n_ions, nb = ex.shape
@@ -249,7 +287,7 @@ def _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e):
 
 
 @njit(cache=True, parallel=True)
-def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, noise, chunk):
+def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, chunk):
     """Advance every trajectory by ``n_steps`` steps of length ``dt``.
 
     Parameters
@@ -268,6 +306,10 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, noise, chunk):
         (P,) int64 multipole orders; (E, P) complex coefficient C_p at each
         force evaluation: eval e = S s + k + 1 is the end of sub-step k of
         step s; eval 0 is the block start. E = S n_steps + 1.
+    poly : tuple (exps, coef)
+        A polynomial potential phi = sum_j coef_j x^a y^b z^c about the trap
+        point (an electrode layout's pinning): exps (J, 3) int64, coef
+        (E, J) in V/m^(a+b+c) at each force evaluation; J = 0 for none.
     lag : tuple (masses, charges, lag_n, lag_theta, lag_track, lag_stride, lag_u)
         lag_n: order of the pinning whose lag is tracked (0: none);
         lag_theta, lag_track : (n_steps + 1,) pinning angle and a uint8 flag
@@ -288,6 +330,11 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, noise, chunk):
     w2, rf2, stray_acc, qm, kq_i, kq_j = model
     rf_c, rf_s, ph_c, ph_s = drive
     pin_n, c_re, c_im = pin
+    poly_exps, poly_coef = poly
+    use_poly = poly_exps.shape[0] > 0
+    poly_deg = 0
+    for j in range(poly_exps.shape[0]):
+        poly_deg = max(poly_deg, poly_exps[j, 0], poly_exps[j, 1], poly_exps[j, 2])
     masses, charges, lag_n, lag_theta, lag_track, lag_stride, lag_u = lag
     n_field, n_orders, n_gre, n_gim = noise
     use_rf = False
@@ -327,6 +374,9 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, noise, chunk):
         fz = np.empty(nb)
         raw = np.empty(nb)
         rf = np.zeros(nb)
+        xp = np.empty((poly_deg + 1, nb))
+        yp = np.empty((poly_deg + 1, nb))
+        zp = np.empty((poly_deg + 1, nb))
         nx = np.zeros((n_ions, nb))
         ny = np.zeros((n_ions, nb))
         nz = np.zeros((n_ions, nb))
@@ -339,6 +389,8 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, noise, chunk):
             _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, 0)
         _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[0], c_im[0],
                zr, zi, fx, fy, fz)
+        if use_poly:
+            _poly_accel(px, py, pz, ax, ay, az, qm, poly_exps, poly_coef[0], xp, yp, zp)
         for s in range(n_steps):
             if has_field:
                 _noise_field_accel(qm, b0, s, n_field, ex, ey, ez)
@@ -356,6 +408,8 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, lag, noise, chunk):
                     _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e)
                 _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[e], c_im[e],
                        zr, zi, fx, fy, fz)
+                if use_poly:
+                    _poly_accel(px, py, pz, ax, ay, az, qm, poly_exps, poly_coef[e], xp, yp, zp)
                 _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
                 if has_multipole:
                     _noise_accel(px, py, qm, b0, s, n_orders, n_gre, n_gim, ex, ey, ez, nx, ny, nz, zr, zi)

@@ -22,7 +22,7 @@ by orders that are multiples of N.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -41,12 +41,17 @@ class MultipoleTerm:
         Static orientation offset theta_0 (the schedule adds theta(t)).
     name : str
         Label used in schedules and output (default ``"n<order>"``).
+    layout : mdrotor.electrodes.dynamics.LayoutPinning or None
+        When the pinning comes from an electrode layout: its full potential
+        (every fitted order) replaces the pure order-n term in the statics
+        and the dynamics; ``strength`` is then the plan's target.
     """
 
     order: int
     strength: float
     angle_rad: float = 0.0
     name: str = ""
+    layout: object = field(default=None, compare=False, repr=False)
 
     def complex_coefficient(self, theta: float = 0.0) -> complex:
         """C = c_n exp(-i n (theta_0 + theta)), in V/m^n."""

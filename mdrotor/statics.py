@@ -544,7 +544,7 @@ def virial_ratio(pot: Potential, r: np.ndarray) -> float:
     return coul / (2.0 * trap)
 
 
-def pinning_torque_curve(crystal: Crystal, multipoles, n_points: int = 2048):
+def pinning_torque_curve(crystal: Crystal, multipoles, n_points: int = 2048, external=()):
     """Pinning energy of the rigid crystal versus lag angle.
 
     Parameters
@@ -552,22 +552,30 @@ def pinning_torque_curve(crystal: Crystal, multipoles, n_points: int = 2048):
     crystal : Crystal
     multipoles : sequence of (order, complex coefficient C)
     n_points : int
+    external : sequence of external potentials (see :class:`Potential`),
+        evaluated at the rigidly rotated positions.
 
     Returns
     -------
     phi : (n_points,) rotation of the crystal relative to the pinning, rad
-    energy : (n_points,) J, Re[sum C (e^{i phi} z)^n Q]
+    energy : (n_points,) J, Re[sum C (e^{i phi} z)^n Q] + sum Q phi_ext
     """
     phi = np.linspace(0.0, TWO_PI, n_points, endpoint=False)
-    z = crystal.positions_m[:, 0] + 1j * crystal.positions_m[:, 1]
+    r = crystal.positions_m
+    z = r[:, 0] + 1j * r[:, 1]
     e = np.zeros_like(phi)
     for order, coeff in multipoles:
         m_n = np.sum(crystal.charges_c * z**order)
         e += np.real(coeff * m_n * np.exp(1j * order * phi))
+    if external:
+        zr = z[None, :] * np.exp(1j * phi)[:, None]
+        pts = np.stack([zr.real, zr.imag, np.broadcast_to(r[:, 2], zr.shape)], axis=-1).reshape(-1, 3)
+        for ext in external:
+            e += np.sum(crystal.charges_c[None, :] * np.asarray(ext.potential(pts)).reshape(zr.shape), axis=1)
     return phi, e
 
 
-def pinning_margin(crystal: Crystal, multipoles) -> dict:
+def pinning_margin(crystal: Crystal, multipoles, external=(), orders=()) -> dict:
     """Libration frequency and the largest angular acceleration the pinning holds.
 
     Rigid-crystal estimate: in the frame of the accelerating pinning the
@@ -576,16 +584,19 @@ def pinning_margin(crystal: Crystal, multipoles) -> dict:
     and the barrier (for one order n: n |C M_n|). The libration frequency is
     sqrt(E''(phi_0) / I) / (2 pi) (Landau and Lifshitz, Mechanics, section 21).
 
+    ``external`` (electrode potentials) join the multipoles in the energy
+    curve; ``orders`` names the orders whose moments to report for them.
+
     Returns
     -------
     dict with ``f_lib_hz``, ``alpha_max_rad_s2``, ``torque_max_n_m``,
     ``moments`` ({order: |M_n| in C m^n}), ``pins`` ({order: bool}).
     """
     I = crystal.moment_of_inertia_kg_m2
-    phi, e = pinning_torque_curve(crystal, multipoles)
+    phi, e = pinning_torque_curve(crystal, multipoles, external=external)
     z = crystal.positions_m[:, 0] + 1j * crystal.positions_m[:, 1]
     moments, pins = {}, {}
-    for order, _ in multipoles:
+    for order in sorted({o for o, _ in multipoles} | set(orders)):
         m_n = complex(np.sum(crystal.charges_c * z**order))
         ref = np.sum(np.abs(crystal.charges_c) * np.abs(z) ** order) + 1e-300
         moments[order] = abs(m_n)
@@ -652,8 +663,15 @@ def model_potential(cfg, f_rot_hz: float = 0.0, *, theta_rad: float = 0.0, pin_s
         k[:, :2] = k[:, :2].mean(axis=1, keepdims=True)
         stray = np.zeros(3)
     scales = [1.0] * len(cfg.pinning) if pin_scale is None else list(pin_scale)
-    mults = tuple((t.order, s * t.complex_coefficient(theta_rad)) for t, s in zip(cfg.pinning, scales) if s * t.strength != 0.0)
-    return Potential(m, q, k, stray, mults, TWO_PI * f_rot_hz)
+    mults = tuple((t.order, s * t.complex_coefficient(theta_rad)) for t, s in zip(cfg.pinning, scales)
+                  if s * t.strength != 0.0 and t.layout is None)
+    external = ()
+    for t, s in zip(cfg.pinning, scales):
+        if t.layout is not None:  # the electrodes' whole potential, every fitted order
+            from .electrodes.dynamics import PolynomialPotential
+
+            external += (PolynomialPotential(t.layout.exps, t.layout.coefficients(theta_rad + t.angle_rad, s)),)
+    return Potential(m, q, k, stray, mults, TWO_PI * f_rot_hz, external)
 
 
 def crystal_from_config(cfg, f_rot_hz: float | None = None) -> Crystal:
