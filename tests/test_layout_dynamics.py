@@ -9,7 +9,10 @@ from mdrotor.electrodes.dynamics import PolynomialPotential, _monomials, harmoni
 from mdrotor.electrodes.layout import load_layout
 from mdrotor.electrodes.multipoles import solid_harmonics
 
-LAYOUT = "configs/electrodes/ring6_string2.toml"
+from pathlib import Path
+
+CONFIGS = Path(__file__).resolve().parents[1] / "configs"
+LAYOUT = CONFIGS / "electrodes" / "ring6_string2.toml"
 
 
 def test_solid_harmonics_as_monomials_exact():
@@ -49,7 +52,7 @@ def _cfg(layout=True, **over):
     d.update(over)
     from mdrotor.config import from_dict
 
-    return from_dict(d, "configs/x.toml", base_dir="configs")  # the layout path is relative to configs/
+    return from_dict(d, str(CONFIGS / "x.toml"), base_dir=CONFIGS)  # the layout path is relative to configs/
 
 
 def test_layout_run_matches_quadrupole_picture():
@@ -71,7 +74,7 @@ def test_layout_run_matches_quadrupole_picture():
 
 
 def test_layout_bad_input(tmp_path, capsys):
-    text = open("configs/layout_string2.toml").read()
+    text = (CONFIGS / "layout_string2.toml").read_text()
     p = tmp_path / "bad.toml"
     p.write_text(text.replace('layout = "electrodes/ring6_string2.toml"', 'layout = "nowhere.toml"'))
     assert main(["crystal", str(p)]) == 2
@@ -80,7 +83,7 @@ def test_layout_bad_input(tmp_path, capsys):
     p2 = tmp_path / "c.toml"
     import shutil
 
-    shutil.copytree("configs/electrodes", tmp_path / "electrodes")
+    shutil.copytree(CONFIGS / "electrodes", tmp_path / "electrodes")
     p2.write_text(text.replace('strength = "1e6 V/m^2"', 'strength = "1e9 V/m^2"'))
     assert main(["crystal", str(p2)]) == 2
     err = capsys.readouterr().err
