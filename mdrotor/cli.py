@@ -59,8 +59,11 @@ def build_parser() -> argparse.ArgumentParser:
     from .optimize import add_optimize_parser
     from .sweep import add_sweep_parser
 
+    from .report import add_report_parser
+
     add_sweep_parser(sub)  # each adds its own --set, --json, --quiet
     add_optimize_parser(sub)
+    add_report_parser(sub)
     return ap
 
 
@@ -86,6 +89,10 @@ def main(argv=None) -> int:
             from .optimize import cli_optimize
 
             return cli_optimize(args)
+        if args.command == "report":
+            from .report import cli_report
+
+            return cli_report(args)
         if args.command == "compare-trap":
             from .compare import cli_compare
 

@@ -1,0 +1,1686 @@
+"""Figures and one-page reports of runs, sweeps and optimisations.
+
+``mdrotor report FILE.h5`` writes the figures of a result file and a
+one-page summary (Markdown or HTML) into a folder. The same figures are
+functions here that take a :class:`~mdrotor.result.Result` (or a path) and
+return a matplotlib :class:`~matplotlib.figure.Figure`, for notebooks::
+
+    from mdrotor import report
+    fig = report.L_histogram_figure("demo.h5")     # a Figure; fig.savefig("L.png")
+    figs, skipped = report.run_figures("demo.h5")  # every run figure that the file allows
+
+Run figures (each raises :class:`MissingData` when the file lacks the
+optional group it needs):
+
+* :func:`schedule_figure` -- f_rot and each pinning strength versus time,
+  stages shaded and named (``/schedule``);
+* :func:`L_histogram_figure` -- the final L distribution with Poisson error
+  bars, mean and spread, and a zoom on a few quanta around the mean with the
+  allowed-L ladder (:func:`mdrotor.rotor.allowed_L_ladder`);
+* :func:`L_stages_figure` -- the same histogram at t = 0 and at every stage end;
+* :func:`series_figure` -- L mean and spread, lag envelope and mode phonons
+  versus time (``/series``);
+* :func:`phonons_figure` -- mean phonons per mode, centre-of-mass and
+  differential modes apart;
+* :func:`spectrum_figure` -- the rotational lines Delta L = 1..k with their
+  widths (:func:`mdrotor.rotor_report.rotor_summary`);
+* :func:`coherence_figure` -- Ramsey and echo contrast versus time with the
+  exchange and revival times (:mod:`mdrotor.coherence`), for the diffusion
+  constant given, else fitted from the run's noise, else analytic.
+
+Sweep and optimisation figures: :func:`sweep_figures` (every metric versus
+each axis: line plots for one axis, heat maps for two, a chosen slice of
+the others beyond) and :func:`optimize_figure` (objective and parameters
+per evaluation, the best point). :func:`write_report` writes everything and
+the summary. Nothing is computed here that another module owns: the
+numbers come from the result, :mod:`mdrotor.stats`, :mod:`mdrotor.rotor`,
+:mod:`mdrotor.coherence` and :mod:`mdrotor.rotor_report`.
+
+matplotlib (the optional extra ``mdrotor[plot]``) is imported inside the
+functions, and figures are drawn on the Agg canvas without pyplot.
+"""
+
+from __future__ import annotations
+
+import html
+import json
+import math
+import sys
+from pathlib import Path
+
+import numpy as np
+
+from .errors import InputError
+
+__all__ = [
+    "MissingData", "file_kind", "schedule_figure", "L_histogram_figure", "L_stages_figure", "series_figure",
+    "phonons_figure", "spectrum_figure", "coherence_figure", "run_figures", "sweep_figures", "optimize_figure",
+    "write_report", "add_report_parser", "cli_report", "main",
+]
+
+FORMATS = ("png", "pdf", "svg")
+SUMMARY_FORMATS = ("md", "html")
+PLOT_EXTRA = "pip install 'mdrotor[plot]' (or pip install matplotlib)"
+
+# what each run figure shows (used as captions in the summary)
+CAPTIONS = {
+    "schedule": "The schedule: rotation frequency and each pinning strength versus time, stages shaded and named.",
+    "L_final": "Final angular-momentum distribution: histogram with Poisson error bars, mean and spread, a normal curve "
+               "with the same mean and spread; right, a zoom on a few quanta around the mean with the allowed-L ladder.",
+    "L_stages": "Angular-momentum distribution at t = 0 and at the end of every stage.",
+    "series": "Time series: L mean with its spread, lag angle behind the pinning (mean, spread, largest |lag|), "
+              "mean phonons of every mode.",
+    "phonons": "Mean phonon number of every mode at the end, centre-of-mass and differential modes apart (error bars: "
+               "standard errors).",
+    "spectrum": "Predicted rotational lines L -> L + Delta L: centres and widths from the final L spread (stick: centre; "
+                "bar and profile: +-1 standard deviation).",
+    "coherence": "Ramsey and spin-echo contrast of two branches k quanta apart versus free-evolution time under the "
+                 "angular-momentum diffusion D, with the exchange and revival times.",
+}
+
+
+SIG = r"$\sigma_L$"  # figure text (mathtext)
+FROT = r"$f_\mathrm{rot}$"
+
+
+class MissingData(InputError):
+    """A figure needs data that the file does not hold (an optional group,
+    or a quantity that cannot be derived from it). ``key`` names the group."""
+
+
+# ---------------------------------------------------------------------------
+# matplotlib and style
+# ---------------------------------------------------------------------------
+def _mpl():
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        raise InputError("", f"figures need matplotlib: {PLOT_EXTRA}", "mdrotor report") from None
+    from . import plotstyle
+
+    return plotstyle
+
+
+def _sup(n: int) -> str:
+    return str(n).translate(str.maketrans("0123456789-", "⁰¹²³⁴⁵⁶⁷⁸⁹⁻"))
+
+
+def _pretty_unit(u: str | None) -> str:
+    """'V/m^2' -> 'V/m²', 'us' -> 'µs' (display only)."""
+    import re
+
+    if not u:
+        return ""
+    u = re.sub(r"\^\(?(-?\d+)\)?", lambda m: _sup(int(m.group(1))), u)
+    u = re.sub(r"\*\*(-?\d+)", lambda m: _sup(int(m.group(1))), u)
+    u = re.sub(r"\bu(?=[a-zA-Z])", "µ", u)
+    return u.replace(" * ", " ").replace("*", " ")
+
+
+def _time_unit(t_max_s: float):
+    a = abs(float(t_max_s)) if np.isfinite(t_max_s) else 1.0
+    if a < 1e-6:
+        return 1e9, "ns"
+    if a < 1e-3:
+        return 1e6, "µs"
+    if a < 1.0:
+        return 1e3, "ms"
+    return 1.0, "s"
+
+
+def _freq_unit(f_max_hz: float):
+    a = abs(float(f_max_hz)) if np.isfinite(f_max_hz) else 0.0
+    if a >= 1e6:
+        return 1e-6, "MHz"
+    if a >= 1e3:
+        return 1e-3, "kHz"
+    return 1.0, "Hz"
+
+
+def _fmt(x, digits=4) -> str:
+    """``digits`` significant digits, without an exponent between 1e-3 and 1e6."""
+    if x is None or not np.isfinite(float(x)):
+        return "n/a"
+    x = float(f"{float(x):.{digits}g}")
+    if x == 0 or 1e-3 <= abs(x) < 1e6:
+        return f"{x:.{max(digits, 7)}g}"
+    return f"{x:.{digits}g}"
+
+
+def _pm(v, e, digits=4) -> str:
+    if e is None or not np.isfinite(e):
+        return _fmt(v, digits)
+    return f"{_fmt(v, digits)} ± {_fmt(e, 2)}"
+
+
+# ---------------------------------------------------------------------------
+# inputs
+# ---------------------------------------------------------------------------
+def file_kind(path) -> str:
+    """``"run"``, ``"sweep"`` or ``"optimize"``: what an mdrotor HDF5 file holds."""
+    import h5py
+
+    p = Path(path)
+    try:
+        f = h5py.File(p, "r")
+    except OSError as e:
+        raise InputError("", f"cannot open the file: {e}", str(p)) from None
+    with f:
+        kind = f.attrs.get("kind")
+        if kind is not None:
+            kind = kind.decode() if isinstance(kind, bytes) else str(kind)
+            if kind in ("sweep", "optimize"):
+                return kind
+        if "stages" in f and "format_version" in f.attrs:
+            return "run"
+    raise InputError("", "not an mdrotor result, sweep or optimisation file", str(p))
+
+
+def _load(result):
+    """(Result, path or None) from a Result or a result file."""
+    from .result import Result
+
+    if isinstance(result, Result):
+        return result, None
+    p = Path(result)
+    kind = file_kind(p)
+    if kind != "run":
+        raise InputError("", f"a {kind} file, not a run result: use sweep_figures / optimize_figure "
+                             "(or read_point(path, index) for one point)", str(p))
+    from .store import load_result
+
+    return load_result(p), p
+
+
+def _src(path) -> str:
+    return str(path) if path is not None else "<result>"
+
+
+def _obs(res, stage):
+    if stage is None:
+        return res.final
+    if stage == "initial":
+        if res.initial is None:
+            raise MissingData("/initial", "the file has no /initial group", None)
+        return res.initial
+    if stage not in res.stages:
+        raise InputError("stage", f"expected one of {', '.join(['initial', *res.stages])}, got {stage!r}", None)
+    return res.stages[stage]
+
+
+def _ok_L(obs) -> np.ndarray:
+    from .stats import OK_MASK
+
+    ok = (np.asarray(obs.arrays["status"]) & OK_MASK) == 0
+    L = np.asarray(obs.arrays["L_hbar"], dtype=float)[ok]
+    return L[np.isfinite(L)]
+
+
+def _ladder(res):
+    """(modulus, residue, statistics, N) of the allowed-L ladder, following
+    :func:`mdrotor.rotor_report.rotor_summary`: N is the number of ions."""
+    from . import rotor
+    from .species import get_species
+
+    names = [x.decode() if isinstance(x, bytes) else str(x) for x in np.atleast_1d(res.attrs.get("species", []))]
+    stats = []
+    try:
+        stats = [get_species(n).statistics for n in names]
+    except InputError:
+        try:  # custom species: from the config the run was made with
+            import tomllib
+
+            from .config import from_dict
+
+            cfg = from_dict(tomllib.loads(str(res.attrs["config_text"])), "<result>")
+            names = [s.name for s in cfg.species]
+            stats = [s.statistics for s in cfg.species]
+        except Exception:
+            stats = []
+    if not names or not stats:
+        return None
+    identical = len(set(names)) == 1
+    stat = stats[0] if identical else "mixed"
+    mod, resid = rotor.allowed_L_ladder(len(names), stat if stat in ("boson", "fermion") else "unknown", identical)
+    return int(mod), int(resid), stat, len(names)
+
+
+def _bins(L: np.ndarray, bins):
+    """Bins for :func:`mdrotor.stats.histogram`: as asked, or unit-wide edges
+    around the value when every trajectory has (nearly) the same L."""
+    lo, hi = float(np.min(L)), float(np.max(L))
+    if hi - lo <= 1e-9 * max(1.0, abs(hi)):
+        c = 0.5 * (lo + hi)
+        return np.linspace(c - 0.5, c + 0.5, 6)
+    return bins
+
+
+def _stage_bounds(res):
+    """(bounds_s, names) of the stages, from /schedule or the stage-end times."""
+    sc = res.schedule
+    if sc and "stage_bounds_s" in sc and "stage_names" in sc:
+        return np.asarray(sc["stage_bounds_s"], dtype=float), list(sc["stage_names"])
+    names = list(res.stages)
+    return np.array([0.0] + [res.stages[n].t_s for n in names]), names
+
+
+def _shade_stages(ax, bounds_s, names, scale, label=True):
+    from .plotstyle import STAGE_FILL
+
+    for i, name in enumerate(names):
+        a, b = bounds_s[i] * scale, bounds_s[i + 1] * scale
+        ax.axvspan(a, b, color=STAGE_FILL[i % 2], zorder=0, lw=0)
+        if i:
+            ax.axvline(a, color="#a8a8a8", lw=0.6, zorder=0.5)
+        if label:
+            total = (bounds_s[-1] - bounds_s[0]) * scale or 1.0
+            narrow = (b - a) / total < 0.08
+            ax.text((a + b) / 2, 1.02, name, transform=ax.get_xaxis_transform(), ha="center", va="bottom",
+                    fontsize=6.5 if narrow else 7.5, rotation=60 if narrow else 0, style="italic", clip_on=False)
+
+
+def _pin_terms(config_text: str):
+    """[(name, order)] of the pinning terms of a config (raw TOML, no validation)."""
+    import tomllib
+
+    try:
+        raw = tomllib.loads(config_text)
+    except Exception:
+        return []
+    pin = raw.get("pinning")
+    if pin is None:
+        return []
+    items = pin if isinstance(pin, list) else [pin]
+    out = []
+    for it in items:
+        try:
+            order = int(it.get("order"))
+        except Exception:
+            order = None
+        out.append((str(it.get("name", f"n{order}")), order))
+    return out
+
+
+# ---------------------------------------------------------------------------
+# run figures
+# ---------------------------------------------------------------------------
+def schedule_figure(result):
+    """f_rot and each pinning strength versus time, stages shaded and named.
+
+    Parameters
+    ----------
+    result : Result or path
+        A run result (needs ``/schedule``).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Top panel f_rot (kHz or MHz); one panel per pinning term in its own
+        unit V/m^n; time in µs or ms.
+    """
+    ps = _mpl()
+    res, path = _load(result)
+    sc = res.schedule
+    if not sc or "t_s" not in sc or "f_rot_hz" not in sc:
+        raise MissingData("/schedule", "the file has no /schedule group (the sampled schedule)", _src(path))
+    t = np.asarray(sc["t_s"], dtype=float)
+    f = np.asarray(sc["f_rot_hz"], dtype=float)
+    pin = np.asarray(sc.get("pinning_strength_si", np.zeros((len(t), 0))), dtype=float)
+    if pin.ndim == 1:
+        pin = pin[:, None]
+    terms = _pin_terms(str(res.attrs.get("config_text", "")))
+    if len(terms) != pin.shape[1]:
+        terms = [(f"term {j + 1}", None) for j in range(pin.shape[1])]
+    bounds, names = _stage_bounds(res)
+    ts, tu = _time_unit(t[-1] if len(t) else 1.0)
+    fs, fu = _freq_unit(np.nanmax(np.abs(f)) if len(f) else 0.0)
+    with ps.context():
+        n = 1 + pin.shape[1]
+        fig = ps.new_figure(ps.FULL_W, 1.9 + 1.25 * (n - 1))
+        axs = fig.subplots(n, 1, sharex=True, squeeze=False)[:, 0]
+        ax = axs[0]
+        _shade_stages(ax, bounds, names, ts)
+        ax.plot(t * ts, f * fs, color=ps.INK, lw=1.4, label="f_rot")
+        ax.set_ylabel(f"rotation {FROT} ({fu})")
+        ax.set_title("spin-up schedule", pad=14)
+        for j in range(pin.shape[1]):
+            ax = axs[j + 1]
+            _shade_stages(ax, bounds, names, ts, label=False)
+            name, order = terms[j]
+            unit = f"V/m{_sup(order)}" if order else "V/mⁿ"
+            ax.plot(t * ts, pin[:, j], **{**ps.style(j + 1), "marker": None}, label=f"pinning {name}")
+            ax.set_ylabel(f"pinning {name} ({unit})")
+            ax.ticklabel_format(axis="y", style="sci", scilimits=(0, 0), useMathText=True)
+            ax.set_ylim(bottom=min(0.0, float(np.nanmin(pin[:, j])) * 1.05))
+        for ax in axs:
+            ax.set_xlim(t[0] * ts, t[-1] * ts)
+        axs[-1].set_xlabel(f"time ({tu})")
+    return fig
+
+
+def L_histogram_figure(result, stage: str | None = None, bins: int | None = None, zoom_quanta: int | None = None):
+    """Histogram of L at the end (or at a stage end) with the allowed-L ladder.
+
+    Left: histogram of the trajectories kept in the statistics (no lost ion,
+    finite values) with Poisson error bars sqrt(count)
+    (:func:`mdrotor.stats.histogram`), the mean, the spread (+-sigma_L), and
+    a normal curve with the same mean and spread. Right: a zoom on
+    ``zoom_quanta`` quanta either side of the mean (default: 3 ladder
+    spacings, at least 6) showing every allowed L (``L = residue mod
+    modulus``, :func:`mdrotor.rotor.allowed_L_ladder`) as a comb and the mean
+    with its standard error: with L ~ 1e4 and spreads of hundreds the ladder
+    is much finer than a bin.
+
+    Parameters
+    ----------
+    result : Result or path
+    stage : str, optional
+        A stage name or ``"initial"`` (default: the final stage).
+    bins : int, optional
+        Number of bins (default sqrt(N), 5 to 60).
+    zoom_quanta : int, optional
+        Half-width of the zoom, quanta of hbar.
+    """
+    ps = _mpl()
+    from .stats import histogram, mean_sem, std_se
+
+    res, path = _load(result)
+    obs = _obs(res, stage)
+    L = _ok_L(obs)
+    if L.size < 2:
+        raise MissingData(f"/stages/{obs.name}/L_hbar", "fewer than two trajectories with a finite L", _src(path))
+    edges, counts, errs = histogram(L, _bins(L, bins))
+    mean, sem = mean_sem(L)
+    std, std_err = std_se(L)
+    lad = _ladder(res)
+    width = float(edges[1] - edges[0])
+    with ps.context():
+        fig = ps.new_figure(ps.FULL_W, 3.1)
+        gs = fig.add_gridspec(1, 2, width_ratios=[2.6, 1.0])
+        ax = fig.add_subplot(gs[0, 0])
+        centres = 0.5 * (edges[1:] + edges[:-1])
+        ax.stairs(counts, edges, fill=True, color="#d6d6d6", zorder=1)
+        ax.stairs(counts, edges, color=ps.INK, lw=0.9, zorder=2)
+        ax.errorbar(centres, counts, yerr=errs, fmt="none", ecolor=ps.INK, elinewidth=0.8, capsize=1.5, zorder=3,
+                    label="counts ± √counts")
+        top = float(np.max(counts + errs))
+        if std > 0:
+            x = np.linspace(edges[0] - width, edges[-1] + width, 400)
+            gauss = L.size * width * np.exp(-0.5 * ((x - mean) / std) ** 2) / (std * math.sqrt(2 * math.pi))
+            ax.plot(x, gauss, color=ps.ACCENT, ls="--", lw=1.0, zorder=4, label=f"normal, same mean and {SIG}")
+            top = max(top, float(np.max(gauss)))
+            yarr = 0.55 * top
+            ax.annotate("", xy=(mean - std, yarr), xytext=(mean + std, yarr),
+                        arrowprops={"arrowstyle": "<->", "color": ps.INK, "lw": 0.9, "shrinkA": 0, "shrinkB": 0}, zorder=6)
+            ax.text(mean, yarr, f"±{SIG}", va="bottom", ha="center", fontsize=7.5, zorder=6,
+                    bbox={"boxstyle": "square,pad=0.1", "fc": "white", "ec": "none"})
+        ax.axvline(mean, color=ps.ACCENT, lw=1.2, zorder=5, label="mean ⟨L⟩")
+        ax.set_ylim(0, 1.32 * top)
+        ax.set_xlim(edges[0] - width, edges[-1] + width)
+        ax.set_xlabel("angular momentum L (ħ)")
+        ax.set_ylabel(f"trajectories per bin (bin {width:.3g} ħ)")
+        when = "end" if stage is None else ("t = 0" if obs.name == "initial" else f"end of '{obs.name}'")
+        ax.set_title(f"L distribution at the {when}" if stage is None or obs.name != "initial" else "L distribution at t = 0")
+        txt = [f"N = {L.size} trajectories", f"⟨L⟩ = {_pm(mean, sem, 6)} ħ", f"{SIG} = {_pm(std, std_err, 4)} ħ"]
+        if lad:
+            txt.append(f"allowed L ≡ {lad[1]} (mod {lad[0]})" if lad[0] > 1 else "every integer L allowed")
+        ax.text(0.015, 0.97, "\n".join(txt), transform=ax.transAxes, va="top", ha="left", fontsize=7.5, zorder=7,
+                bbox={"boxstyle": "square,pad=0.3", "fc": "white", "ec": "#b5b5b5", "lw": 0.5})
+        ax.legend(loc="upper right", fontsize=6.5)
+        # zoom on the ladder
+        az = fig.add_subplot(gs[0, 1])
+        mod = lad[0] if lad else 1
+        half = int(zoom_quanta) if zoom_quanta else max(6, 3 * mod)
+        c = int(round(mean))
+        lo, hi = c - half, c + half
+        ints = np.arange(lo, hi + 1)
+        az.axvspan(mean - sem, mean + sem, facecolor="none", edgecolor="#e2cdc1", hatch="////", lw=0, zorder=0,
+                   label="⟨L⟩ ± s.e.")
+        if lad:
+            allowed = ints[(ints - lad[1]) % lad[0] == 0]
+            az.vlines(ints, 0.0, 0.25, color="#9a9a9a", lw=0.6, zorder=1, label="integer L")
+            az.vlines(allowed, 0.0, 1.0, color=ps.INK, lw=1.4, zorder=2, label="allowed L")
+            az.set_title(f"ladder: L ≡ {lad[1]} mod {lad[0]}" if lad[0] > 1 else "ladder: every integer")
+        else:
+            az.vlines(ints, 0.0, 0.25, color="#9a9a9a", lw=0.6, zorder=1, label="integer L")
+            az.set_title("ladder unknown (species)")
+        az.axvline(mean, color=ps.ACCENT, lw=1.2, zorder=3, label="⟨L⟩")
+        az.set_xlim(lo - 0.5, hi + 0.5)
+        az.set_ylim(0, 1.45)
+        az.set_yticks([])
+        az.grid(False)
+        az.spines["left"].set_visible(False)
+        from matplotlib.ticker import MaxNLocator, ScalarFormatter
+
+        az.xaxis.set_major_locator(MaxNLocator(3, integer=True))
+        fmt = ScalarFormatter(useOffset=False)
+        fmt.set_scientific(False)
+        az.xaxis.set_major_formatter(fmt)
+        az.set_xlabel(f"L (ħ), zoom ±{half}")
+        az.legend(loc="upper center", fontsize=6, ncol=2, handlelength=1.2, columnspacing=0.8)
+        ax.xaxis.set_major_formatter(ScalarFormatter(useOffset=False))
+    return fig
+
+
+def L_stages_figure(result, bins: int | None = None):
+    """Histograms of L at t = 0 and at every stage end (small multiples, each
+    with its mean, spread and N; error bars sqrt(count))."""
+    ps = _mpl()
+    from .stats import histogram, mean_sem, std_se
+
+    res, path = _load(result)
+    obs_list = ([res.initial] if res.initial is not None else []) + list(res.stages.values())
+    n = len(obs_list)
+    ncol = min(3, n)
+    nrow = math.ceil(n / ncol)
+    with ps.context():
+        fig = ps.new_figure(ps.FULL_W, 0.4 + 1.95 * nrow)
+        axs = np.atleast_1d(fig.subplots(nrow, ncol, squeeze=False)).ravel()
+        for j, obs in enumerate(obs_list):
+            ax = axs[j]
+            L = _ok_L(obs)
+            title = "t = 0" if obs.name == "initial" else f"end of '{obs.name}'"
+            ts, tu = _time_unit(obs.t_s if obs.t_s > 0 else 1e-3)
+            ax.set_title(f"{title} ({obs.t_s * ts:.4g} {tu})" if obs.t_s > 0 else title, fontsize=7.5)
+            ax.set_xlabel("L (ħ)")
+            if j % ncol == 0:
+                ax.set_ylabel("trajectories per bin")
+            if L.size < 2:
+                ax.text(0.5, 0.5, "fewer than 2 trajectories", transform=ax.transAxes, ha="center")
+                continue
+            edges, counts, errs = histogram(L, _bins(L, bins))
+            ax.stairs(counts, edges, fill=True, color="#d6d6d6")
+            ax.stairs(counts, edges, color=ps.INK, lw=0.8)
+            ax.errorbar(0.5 * (edges[1:] + edges[:-1]), counts, yerr=errs, fmt="none", ecolor=ps.INK, elinewidth=0.6, capsize=1)
+            m, s = mean_sem(L)[0], std_se(L)[0]
+            ax.axvline(m, color=ps.ACCENT, lw=1.0)
+            ax.set_ylim(0, 1.45 * float(np.max(counts + errs)))
+            ax.text(0.03, 0.96, f"⟨L⟩ = {m:.5g} ħ\n{SIG} = {s:.4g} ħ\nN = {L.size}", transform=ax.transAxes,
+                    va="top", ha="left", fontsize=6.5)
+            ax.xaxis.get_major_locator().set_params(nbins=4)
+        for ax in axs[n:]:
+            ax.set_visible(False)
+    return fig
+
+
+def _series_labels(res, n_cols: int, series) -> list:
+    """Mode label of every column of /series/mode_n_mean, row by row (the
+    mode set changes when the pinning is switched off): the labels of the
+    observation with as many modes as the row has finite entries, preferring
+    the stage the row belongs to."""
+    obs_by_stage = dict(res.stages)
+    cands = [o.modes["label"] for o in ([res.initial] if res.initial is not None else []) + list(res.stages.values())]
+    rows = []
+    e = np.asarray(series["mode_n_mean"], dtype=float)
+    stages = list(series.get("stage", [""] * len(e)))
+    for i in range(len(e)):
+        k = int(np.sum(np.isfinite(e[i])))
+        own = obs_by_stage.get(stages[i])
+        labs = None
+        if own is not None and len(own.modes["label"]) == k:
+            labs = list(own.modes["label"])
+        else:
+            labs = next((list(c) for c in cands if len(c) == k), None)
+        if labs is None:
+            labs = [f"mode {j}" for j in range(k)]
+        rows.append(labs + [None] * (n_cols - len(labs)))
+    return rows
+
+
+def _lag_panel(ps, ax, se, x, res):
+    lg, lsd = np.asarray(se["lag_mean_rad"], float), np.asarray(se["lag_std_rad"], float)
+    ax.fill_between(x, lg - lsd, lg + lsd, color="#bdbdbd", alpha=0.8, lw=0, label="mean ± spread")
+    ax.plot(x, lg, color=ps.INK, label="mean lag")
+    if "lag_absmax_rad" in se:
+        ax.plot(x, np.asarray(se["lag_absmax_rad"], float), color=ps.ACCENT, ls="--", label="largest |lag|")
+    n_lag = int(res.attrs.get("lag_order", 0) or 0)
+    if n_lag > 0:
+        edge = math.pi / n_lag
+        ax.axhline(edge, color=ps.MUTED, ls=":", lw=0.9, label=f"well edge ±π/{n_lag}")
+        ax.axhline(-edge, color=ps.MUTED, ls=":", lw=0.9)
+    ax.set_ylabel("lag angle (rad)")
+    ax.set_title("lag behind the pinning")
+    ax.legend(loc="upper left", ncol=2)
+
+
+def series_figure(result):
+    """Time series (needs ``/series``, written with ``observe.series_interval``):
+    L mean with +-spread band; the lag angle behind the pinning (mean, +-spread,
+    largest |lag|, the well edges +-pi/n; left out when the config has no
+    pinning); mean phonons per mode (log scale)."""
+    ps = _mpl()
+    res, path = _load(result)
+    se = res.series
+    if not se or "t_s" not in se:
+        raise MissingData("/series", "the file has no /series group (run with observe.series_interval, "
+                                     "e.g. --set observe.series_interval='\"10 us\"')", _src(path))
+    t = np.asarray(se["t_s"], dtype=float)
+    bounds, names = _stage_bounds(res)
+    ts, tu = _time_unit(max(t[-1], bounds[-1]))
+    pinned = bool(_pin_terms(str(res.attrs.get("config_text", "")))) and "lag_mean_rad" in se
+    with ps.context():
+        fig = ps.new_figure(ps.FULL_W, 6.2 if pinned else 4.3)
+        axs = fig.subplots(3 if pinned else 2, 1, sharex=True)
+        for j, ax in enumerate(axs):
+            _shade_stages(ax, bounds, names, ts, label=(j == 0))
+        x = t * ts
+        lm, ls = np.asarray(se["L_mean_hbar"], float), np.asarray(se["L_std_hbar"], float)
+        ax = axs[0]
+        ax.fill_between(x, lm - ls, lm + ls, color="#bdbdbd", alpha=0.8, lw=0, label=f"± spread {SIG}")
+        ax.plot(x, lm, color=ps.INK, marker=".", ms=3, label="mean ⟨L⟩")
+        ax.set_ylabel("L (ħ)")
+        ax.set_title("angular momentum", pad=14)
+        ax.legend(loc="upper left")
+        if pinned:
+            _lag_panel(ps, axs[1], se, x, res)
+        ax = axs[-1]
+        e = np.atleast_2d(np.asarray(se["mode_n_mean"], float))
+        labs = _series_labels(res, e.shape[1], se)
+        order = []
+        for row in labs:
+            for lab in row:
+                if lab is not None and lab not in order:
+                    order.append(lab)
+        for i, lab in enumerate(order):
+            y = np.array([e[r, row.index(lab)] if lab in row else np.nan for r, row in enumerate(labs)])
+            st = ps.style(i)
+            ax.plot(x, y, color=st["color"], ls=st["linestyle"], marker=st["marker"], ms=2.5, markevery=max(1, len(x) // 12),
+                    label=lab)
+        fin = e[np.isfinite(e)]
+        if fin.size and np.all(fin > 0):  # log scale only when every mean is positive
+            ax.set_yscale("log")
+        ax.set_ylabel("mean phonons ⟨n⟩ (quanta)")
+        ax.set_title("mode energies")
+        ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0))
+        axs[-1].set_xlabel(f"time ({tu})")
+        axs[-1].set_xlim(bounds[0] * ts, bounds[-1] * ts)
+    return fig
+
+
+def phonons_figure(result, stage: str | None = None):
+    """Mean phonons per mode with standard errors at the end (or a stage end),
+    centre-of-mass modes (filled squares) and differential modes (open
+    circles) in separate panels, each with its total."""
+    ps = _mpl()
+    res, path = _load(result)
+    obs = _obs(res, stage)
+    s = obs.summary
+    kinds = list(obs.modes["kind"])
+    labels = list(obs.modes["label"])
+    freq = np.asarray(obs.modes["freq_hz"], float)
+    nm, ne = np.asarray(s["mode_n_mean"], float), np.asarray(s["mode_n_err"], float)
+    groups = [("com", "centre-of-mass modes", "com_n", "s", ps.INK, ps.INK),
+              ("differential", "differential modes", "differential_n", "o", ps.INK, "white")]
+    groups = [g for g in groups if g[0] in kinds]
+    if not groups:
+        raise MissingData("/modes", "no modes in the observation", _src(path))
+    with ps.context():
+        fig = ps.new_figure(ps.FULL_W, 2.9)
+        ratios = [max(1, kinds.count(g[0])) for g in groups]
+        axs = fig.subplots(1, len(groups), gridspec_kw={"width_ratios": ratios}, squeeze=False)[0]
+        fs, fu = 1e-3, "kHz"
+        for ax, (kind, title, tot, marker, ec, fc) in zip(axs, groups):
+            idx = [i for i, k in enumerate(kinds) if k == kind]
+            xx = np.arange(len(idx))
+            ax.errorbar(xx, nm[idx], yerr=ne[idx], fmt=marker, mec=ec, mfc=fc, color=ps.INK, ms=5, capsize=2.5, lw=0.9)
+            ax.set_xticks(xx, [f"{labels[i]}\n{freq[i] * fs:.5g}" for i in idx], fontsize=6.5)
+            ax.set_xlim(-0.6, len(idx) - 0.4)
+            top = float(np.nanmax(nm[idx] + np.nan_to_num(ne[idx]))) if len(idx) else 1.0
+            ax.set_ylim(0, 1.2 * top if top > 0 else 1.0)
+            ax.set_title(f"{title}\ntotal {_pm(s.get(tot + '_mean'), s.get(tot + '_err'), 4)} quanta")
+            ax.set_xlabel(f"mode (label, frequency in {fu})")
+        axs[0].set_ylabel("mean phonon number ⟨n⟩ (quanta)")
+        where = "end" if stage is None else f"end of '{obs.name}'"
+        fig.suptitle(f"phonons at the {where} (t = {obs.t_s * _time_unit(obs.t_s)[0]:.4g} {_time_unit(obs.t_s)[1]}), "
+                     f"{int(s.get('n_ok', 0))} trajectories", fontsize=8, x=0.01, ha="left")
+    return fig
+
+
+def rotor_info(result, diffusion_hbar2_per_s: float | None = None, k: int | None = None) -> dict:
+    """:func:`mdrotor.rotor_report.rotor_summary` of a Result or result file
+    (a Result without a file is written to a temporary file first). D: the
+    one given, else fitted from the run's noise, else analytic."""
+    from .rotor_report import rotor_summary
+
+    if not isinstance(result, (str, Path)):
+        import tempfile
+
+        with tempfile.TemporaryDirectory() as d:
+            p = Path(d) / "result.h5"
+            result.save(p)
+            out = rotor_summary(p, k=k, diffusion_hbar2_per_s=diffusion_hbar2_per_s)
+        out["source"] = "<result>"
+        return out
+    if file_kind(result) != "run":
+        raise InputError("", "not a run result", str(result))
+    return rotor_summary(result, k=k, diffusion_hbar2_per_s=diffusion_hbar2_per_s)
+
+
+def _rotor(result, rotor, diffusion, k):
+    if rotor is not None:
+        return rotor
+    try:
+        return rotor_info(result, diffusion, k)
+    except MissingData:
+        raise
+    except InputError as e:
+        raise MissingData("config_text", f"rotor quantities unavailable: {e.line()}", None) from None
+
+
+def spectrum_figure(result, rotor: dict | None = None, k: int | None = None):
+    """Predicted rotational lines ``L -> L + Delta L`` for Delta L = 1..k_lines.
+
+    Each line is drawn as a stick at its centre ``k f_rot + k^2 hbar / (4 pi
+    I)`` with a bar of +-1 standard deviation (the inhomogeneous width
+    ``k hbar sigma_L / (2 pi I)``) and a normal profile of that width
+    (:func:`mdrotor.rotor.transition_frequencies_hz`, via
+    :func:`rotor_info`). Lines whose Delta L is not a multiple of the ladder
+    spacing lead off the allowed ladder and are drawn dashed.
+
+    Parameters
+    ----------
+    result : Result or path
+    rotor : dict, optional
+        A :func:`rotor_info` dict (computed when not given).
+    k : int, optional
+        Branch separation used for the rotor quantities (default: the ladder spacing).
+    """
+    ps = _mpl()
+    d = _rotor(result, rotor, None, k)
+    lines = d["lines"]
+    cen = np.array([ln["freq_hz"] for ln in lines])
+    wid = np.array([ln["width_hz"] for ln in lines])
+    dls = [int(ln["dL"]) for ln in lines]
+    mod = int(d.get("allowed_L_mod", 1))
+    fs, fu = _freq_unit(np.max(np.abs(cen)))
+    with ps.context():
+        fig = ps.new_figure(ps.FULL_W, 2.9)
+        ax = fig.add_subplot()
+        span = float(np.max(cen) - np.min(cen)) if len(cen) > 1 else abs(float(cen[0])) or 1.0
+        pad = max(0.12 * span, 4 * float(np.max(wid)))
+        lo, hi = float(np.min(cen)) - pad, float(np.max(cen)) + pad
+        x = np.linspace(lo, hi, 3000)
+        for i, (c, w, dl) in enumerate(zip(cen, wid, dls)):
+            on = dl % mod == 0
+            col = ps.INK if on else ps.MUTED
+            lsty = "-" if on else "--"
+            if w > 0 and w > 2e-3 * (hi - lo):
+                ax.plot(x * fs, np.exp(-0.5 * ((x - c) / w) ** 2), color=col, ls=lsty, lw=1.0)
+            ax.vlines(c * fs, 0, 1.0, color=col, ls=lsty, lw=1.6)
+            ax.errorbar([c * fs], [0.5], xerr=[w * fs], fmt="none", ecolor=col, capsize=3, lw=1.0)
+            ax.text(c * fs, 1.04, f"ΔL = {dl}\n{c * fs:.7g} {fu}\nσ = {_fmt(w * fs, 3)} {fu}", ha="center", va="bottom",
+                    fontsize=6.5, color=col)
+        ax.set_xlim(lo * fs, hi * fs)
+        ax.set_ylim(0, 1.55)
+        ax.set_yticks([0, 0.5, 1.0])
+        ax.set_xlabel(f"transition frequency ({fu})")
+        ax.set_ylabel("line profile (peak = 1)")
+        note = (f"{FROT} = {d['f_rot_hz'] * fs:.6g} {fu}, ħ/(2πI) = {d['hbar_over_I_hz']:.4g} Hz, "
+                f"{SIG} = {d['L_std_hbar']:.4g} ħ")
+        if mod > 1:
+            note += f"\ndashed: ΔL not a multiple of {mod} leaves the allowed ladder L ≡ {d['allowed_L_residue']} (mod {mod})"
+        ax.set_title("predicted rotational lines", loc="left")
+        ax.text(0.0, -0.25, note, transform=ax.transAxes, fontsize=6.5, va="top", ha="left")
+    return fig
+
+
+def coherence_figure(result, rotor: dict | None = None, diffusion_hbar2_per_s: float | None = None, k: int | None = None):
+    """Ramsey and spin-echo contrast of branches k quanta apart versus time.
+
+    Contrasts from :func:`mdrotor.coherence.ramsey_contrast` and
+    :func:`~mdrotor.coherence.echo_contrast` with the D of
+    :func:`rotor_info` (given, else fitted from the run's ``/noise``, else
+    analytic from the config's noise spectrum); the exchange and revival
+    times, the 1/e level, and (dotted) the Ramsey contrast at the largest D
+    that leaves the budget contrast at the exchange time. Log time axis.
+    Raises :class:`MissingData` when there is no diffusion constant.
+    """
+    ps = _mpl()
+    from . import coherence as coh
+
+    d = _rotor(result, rotor, diffusion_hbar2_per_s, k)
+    D = float(d["diffusion_hbar2_per_s"])
+    if not D > 0:
+        raise MissingData("/noise", "no angular-momentum diffusion constant: the run has no noise (/noise) and "
+                                    "none was given (--diffusion D in hbar^2/s)", d.get("source"))
+    I, kk, kick = float(d["moment_of_inertia_kg_m2"]), int(d["k"]), int(d["kick_quanta"])
+    t_ex, t_rev = float(d["exchange_time_s"]), float(d["revival_time_s"])
+    t_coh = float(d["coherence_time_s"])
+    t_lo = min(t_coh, t_ex) / 300.0
+    t_hi = 1.6 * t_rev
+    t = np.logspace(math.log10(t_lo), math.log10(t_hi), 700)
+    cr = np.asarray(coh.ramsey_contrast(t, kk, D, I, kick_quanta=kick))
+    ce = np.asarray(coh.echo_contrast(t, kk, D, I, kick_quanta=kick))
+    Db = float(d.get("budget_diffusion_hbar2_per_s", float("nan")))
+    ts, tu = _time_unit(t_rev)
+    with ps.context():
+        fig = ps.new_figure(ps.FULL_W, 3.0)
+        ax = fig.add_subplot()
+        ax.plot(t * ts, cr, color=ps.INK, lw=1.4, label=f"Ramsey (1/e at {t_coh * ts:.4g} {tu})")
+        ax.plot(t * ts, ce, color=ps.PALETTE[1], ls="--", lw=1.4,
+                label=f"spin echo (1/e at {float(d['echo_coherence_time_s']) * ts:.4g} {tu})")
+        if np.isfinite(Db) and Db > 0:
+            cb = np.asarray(coh.ramsey_contrast(t, kk, Db, I, kick_quanta=kick))
+            ax.plot(t * ts, cb, color=ps.MUTED, ls=":", lw=1.3,
+                    label=f"Ramsey at D = {Db:.3g} ħ²/s (contrast {d['budget_contrast']:.2g} at exchange)")
+        ax.axhline(math.exp(-1), color=ps.MUTED, lw=0.6, ls=(0, (1, 2)))
+        ax.text(t[0] * ts, math.exp(-1), " 1/e", va="bottom", ha="left", fontsize=6.5, color=ps.MUTED)
+        for tt, lab in ((t_ex, f"exchange (2π/{d['n_ions']})"), (t_rev, "revival (2π)")):
+            ax.axvline(tt * ts, color=ps.ACCENT, lw=1.0, ls="-.")
+            ax.annotate(f"{lab} {tt * ts:.4g} {tu}", xy=(tt * ts, 0.97), xycoords=("data", "axes fraction"),
+                        xytext=(-2.5, 0), textcoords="offset points", ha="right", va="top", rotation=90, fontsize=6.5,
+                        color=ps.ACCENT)
+        ax.set_xscale("log")
+        ax.set_xlim(t[0] * ts, t[-1] * ts)
+        ax.set_ylim(0, 1.05)
+        ax.set_xlabel(f"free-evolution time ({tu})")
+        ax.set_ylabel("contrast (1 without noise)")
+        ax.set_title(f"rotor coherence, branches k = {kk} quanta apart")
+        ax.text(1.0, 1.02, f"D = {D:.4g} ħ²/s ({d['diffusion_source']})", transform=ax.transAxes, ha="right", va="bottom",
+                fontsize=7)
+        ax.legend(loc="lower left")
+    return fig
+
+
+def run_figures(result, diffusion_hbar2_per_s: float | None = None, k: int | None = None):
+    """Every run figure the file allows.
+
+    Returns
+    -------
+    figures : dict
+        name -> Figure, in the order schedule, L_final, L_stages, series,
+        phonons, spectrum, coherence.
+    skipped : dict
+        name -> reason for each figure that could not be made.
+    """
+    res, path = _load(result)
+    figs, skipped, _ = _run_figures(res, path, diffusion_hbar2_per_s, k)
+    return figs, skipped
+
+
+def _run_figures(res, path, diffusion_hbar2_per_s, k):
+    figs, skipped = {}, {}
+    src = path if path is not None else res
+
+    def attempt(name, fn, *a, **kw):
+        try:
+            figs[name] = fn(*a, **kw)
+        except MissingData as e:
+            skipped[name] = e.expected
+
+    attempt("schedule", schedule_figure, res)
+    attempt("L_final", L_histogram_figure, res)
+    attempt("L_stages", L_stages_figure, res)
+    attempt("series", series_figure, res)
+    attempt("phonons", phonons_figure, res)
+    try:
+        rot = _rotor(src, None, diffusion_hbar2_per_s, k)
+    except MissingData as e:
+        rot = None
+        skipped["spectrum"] = skipped["coherence"] = e.expected
+    if rot is not None:
+        attempt("spectrum", spectrum_figure, res, rotor=rot)
+        attempt("coherence", coherence_figure, res, rotor=rot)
+    return figs, skipped, rot
+
+
+# ---------------------------------------------------------------------------
+# sweeps and optimisations
+# ---------------------------------------------------------------------------
+DEFAULT_METRICS = ("L_mean_hbar", "L_std_hbar", "f_rot_mean_hz", "differential_n_mean", "com_n_mean",
+                   "slip_fraction", "loss_fraction", "reorder_fraction", "nonfinite_fraction")
+BOOKKEEPING = ("wall_s", "n_steps", "dt_s", "n_trajectories", "index")
+
+
+def _sweep_meta(path) -> dict:
+    import h5py
+
+    meta = {}
+    with h5py.File(path, "r") as f:
+        for k, v in f.attrs.items():
+            if isinstance(v, bytes):
+                v = v.decode()
+            elif isinstance(v, np.ndarray):
+                v = [x.decode() if isinstance(x, bytes) else (x.item() if hasattr(x, "item") else x) for x in v]
+            elif hasattr(v, "item"):
+                v = v.item()
+            meta[k] = v
+        meta["bounds"] = {}
+        if "axes" in f:
+            for g in f["axes"].values():
+                if "bounds" in g.attrs:
+                    meta["bounds"][str(g.attrs.get("key"))] = [x.decode() if isinstance(x, bytes) else str(x)
+                                                               for x in g.attrs["bounds"]]
+        if "confirm" in f and "metrics" in f["confirm"]:
+            meta["confirm_metrics"] = {k: float(v) for k, v in f["confirm"]["metrics"].attrs.items()}
+    return meta
+
+
+def _table(src):
+    """(table, meta) of a sweep / optimisation file, or of a table dict
+    (``read_table`` layout, optionally with a ``"meta"`` entry)."""
+    if isinstance(src, dict):
+        return src, dict(src.get("meta", {}))
+    from .sweep import read_table
+
+    p = Path(src)
+    kind = file_kind(p)
+    if kind == "run":
+        raise InputError("", "a run result, not a sweep: use run_figures", str(p))
+    t = read_table(p)
+    meta = _sweep_meta(p)
+    meta["path"] = str(p)
+    return t, meta
+
+
+class _AxisView:
+    """How a sweep axis is drawn: numeric (in the unit of its texts) or categorical."""
+
+    def __init__(self, key: str, texts: list, si: np.ndarray):
+        from .sweep import convert, quantity
+
+        self.key = key
+        self.texts = [str(x) for x in texts]
+        si = np.asarray(si, dtype=float)
+        self.numeric = bool(len(si)) and bool(np.all(np.isfinite(si)))
+        self.unit = None
+        if self.numeric:
+            try:
+                _, self.unit = quantity(self.texts[0], key, "sweep")
+                self.values = np.array([convert(t, self.unit, key, "sweep") for t in self.texts])
+            except InputError:
+                self.unit, self.values = None, si
+        else:
+            self.values = np.full(len(self.texts), np.nan)
+        # distinct values in drawing order
+        seen = {}
+        for i, t in enumerate(self.texts):
+            seen.setdefault(t, i)
+        uniq = list(seen)
+        if self.numeric:
+            uniq.sort(key=lambda t: self.values[seen[t]])
+        self.levels = uniq
+        self.pos = np.array([uniq.index(t) for t in self.texts])
+        v = self.values[np.isfinite(self.values)]
+        self.log = self.numeric and v.size > 2 and np.all(v > 0) and v.max() / v.min() > 20
+
+    @property
+    def label(self) -> str:
+        if not self.numeric:
+            return self.key
+        return f"{self.key} ({_pretty_unit(self.unit) if self.unit else 'number'})"
+
+    def level_text(self, i: int) -> str:
+        """The i-th level as a tick label (numeric: its value in the axis unit)."""
+        if not self.numeric:
+            return self.levels[i]
+        return _fmt(self.values[self.texts.index(self.levels[i])], 6)
+
+
+def _metric_label(name: str, meta: dict | None = None):
+    """(label, scale, unit) of a metric for an axis."""
+    prefix = ""
+    base = name
+    if name.startswith("stage.") and name.count(".") >= 2:
+        _, st, base = name.split(".", 2)
+        prefix = f"[{st}] "
+    known = {
+        "L_mean_hbar": ("mean ⟨L⟩", 1.0, "ħ"), "L_std_hbar": (f"spread {SIG}", 1.0, "ħ"),
+        "differential_n_mean": ("differential phonons", 1.0, "quanta"), "com_n_mean": ("COM phonons", 1.0, "quanta"),
+        "slip_fraction": ("slipped", 1.0, "fraction"), "loss_fraction": ("lost an ion", 1.0, "fraction"),
+        "reorder_fraction": ("reordered", 1.0, "fraction"), "nonfinite_fraction": ("non-finite", 1.0, "fraction"),
+        "n_ok": ("trajectories kept", 1.0, "count"), "n_trajectories": ("trajectories", 1.0, "count"),
+        "n_steps": ("steps", 1.0, "count"), "I_kg_m2": ("moment of inertia", 1.0, "kg m²"),
+        "objective": ("objective", 1.0, "as defined"), "penalty": ("penalty", 1.0, "objective units"),
+        "feasible": ("feasible", 1.0, "1 = yes"),
+    }
+    if base in known:
+        lab, sc, u = known[base]
+    elif base.startswith("mode_n_mean."):
+        lab, sc, u = f"⟨n⟩ {base.split('.', 1)[1]}", 1.0, "quanta"
+    elif base.startswith("pinning_peak."):
+        term = base.split(".", 1)[1]
+        order = dict(_pin_terms(str((meta or {}).get("base_config_text", "")))).get(term)
+        lab, sc, u = f"peak pinning {term}", 1.0, f"V/m{_sup(order)}" if order else "V/mⁿ"
+    elif base.endswith("_hz"):
+        lab, u = base[:-3], "Hz"
+        sc, u = _freq_unit(1e4 if base.startswith("f_rot") else 1.0)
+        if base == "f_rot_mean_hz":
+            lab = f"rotation {FROT}"
+        elif base == "f_rot_peak_hz":
+            lab = f"peak {FROT}"
+    elif base.endswith("_hbar"):
+        lab, sc, u = base[:-5], 1.0, "ħ"
+    elif base.endswith("_s"):
+        lab, sc, u = base[:-2], 1.0, "s"
+        if base in ("duration_s", "dt_s"):
+            sc, u = (1e6, "µs") if base == "duration_s" else (1e9, "ns")
+    else:
+        lab, sc, u = base, 1.0, "as stored"
+    return f"{prefix}{lab} ({u})", sc, u
+
+
+def _pick_metrics(t: dict, meta: dict, metrics) -> tuple[list, list]:
+    """(metrics to draw, metrics left out because identically zero)."""
+    cols = t["metrics"]
+    if metrics in (None, "", "default"):
+        if meta.get("kind") == "optimize":
+            names = ["objective"]
+            for key in ("objective", "constraints"):
+                try:
+                    names += [d["metric"] for d in json.loads(meta.get(key, "[]"))]
+                except (ValueError, TypeError, KeyError):
+                    pass
+        else:
+            names = [m for m in DEFAULT_METRICS if m in cols] + sorted(m for m in cols if m.startswith("mode_n_mean."))
+    elif metrics == "all":
+        from .optimize import err_name
+
+        errs = {err_name(m, cols) for m in cols}
+        names = [m for m in cols if m not in errs and m not in BOOKKEEPING]
+    else:
+        names = [m.strip() for m in (metrics.split(",") if isinstance(metrics, str) else metrics) if m.strip()]
+        bad = [m for m in names if m not in cols]
+        if bad:
+            raise InputError("--metrics", f"unknown metric {bad[0]!r}; the file has: {', '.join(list(cols)[:30])}"
+                             + (" ..." if len(cols) > 30 else ""), meta.get("path"))
+    out, zero = [], []
+    for m in dict.fromkeys(names):
+        if m not in cols:
+            continue
+        v = np.asarray(cols[m], float)
+        v = v[np.isfinite(v)]
+        if v.size and np.all(v == 0) and metrics in (None, "", "default"):
+            zero.append(m)
+        else:
+            out.append(m)
+    return out, zero
+
+
+def _errors(t, m, rows):
+    from .optimize import err_name
+
+    en = err_name(m, t["metrics"])
+    if en is None:
+        return None
+    e = np.asarray(t["metrics"][en], float)[rows]
+    v = np.asarray(t["metrics"][m], float)[rows]
+    if m.endswith("_fraction"):  # a fraction is bounded by 0: no error bar below it (rule-of-three bars at p = 0)
+        return np.vstack([np.minimum(e, v), e])
+    return e
+
+
+def _parse_fixed(fixed, views: dict) -> dict:
+    """{key: level index} from {key: value text or '#index' or int}."""
+    out = {}
+    for key, val in (fixed or {}).items():
+        if key not in views:
+            raise InputError("--slice", f"{key!r} is not an axis of this sweep (axes: {', '.join(views)})", None)
+        v = views[key]
+        if isinstance(val, (int, np.integer)) or (isinstance(val, str) and val.startswith("#")):
+            i = int(str(val).lstrip("#"))
+            if not 0 <= i < len(v.levels):
+                raise InputError("--slice", f"{key}: index {i} out of range 0..{len(v.levels) - 1}", None)
+            out[key] = i
+            continue
+        txt = str(val).strip()
+        hit = [i for i, lv in enumerate(v.levels) if lv == txt]
+        if not hit and v.numeric:
+            from .sweep import si_value
+
+            si = si_value(txt)
+            lv_si = [si_value(lv) for lv in v.levels]
+            hit = [i for i, s in enumerate(lv_si) if np.isfinite(si) and math.isclose(s, si, rel_tol=1e-9, abs_tol=0.0)]
+        if not hit:
+            raise InputError("--slice", f"{key}: expected one of {', '.join(v.levels)} (or #index), got {txt!r}", None)
+        out[key] = hit[0]
+    return out
+
+
+def sweep_figures(source, metrics=None, axes=None, fixed: dict | None = None, per_page: int = 6) -> list:
+    """Figures of a sweep's (or optimisation's) metrics over its axes.
+
+    * one varying axis (or a ``zip`` sweep): each metric versus the axis,
+      markers with standard-error bars, joined by lines;
+    * a grid with two or more varying axes: a heat map per metric over two
+      axes (``axes``, default the first two), the others fixed at ``fixed``
+      (default: their first value), values written in the cells;
+    * scattered points (``sample`` sweeps, optimisations): each metric
+      versus each axis, one row of panels per metric.
+
+    Parameters
+    ----------
+    source : path or dict
+        A sweep / optimisation file or a :func:`mdrotor.sweep.read_table`
+        dict (with ``"meta": {"combine": ...}``).
+    metrics : str or list, optional
+        Metric names (comma-separated), ``"all"``, or None for the final-stage
+        outcome metrics (optimisations: the objective and its terms).
+        Metrics that are zero everywhere are then left out and named in the
+        figure's footnote.
+    axes : str or list of two keys, optional
+        The heat-map axes.
+    fixed : dict, optional
+        ``{axis key: value text, '#index' or int}`` for the other axes.
+    per_page : int
+        Panels per figure (rows of panels for scattered points: per_page // 2).
+
+    Returns
+    -------
+    list of Figure
+    """
+    ps = _mpl()
+    t, meta = _table(source)
+    keys = list(t["axes"])
+    if not keys:
+        raise MissingData("/axes", "the file has no axes", meta.get("path"))
+    rows = np.flatnonzero(np.asarray(t["complete"], bool) & ~np.asarray(t["failed"], bool))
+    if rows.size == 0:
+        raise MissingData("/summary", "no finished points yet", meta.get("path"))
+    views = {k: _AxisView(k, t["axes"][k]["text"], t["axes"][k]["si"]) for k in keys}
+    names, zero = _pick_metrics(t, meta, metrics)
+    if not names:
+        raise MissingData("/summary", "no metric to draw (every default metric is zero)", meta.get("path"))
+    combine = meta.get("combine", "optimize" if meta.get("kind") == "optimize" else "grid")
+    varying = [k for k in keys if len(views[k].levels) > 1]
+    foot = f"identically zero (not drawn): {', '.join(zero)}" if zero else ""
+    kind_title = "optimisation" if meta.get("kind") == "optimize" else "sweep"
+    n_done = f"{rows.size} of {len(t['index'])} points finished"
+    if combine == "zip" or (combine == "grid" and len(varying) <= 1):
+        key = next((k for k in (varying or keys) if views[k].numeric), (varying or keys)[0])
+        return _line_pages(ps, t, meta, views[key], [views[k] for k in keys if k != key] if combine == "zip" else [],
+                           names, rows, per_page, f"{kind_title}: metrics versus {key} ({n_done})", foot)
+    if combine == "grid":
+        if axes:
+            pair = [a.strip() for a in (axes.split(",") if isinstance(axes, str) else axes)]
+            if len(pair) != 2 or any(a not in views for a in pair) or pair[0] == pair[1]:
+                raise InputError("--axes", f"expected two different axis keys of this sweep, from: {', '.join(keys)}",
+                                 meta.get("path"))
+        else:
+            pair = varying[:2]
+        fx = {k: 0 for k in keys if k not in pair}
+        fx.update(_parse_fixed(fixed, views))
+        for k in pair:
+            fx.pop(k, None)
+        return _heat_pages(ps, t, meta, views, pair, fx, names, rows, per_page,
+                           f"{kind_title}: metrics over {pair[0]} and {pair[1]} ({n_done})", foot)
+    return _scatter_pages(ps, t, meta, [views[k] for k in keys], names, rows, max(1, per_page // 2),
+                          f"{kind_title}: metrics versus each parameter ({n_done})", foot)
+
+
+def _footnote(fig, text):
+    if text:
+        fig.supxlabel(text, x=0.01, ha="left", fontsize=6.5, color="#555555")
+
+
+def _set_axis(ax, view, which="x"):
+    if view.numeric:
+        if view.log:
+            (ax.set_xscale if which == "x" else ax.set_yscale)("log")
+    else:
+        ticks = list(range(len(view.levels)))
+        (ax.set_xticks if which == "x" else ax.set_yticks)(ticks, view.levels, rotation=20 if which == "x" else 0)
+    (ax.set_xlabel if which == "x" else ax.set_ylabel)(view.label)
+
+
+def _line_pages(ps, t, meta, view, others, names, rows, per_page, title, foot):
+    figs = []
+    for p0 in range(0, len(names), per_page):
+        chunk = names[p0:p0 + per_page]
+        ncol = 2 if len(chunk) > 1 else 1
+        nrow = math.ceil(len(chunk) / ncol)
+        with ps.context():
+            fig = ps.new_figure(ps.FULL_W, 0.5 + 2.1 * nrow)
+            axs = np.atleast_1d(fig.subplots(nrow, ncol, squeeze=False)).ravel()
+            for ax, m in zip(axs, chunk):
+                lab, sc, _ = _metric_label(m, meta)
+                x = view.values[rows] if view.numeric else view.pos[rows].astype(float)
+                o = np.argsort(x, kind="stable")
+                y = np.asarray(t["metrics"][m], float)[rows] * sc
+                e = _errors(t, m, rows)
+                e = None if e is None else np.asarray(e) * sc
+                ax.errorbar(x[o], y[o], yerr=None if e is None else (e[..., o] if e.ndim == 2 else e[o]), fmt="o-",
+                            color=ps.INK, mfc="white", ms=4, lw=1.0, capsize=2)
+                ax.set_ylabel(lab)
+                _set_axis(ax, view, "x")
+                if others:
+                    ax.set_title("with " + ", ".join(o_.key for o_ in others) + " varying together", fontsize=6.5)
+            for ax in axs[len(chunk):]:
+                ax.set_visible(False)
+            fig.suptitle(title + (f", page {p0 // per_page + 1}" if len(names) > per_page else ""), fontsize=8, x=0.01, ha="left")
+            _footnote(fig, foot)
+        figs.append(fig)
+    return figs
+
+
+def _heat_pages(ps, t, meta, views, pair, fixed, names, rows, per_page, title, foot):
+    vx, vy = views[pair[0]], views[pair[1]]
+    sel = [r for r in rows if all(views[k].pos[r] == i for k, i in fixed.items())]
+    slice_txt = ", ".join(f"{k} = {_pretty_unit(views[k].levels[i]) if views[k].numeric else views[k].levels[i]}"
+                          for k, i in fixed.items())
+    figs = []
+    cm = ps.cmap()
+    for p0 in range(0, len(names), per_page):
+        chunk = names[p0:p0 + per_page]
+        ncol = 2 if len(chunk) > 1 else 1
+        nrow = math.ceil(len(chunk) / ncol)
+        with ps.context():
+            fig = ps.new_figure(ps.FULL_W, 0.6 + 2.5 * nrow)
+            axs = np.atleast_1d(fig.subplots(nrow, ncol, squeeze=False)).ravel()
+            for ax, m in zip(axs, chunk):
+                lab, sc, _ = _metric_label(m, meta)
+                Z = np.full((len(vy.levels), len(vx.levels)), np.nan)
+                E = np.full_like(Z, np.nan)
+                e = _errors(t, m, np.asarray(sel, int)) if sel else None
+                if e is not None and np.ndim(e) == 2:
+                    e = e[1]
+                for j, r in enumerate(sel):
+                    Z[vy.pos[r], vx.pos[r]] = float(t["metrics"][m][r]) * sc
+                    if e is not None:
+                        E[vy.pos[r], vx.pos[r]] = float(e[j]) * sc
+                mesh = ax.pcolormesh(np.arange(len(vx.levels) + 1) - 0.5, np.arange(len(vy.levels) + 1) - 0.5,
+                                     np.ma.masked_invalid(Z), cmap=cm, shading="flat")
+                ax.grid(False)
+                fig.colorbar(mesh, ax=ax, label=lab, fraction=0.07, pad=0.02)
+                if Z.size <= 48:
+                    for iy in range(Z.shape[0]):
+                        for ix in range(Z.shape[1]):
+                            if not np.isfinite(Z[iy, ix]):
+                                ax.text(ix, iy, "no data", ha="center", va="center", fontsize=6, color="#777777")
+                                continue
+                            lum = ps.luminance(cm(mesh.norm(Z[iy, ix])))
+                            s = _fmt(Z[iy, ix], 3)
+                            if np.isfinite(E[iy, ix]) and Z.size <= 24:
+                                s += f"\n±{_fmt(E[iy, ix], 2)}"
+                            ax.text(ix, iy, s, ha="center", va="center", fontsize=6, color="white" if lum < 0.45 else "black")
+                ax.set_xticks(range(len(vx.levels)), [vx.level_text(i) for i in range(len(vx.levels))],
+                              rotation=0 if vx.numeric else 20)
+                ax.set_yticks(range(len(vy.levels)), [vy.level_text(i) for i in range(len(vy.levels))])
+                ax.set_xlabel(vx.key + (f" ({_pretty_unit(vx.unit)})" if vx.numeric and vx.unit else ""))
+                ax.set_ylabel(vy.key + (f" ({_pretty_unit(vy.unit)})" if vy.numeric and vy.unit else ""))
+                ax.spines[["top", "right"]].set_visible(True)
+            for ax in axs[len(chunk):]:
+                ax.set_visible(False)
+            sup = title + (f"\nat {slice_txt}" if slice_txt else "")
+            fig.suptitle(sup + (f", page {p0 // per_page + 1}" if len(names) > per_page else ""), fontsize=8, x=0.01, ha="left")
+            _footnote(fig, foot)
+        figs.append(fig)
+    return figs
+
+
+def _scatter_pages(ps, t, meta, views, names, rows, rows_per_page, title, foot):
+    figs = []
+    best = meta.get("best_index")
+    for p0 in range(0, len(names), rows_per_page):
+        chunk = names[p0:p0 + rows_per_page]
+        with ps.context():
+            fig = ps.new_figure(ps.FULL_W, 0.5 + 1.9 * len(chunk))
+            axs = fig.subplots(len(chunk), len(views), squeeze=False, sharey="row")
+            for i, m in enumerate(chunk):
+                lab, sc, _ = _metric_label(m, meta)
+                y = np.asarray(t["metrics"][m], float)[rows] * sc
+                e = _errors(t, m, rows)
+                e = None if e is None else np.asarray(e) * sc
+                for j, v in enumerate(views):
+                    ax = axs[i, j]
+                    x = v.values[rows] if v.numeric else v.pos[rows].astype(float)
+                    ax.errorbar(x, y, yerr=e, fmt="o", color=ps.INK, mfc="white", ms=3.5, lw=0.8, capsize=1.5)
+                    if best is not None and int(best) in set(int(r) for r in rows):
+                        b = int(np.flatnonzero(rows == int(best))[0])
+                        ax.plot([x[b]], [y[b]], marker="*", ms=11, color=ps.ACCENT, ls="none", label="best")
+                    _set_axis(ax, v, "x")
+                    if j == 0:
+                        ax.set_ylabel(lab)
+            if best is not None:
+                axs[0, 0].legend(loc="best")
+            fig.suptitle(title + (f", page {p0 // rows_per_page + 1}" if len(names) > rows_per_page else ""), fontsize=8,
+                         x=0.01, ha="left")
+            _footnote(fig, foot)
+        figs.append(fig)
+    return figs
+
+
+def optimize_figure(source):
+    """History of an optimisation: the objective of every evaluation
+    (feasible: filled circles; infeasible: crosses), the best so far, the
+    best point (star) and the confirmation run (with its standard error from
+    the metrics' errors, in quadrature); below, each parameter per
+    evaluation in its own unit with its bounds."""
+    ps = _mpl()
+    t, meta = _table(source)
+    if meta.get("kind") != "optimize" or "objective" not in t["metrics"]:
+        raise InputError("", "not an optimisation file", meta.get("path"))
+    done = np.asarray(t["complete"], bool) & ~np.asarray(t["failed"], bool)
+    idx = np.asarray(t["index"], int)
+    obj = np.asarray(t["metrics"]["objective"], float)
+    feas = np.asarray(t["metrics"].get("feasible", np.ones_like(obj)), float) > 0.5
+    keys = list(t["axes"])
+    views = {k: _AxisView(k, t["axes"][k]["text"], t["axes"][k]["si"]) for k in keys}
+    best = meta.get("best_index")
+    with ps.context():
+        fig = ps.new_figure(ps.FULL_W, 2.6 + 1.1 * len(keys))
+        axs = fig.subplots(1 + len(keys), 1, sharex=True, squeeze=False,
+                           gridspec_kw={"height_ratios": [2.2] + [1.0] * len(keys)})[:, 0]
+        ax = axs[0]
+        ok = done & np.isfinite(obj)
+        ax.plot(idx[ok & feas], obj[ok & feas], "o", color=ps.INK, ms=3.5, label="feasible")
+        if np.any(ok & ~feas):
+            ax.plot(idx[ok & ~feas], obj[ok & ~feas], "x", color=ps.MUTED, ms=4, label="infeasible (penalised)")
+        run_best = np.full(len(obj), np.nan)
+        cur = np.inf
+        for i in range(len(obj)):
+            if ok[i] and feas[i]:
+                cur = min(cur, obj[i])
+            run_best[i] = cur if np.isfinite(cur) else np.nan
+        ax.step(idx, run_best, where="post", color=ps.PALETTE[1], lw=1.0, ls="--", label="best so far")
+        if best is not None and 0 <= int(best) < len(obj):
+            b = int(best)
+            ax.plot([idx[b]], [obj[b]], marker="*", ms=12, color=ps.ACCENT, ls="none", label=f"best (#{idx[b]})")
+        cm = meta.get("confirm_metrics") or {}
+        if "objective" in cm:
+            err = _confirm_error(meta, cm)
+            xc = idx[-1] + 1 if len(idx) else 0
+            ax.errorbar([xc], [cm["objective"]], yerr=None if err is None else [err], fmt="D", color=ps.ACCENT, mfc="white",
+                        ms=5, capsize=2.5, label=f"confirmation ({int(cm.get('n_trajectories', 0))} trajectories)")
+        v = obj[ok]
+        if v.size and np.all(v > 0) and v.max() / v.min() > 100:
+            ax.set_yscale("log")
+        ax.set_ylabel("objective (as defined)")
+        ax.set_title(f"optimisation ({meta.get('method', '?')}): {int(np.sum(done))} evaluations")
+        ax.legend(loc="upper right", fontsize=6.5)
+        for ax, k in zip(axs[1:], keys):
+            vw = views[k]
+            y = vw.values if vw.numeric else vw.pos.astype(float)
+            ax.plot(idx[done], y[done], "o-", color=ps.INK, mfc="white", ms=3, lw=0.7)
+            if best is not None and 0 <= int(best) < len(y):
+                ax.plot([idx[int(best)]], [y[int(best)]], marker="*", ms=10, color=ps.ACCENT, ls="none")
+            bd = meta.get("bounds", {}).get(k)
+            if bd and vw.numeric and vw.unit:
+                from .sweep import convert
+
+                for bt in bd:
+                    try:
+                        ax.axhline(convert(bt, vw.unit, k, "bounds"), color=ps.MUTED, ls=":", lw=0.8)
+                    except InputError:
+                        pass
+            if vw.log:
+                ax.set_yscale("log")
+            ax.set_ylabel(f"{k.rsplit('.', 1)[-1] if len(k) > 22 else k}\n({_pretty_unit(vw.unit) if vw.unit else 'number'})",
+                          fontsize=6.5)
+        axs[-1].set_xlabel("evaluation number")
+        if meta.get("message"):
+            _footnote(fig, f"optimiser: {meta['message']}")
+    return fig
+
+
+def _confirm_error(meta, cm):
+    """Standard error of the confirmation's objective: the weighted metrics'
+    errors added in quadrature (constraints' penalties left out)."""
+    from .optimize import err_name
+
+    try:
+        terms = json.loads(meta.get("objective", "[]"))
+    except (TypeError, ValueError):
+        return None
+    tot = 0.0
+    for d in terms:
+        en = err_name(d.get("metric", ""), cm)
+        if en is None or not np.isfinite(cm.get(en, np.nan)):
+            return None
+        tot += (float(d.get("weight", 1.0)) * cm[en]) ** 2
+    return math.sqrt(tot)
+
+
+# ---------------------------------------------------------------------------
+# the report: files and summary
+# ---------------------------------------------------------------------------
+class _Doc:
+    """A tiny document model rendered as Markdown or HTML."""
+
+    def __init__(self):
+        self.blocks = []
+
+    def h(self, level, text):
+        self.blocks.append(("h", level, text))
+
+    def p(self, text):
+        self.blocks.append(("p", text))
+
+    def table(self, header, rows):
+        self.blocks.append(("table", header, rows))
+
+    def pre(self, text):
+        self.blocks.append(("pre", text))
+
+    def items(self, items):
+        self.blocks.append(("ul", items))
+
+    def img(self, rel, caption):
+        self.blocks.append(("img", rel, caption))
+
+    def markdown(self) -> str:
+        out = []
+        for b in self.blocks:
+            if b[0] == "h":
+                out.append("#" * b[1] + " " + b[2])
+            elif b[0] == "p":
+                out.append(b[1])
+            elif b[0] == "table":
+                out.append("| " + " | ".join(b[1]) + " |")
+                out.append("|" + "---|" * len(b[1]))
+                out += ["| " + " | ".join(str(c).replace("|", "\\|") for c in r) + " |" for r in b[2]]
+            elif b[0] == "pre":
+                out.append("```\n" + b[1].rstrip() + "\n```")
+            elif b[0] == "ul":
+                out += [f"- {x}" for x in b[1]]
+            elif b[0] == "img":
+                out.append(f"![{b[2]}]({b[1]})\n\n*{b[2]}*")
+            out.append("")
+        return "\n".join(out)
+
+    def html(self, title) -> str:
+        e = html.escape
+        out = ["<!DOCTYPE html>", "<html><head><meta charset='utf-8'>", f"<title>{e(title)}</title>",
+               "<style>body{font-family:'DejaVu Sans',sans-serif;max-width:17cm;margin:1.5em auto;font-size:10pt;color:#1c1c1c}"
+               "table{border-collapse:collapse;font-size:9pt}td,th{border-bottom:1px solid #ccc;padding:2px 8px;text-align:left}"
+               "pre{background:#f4f4f4;padding:6px;font-size:8pt;overflow-x:auto}img{max-width:100%}"
+               "figcaption{font-size:8.5pt;color:#444}figure{margin:1em 0}</style></head><body>"]
+        for b in self.blocks:
+            if b[0] == "h":
+                out.append(f"<h{b[1]}>{e(b[2])}</h{b[1]}>")
+            elif b[0] == "p":
+                out.append(f"<p>{e(b[1])}</p>")
+            elif b[0] == "table":
+                out.append("<table><tr>" + "".join(f"<th>{e(str(c))}</th>" for c in b[1]) + "</tr>")
+                out += ["<tr>" + "".join(f"<td>{e(str(c))}</td>" for c in r) + "</tr>" for r in b[2]]
+                out.append("</table>")
+            elif b[0] == "pre":
+                out.append(f"<pre>{e(b[1])}</pre>")
+            elif b[0] == "ul":
+                out.append("<ul>" + "".join(f"<li>{e(x)}</li>" for x in b[1]) + "</ul>")
+            elif b[0] == "img":
+                out.append(f"<figure><img src='{e(b[1])}' alt='{e(b[2])}'><figcaption>{e(b[2])}</figcaption></figure>")
+        out.append("</body></html>")
+        return "\n".join(out)
+
+
+def _save(fig, folder: Path, name: str, fmt: str, dpi: int) -> Path:
+    p = folder / f"{name}.{fmt}"
+    fig.savefig(p, format=fmt, dpi=dpi)
+    return p
+
+
+def _provenance_rows(attrs: dict, keys) -> list:
+    rows = []
+    for k in keys:
+        if k in attrs:
+            v = attrs[k]
+            if isinstance(v, bytes):
+                v = v.decode()
+            if isinstance(v, float):
+                v = f"{v:.6g}"
+            rows.append([k, str(v)])
+    return rows
+
+
+def write_report(source, output_dir=None, fmt: str = "png", *, summary: str = "md", diffusion_hbar2_per_s=None,
+                 k: int | None = None, metrics=None, axes=None, fixed=None, dpi: int = 150) -> dict:
+    """Write the figures and a one-page summary of a run, sweep or optimisation file.
+
+    Parameters
+    ----------
+    source : path
+        A result, sweep or optimisation file (``.h5``).
+    output_dir : path, optional
+        Folder for the figures and ``summary.md`` / ``summary.html``
+        (default ``<file stem>_report`` in the current folder; created).
+    fmt : {"png", "pdf", "svg"}
+    summary : {"md", "html"}
+    diffusion_hbar2_per_s, k
+        For the coherence figure, see :func:`coherence_figure`.
+    metrics, axes, fixed
+        For sweeps, see :func:`sweep_figures`.
+    dpi : int
+        Resolution of PNG figures.
+
+    Returns
+    -------
+    dict
+        ``kind``, ``output_dir``, ``figures`` (list of paths), ``skipped``
+        ({name: reason}), ``summary`` (path).
+    """
+    if fmt not in FORMATS:
+        raise InputError("--format", f"expected one of {', '.join(FORMATS)}, got {fmt!r}", "command line")
+    if summary not in SUMMARY_FORMATS:
+        raise InputError("--summary", f"expected one of {', '.join(SUMMARY_FORMATS)}, got {summary!r}", "command line")
+    _mpl()
+    src = Path(source)
+    kind = file_kind(src)
+    out = Path(output_dir) if output_dir is not None else Path(f"{src.stem}_report")
+    if out.exists() and not out.is_dir():
+        raise InputError("-o", f"{str(out)!r} exists and is not a folder", "command line")
+    if not out.parent.exists():
+        raise InputError("-o", f"the folder {str(out.parent)!r} does not exist", "command line")
+    out.mkdir(exist_ok=True)
+    doc = _Doc()
+    written, skipped = [], {}
+    if kind == "run":
+        _report_run(src, out, fmt, dpi, doc, written, skipped, diffusion_hbar2_per_s, k)
+    else:
+        _report_sweep(src, kind, out, fmt, dpi, doc, written, skipped, metrics, axes, fixed, diffusion_hbar2_per_s, k)
+    title = f"mdrotor report: {src.name}"
+    spath = out / f"summary.{summary}"
+    spath.write_text(doc.markdown() if summary == "md" else doc.html(title), encoding="utf-8")
+    return {"kind": kind, "output_dir": str(out), "figures": [str(p) for p in written], "skipped": skipped,
+            "summary": str(spath)}
+
+
+def _emit(figs: dict, out, fmt, dpi, doc, written, prefix="", captions=None):
+    for name, fig in figs.items():
+        p = _save(fig, out, prefix + name, fmt, dpi)
+        written.append(p)
+        doc.img(p.name, (captions or CAPTIONS).get(name, name))
+        fig.clear()  # figures were never registered with pyplot: clearing frees them
+
+
+def _report_run(src, out, fmt, dpi, doc, written, skipped, diffusion, k, prefix="", res=None, title=True):
+    from .runner import summary_text
+
+    path = None
+    if res is None:
+        res, path = _load(src)
+    figs, skip, rot = _run_figures(res, path, diffusion, k)
+    if title:
+        doc.h(1, f"mdrotor report: {Path(src).name}")
+    a = res.attrs
+    s = res.summary
+    doc.h(2, "Key numbers" if not prefix else "Confirmation run: key numbers")
+    rows = [["final L (mean)", f"{_pm(s['L_mean_hbar'], s['L_mean_err_hbar'], 6)} ħ"],
+            ["final L spread", f"{_pm(s['L_std_hbar'], s['L_std_err_hbar'])} ħ"],
+            ["rotation f_rot", f"{_pm(s['f_rot_mean_hz'] / 1e3, s['f_rot_mean_err_hz'] / 1e3, 7)} kHz"],
+            ["slipped / lost / reordered", f"{s['slip_fraction']:.3f} / {s['loss_fraction']:.3f} / {s['reorder_fraction']:.3f}"],
+            ["differential phonons", _pm(s["differential_n_mean"], s["differential_n_err"])],
+            ["COM phonons", _pm(s["com_n_mean"], s["com_n_err"])]]
+    if rot:
+        rows += [["allowed L", f"{rot['allowed_L_residue']} mod {rot['allowed_L_mod']} ({rot['statistics']})"],
+                 ["ħ/(2πI)", f"{rot['hbar_over_I_hz']:.5g} Hz"],
+                 [f"exchange / revival (k = {rot['k']})",
+                  f"{rot['exchange_time_s'] * 1e3:.5g} ms / {rot['revival_time_s'] * 1e3:.5g} ms"],
+                 ["lines ΔL = " + ", ".join(str(ln["dL"]) for ln in rot["lines"]),
+                  "; ".join(f"{ln['freq_hz'] / 1e3:.7g} ± {ln['width_hz'] / 1e3:.3g} kHz" for ln in rot["lines"])],
+                 ["diffusion D", f"{rot['diffusion_hbar2_per_s']:.4g} ħ²/s ({rot['diffusion_source']})"
+                  if rot["diffusion_hbar2_per_s"] > 0 else "none (no noise in the run; --diffusion D sets one)"]]
+        if rot["diffusion_hbar2_per_s"] > 0:
+            rows.append(["coherence time (1/e) Ramsey / echo",
+                         f"{rot['coherence_time_s'] * 1e3:.4g} ms / {rot['echo_coherence_time_s'] * 1e3:.4g} ms"])
+    doc.table(["quantity", "value"], rows)
+    doc.pre(summary_text(res))
+    doc.h(2, "Figures")
+    _emit(figs, out, fmt, dpi, doc, written, prefix)
+    if skip:
+        doc.h(3, "Skipped figures")
+        doc.items([f"{n}: {r}" for n, r in skip.items()])
+    for n, r in skip.items():
+        skipped[prefix + n] = r
+    doc.h(2, "Provenance")
+    doc.table(["attribute", "value"], _provenance_rows(a, ("package_version", "format_version", "created", "seed", "dt_s",
+                                                            "n_steps", "n_trajectories", "integrator", "threads", "wall_s",
+                                                            "config_source")))
+    doc.h(2, "Config (overrides applied)")
+    doc.pre(str(a.get("config_text", "")))
+
+
+def _report_sweep(src, kind, out, fmt, dpi, doc, written, skipped, metrics, axes, fixed, diffusion, k):
+    from .sweep import read_point, read_table
+
+    t = read_table(src)
+    meta = _sweep_meta(src)
+    meta["path"] = str(src)
+    done = np.asarray(t["complete"], bool) & ~np.asarray(t["failed"], bool)
+    doc.h(1, f"mdrotor report: {src.name} ({'optimisation' if kind == 'optimize' else 'sweep'})")
+    rows = [["points", f"{int(done.sum())} finished, {int(np.sum(t['failed']))} failed, {len(done)} in all"]]
+    for key, ax in t["axes"].items():
+        lv = list(dict.fromkeys(ax["text"]))
+        rows.append([f"axis {key}", ", ".join(lv[:12]) + (" ..." if len(lv) > 12 else "")])
+    for kk in ("combine", "seeding", "base_seed", "method", "budget", "message", "best_index", "penalty"):
+        if kk in meta:
+            rows.append([kk, str(meta[kk])])
+    doc.table(["quantity", "value"], rows)
+    figs = {}
+    if kind == "optimize":
+        try:
+            figs["optimize_history"] = optimize_figure(src)
+        except MissingData as e:
+            skipped["optimize_history"] = e.expected
+        best = meta.get("best_index")
+        if best is not None:
+            b = int(best)
+            obj = t["metrics"]["objective"][b]
+            doc.p(f"Best evaluation #{b}: objective {obj:.6g}; parameters "
+                  + ", ".join(f"{key} = {ax['text'][b]}" for key, ax in t["axes"].items()))
+        cm = meta.get("confirm_metrics")
+        if cm and "objective" in cm:
+            err = _confirm_error(meta, cm)
+            doc.p(f"Confirmation run ({int(cm.get('n_trajectories', 0))} trajectories, fresh seeds): objective "
+                  f"{_pm(cm['objective'], err, 6)}.")
+    try:
+        pages = sweep_figures(src, metrics=metrics, axes=axes, fixed=fixed)
+        for i, f in enumerate(pages):
+            figs[f"{'optimize_landscape' if kind == 'optimize' else 'sweep_metrics'}_{i + 1}"] = f
+    except MissingData as e:
+        skipped["sweep_metrics"] = e.expected
+    caps = {n: ("Objective and parameters per evaluation, the best point (star) and the confirmation run."
+                if n == "optimize_history" else
+                "Metrics over the axes (error bars and cell values: standard errors of the means and fractions).")
+            for n in figs}
+    doc.h(2, "Figures")
+    _emit(figs, out, fmt, dpi, doc, written, captions=caps)
+    # table of the main metrics per point (first 40 rows)
+    names = [m for m in ("objective", "L_mean_hbar", "L_std_hbar", "slip_fraction", "differential_n_mean") if m in t["metrics"]]
+    hdr = ["#"] + list(t["axes"]) + names
+    body = []
+    for i in np.flatnonzero(done)[:40]:
+        body.append([str(int(t["index"][i]))] + [ax["text"][i] for ax in t["axes"].values()]
+                    + [_fmt(t["metrics"][m][i], 5) for m in names])
+    doc.h(2, "Points")
+    doc.table(hdr, body)
+    if int(done.sum()) > 40:
+        doc.p(f"... {int(done.sum()) - 40} more (mdrotor sweep ... --csv FILE writes them all).")
+    if kind == "optimize" and "confirm" in _groups(src):
+        try:
+            conf = read_point(src, "confirm")
+            _report_run(src, out, fmt, dpi, doc, written, skipped, diffusion, k, prefix="confirm_", res=conf, title=False)
+        except InputError as e:
+            skipped["confirm"] = e.expected
+    if skipped:
+        doc.h(3, "Skipped figures")
+        doc.items([f"{n}: {r}" for n, r in skipped.items()])
+    doc.h(2, "Provenance")
+    doc.table(["attribute", "value"], _provenance_rows(meta, ("package_version", "format_version", "kind", "source",
+                                                              "spec_hash", "consolidated", "finished")))
+    text = meta.get("sweep_text") or meta.get("optimize_text")
+    if text:
+        doc.h(2, "Sweep file" if kind == "sweep" else "Optimisation file")
+        doc.pre(str(text))
+
+
+def _groups(path) -> list:
+    import h5py
+
+    with h5py.File(path, "r") as f:
+        return list(f)
+
+
+# ---------------------------------------------------------------------------
+# command line
+# ---------------------------------------------------------------------------
+def add_report_parser(subparsers):
+    """Add ``mdrotor report`` to an argparse subparsers object."""
+    p = subparsers.add_parser("report", help="figures and a one-page summary of a result, sweep or optimisation file",
+                              description="Figures (schedule, L histograms with the allowed-L ladder, time series, "
+                                          "phonons, rotational lines, coherence; for sweeps metric maps, for "
+                                          f"optimisations the history) and a summary page. Needs matplotlib: {PLOT_EXTRA}.")
+    p.add_argument("source", help="result, sweep or optimisation file (.h5)")
+    p.add_argument("-o", "--output", default=None, metavar="DIR",
+                   help="folder for the figures and the summary (default: <file stem>_report in the current folder)")
+    p.add_argument("--format", default="png", choices=FORMATS, help="figure format (default png)")
+    p.add_argument("--summary", default="md", choices=SUMMARY_FORMATS, help="summary page as Markdown or HTML (default md)")
+    p.add_argument("--diffusion", default=None, metavar="D",
+                   help="angular-momentum diffusion constant in hbar^2/s for the coherence figure "
+                        "(default: fitted from the run's noise, else analytic)")
+    p.add_argument("--k", type=int, default=None, help="branch separation in quanta (default: the allowed-L spacing)")
+    p.add_argument("--metrics", default=None, metavar="M1,M2",
+                   help="sweep metrics to draw (default: the final-stage outcome metrics; 'all' for every column)")
+    p.add_argument("--axes", default=None, metavar="KEY1,KEY2",
+                   help="the two sweep axes of the heat maps (default: the first two)")
+    p.add_argument("--slice", dest="slices", action="append", default=[], metavar="KEY=VALUE",
+                   help="fix a further sweep axis at a value as written in the sweep file, or at #index (repeatable)")
+    p.add_argument("--dpi", type=int, default=150, help="resolution of PNG figures (default 150)")
+    p.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+    return p
+
+
+def cli_report(args) -> int:
+    """``mdrotor report``: write the figures and the summary, print what was written and skipped."""
+    D = None
+    if args.diffusion is not None:
+        try:
+            D = float(args.diffusion)
+        except ValueError:
+            raise InputError("--diffusion", f"expected a number in hbar^2/s, got {args.diffusion!r}", "command line") from None
+        if not (np.isfinite(D) and D >= 0):
+            raise InputError("--diffusion", "expected a non-negative diffusion constant in hbar^2/s", "command line")
+    if args.k is not None and args.k < 1:
+        raise InputError("--k", "expected a positive number of quanta", "command line")
+    if not 10 <= args.dpi <= 2400:
+        raise InputError("--dpi", "expected a resolution between 10 and 2400", "command line")
+    fixed = {}
+    for s in args.slices:
+        if "=" not in s:
+            raise InputError("--slice", f"expected KEY=VALUE (e.g. initial.temperature='1 mK' or KEY=#0), got {s!r}",
+                             "command line")
+        key, val = s.split("=", 1)
+        fixed[key.strip()] = val.strip().strip("'\"")
+    rep = write_report(args.source, args.output, args.format, summary=args.summary, diffusion_hbar2_per_s=D, k=args.k,
+                       metrics=args.metrics, axes=args.axes, fixed=fixed, dpi=args.dpi)
+    if args.json:
+        print(json.dumps(rep))
+        return 0
+    print(f"report of {args.source} ({rep['kind']}) in {rep['output_dir']}/")
+    for p in rep["figures"]:
+        print(f"  wrote {p}")
+    for n, r in rep["skipped"].items():
+        print(f"  skipped {n}: {r}")
+    print(f"  summary {rep['summary']}")
+    return 0
+
+
+def main(argv=None) -> int:
+    """``python -m mdrotor.report FILE.h5 ...``: the command outside the main CLI."""
+    from .sweep import standalone
+
+    return standalone(add_report_parser, cli_report, "report", argv)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
