@@ -108,7 +108,6 @@ class Plan:
             return np.full(len(indices), step * (round(float(fixed) / step) % RF_STEPS_PER_PERIOD))
         return np.array([step * trajectory_rng(seed, int(i), 2).integers(RF_STEPS_PER_PERIOD) for i in indices])
 
-
     @property
     def n_steps(self) -> int:
         return int(sum(self.stage_steps))
@@ -181,8 +180,9 @@ def make_plan(cfg) -> Plan:
             plan.lag_threshold = 0.1 * float(np.max(np.abs(sched.pinning_scale(grid, best))))
         else:
             margin = pinning_margin(cr, cr.potential.multipoles)
-            plan.notes.append("no pinning term has a moment on this crystal: it is not pinned; "
-                              f"moments {margin['moments']}")
+            plan.notes.append("no pinning term has a moment on this crystal, so it is not pinned (a regular N-gon "
+                              "of identical ions feels only orders that are multiples of N); moments "
+                              + ", ".join(f"|M_{o}| = {v:.3g} C m^{o}" for o, v in margin["moments"].items()))
     # time step from the fastest frequency in the problem
     f_sec = float(np.sqrt(np.max(cfg.trap.omega_sq(m, q)))) / TWO_PI
     f_modes = float(np.max(cr.modes.freq_hz)) + abs(f0) if len(cr.modes.omega) else 0.0

@@ -94,6 +94,7 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         "moment_of_inertia_kg_m2": plan.crystal0.moment_of_inertia_kg_m2,
         "lag_order": plan.lag_n,
         "status_bits": "1 slipped, 2 lost ion, 4 reordered, 8 non-finite",
+        "notes": "; ".join(plan.notes),
     }
     grid = np.linspace(0.0, sched.duration_s, 1001)
     schedule = {"t_s": grid, "f_rot_hz": sched.f_rot_hz(grid), "theta_rad": sched.theta_rad(grid),
@@ -259,6 +260,8 @@ def cli_run(args) -> int:
     show = not args.quiet and sys.stderr.isatty()
     t0 = time.perf_counter()
     res = run(cfg, trajectories=args.trajectories, seed=args.seed, threads=args.threads, progress=show)
+    if res.attrs.get("notes"):
+        print(f"mdrotor: warning: {res.attrs['notes']}", file=sys.stderr)
     res.save(out)
     if args.json:
         d = summary_dict(res)

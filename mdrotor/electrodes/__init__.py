@@ -1,8 +1,10 @@
 """Surface-electrode designs for pinning a rotating ion crystal.
 
 Gapless-plane electrostatics of rectangle and polygon electrodes, layout
-files, the RF pseudopotential, multipole expansions at the trap point and
-voltage solves for static targets and rotating in-plane multipoles.
+files, the RF pseudopotential, multipole expansions at the trap point,
+voltage solves for static targets and rotating in-plane multipoles, the
+design check of a layout against a run's crystal in the full electrode
+field, and the export of the voltages over a run's schedule.
 
 Modules
 -------
@@ -12,6 +14,10 @@ layout      Electrode, Layout, TOML files and their validation
 pseudo      RF pseudopotential: null, secular frequencies, q, depth
 multipoles  real solid-harmonic fit, in-plane coefficients k_n
 solve       voltages for static targets and rotating order-n pinning
+dynamics    a layout's voltage plan as a polynomial potential for the run
+check       design check: crystal, pinning, libration, slip margin in the full field
+waveform    electrode voltages versus time over a schedule (CSV, HDF5)
+command     the ``mdrotor electrodes`` command
 
 Typical use::
 
@@ -22,28 +28,45 @@ Typical use::
     plan = solve_rotating(lay, 3, 2e10, table=table)  # c_3 in V/m^3
     plan.voltages_at(theta_rad)                    # V per channel
 
-Voltages must stay within the trap's rated limits and the lab's safety
-rules (see :data:`CAUTION`).
+    from mdrotor.config import load_config
+    from mdrotor.electrodes import design_check, check_text
+    print(check_text(design_check(lay, load_config("configs/electrodes/ring8_triangle3_run.toml"))))
+
+The names are loaded on first use (PEP 562), so that importing the command
+line does not import scipy. Voltages must stay within the trap's rated
+limits and the lab's safety rules (see :data:`CAUTION`).
 """
 
-from .layout import (Electrode, Layout, annulus, disc, load_layout, parse_layout, polygon, rectangle,
-                     ring_segments, sector)
-from .multipoles import (MultipoleTable, field_terms, fit_multipoles, fit_potential, harmonic_terms,
-                         hessian_terms, inplane_terms, pinning_orders, solid_harmonics, sphere_rule)
-from .pseudo import NullResult, PseudoTrap, find_rf_null, pseudo_energy_j, rf_pseudopotential
-from .solve import CAUTION, RotatingPlan, StaticSolution, solve_rotating, solve_static
+from importlib import import_module
+
+_WHERE = {
+    "layout": ("Electrode", "Layout", "load_layout", "parse_layout", "rectangle", "polygon", "sector", "annulus",
+               "disc", "ring_segments"),
+    "multipoles": ("MultipoleTable", "fit_multipoles", "fit_potential", "harmonic_terms", "solid_harmonics",
+                   "sphere_rule", "field_terms", "hessian_terms", "inplane_terms", "pinning_orders"),
+    "pseudo": ("NullResult", "PseudoTrap", "find_rf_null", "pseudo_energy_j", "rf_pseudopotential"),
+    "solve": ("CAUTION", "StaticSolution", "RotatingPlan", "solve_static", "solve_rotating"),
+    "check": ("design_check", "check_text", "prepare_design", "rigid_scan", "RFPseudoTerm", "ElectrodeTerm"),
+    "waveform": ("write_waveform", "waveform_voltages"),
+}
+_NAME_TO_MODULE = {name: mod for mod, names in _WHERE.items() for name in names}
+
+__all__ = [*_NAME_TO_MODULE, "electrode_basis"]
 
 
-def electrode_basis(layout: Layout, points_m):
+def __getattr__(name):
+    mod = _NAME_TO_MODULE.get(name)
+    if mod is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    value = getattr(import_module(f".{mod}", __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(__all__))
+
+
+def electrode_basis(layout, points_m):
     """Potential per volt of each electrode at points (P, 3) m: shape (P, n_electrodes)."""
     return layout.electrode_basis(points_m)
-
-
-__all__ = [
-    "Electrode", "Layout", "load_layout", "parse_layout", "rectangle", "polygon", "sector", "annulus", "disc",
-    "ring_segments", "electrode_basis",
-    "MultipoleTable", "fit_multipoles", "fit_potential", "harmonic_terms", "solid_harmonics", "sphere_rule",
-    "field_terms", "hessian_terms", "inplane_terms", "pinning_orders",
-    "NullResult", "PseudoTrap", "find_rf_null", "pseudo_energy_j", "rf_pseudopotential",
-    "CAUTION", "StaticSolution", "RotatingPlan", "solve_static", "solve_rotating",
-]
