@@ -59,11 +59,13 @@ def build_parser() -> argparse.ArgumentParser:
     from .optimize import add_optimize_parser
     from .sweep import add_sweep_parser
 
+    from .electrodes.command import add_electrodes_parser
     from .report import add_report_parser
 
     add_sweep_parser(sub)  # each adds its own --set, --json, --quiet
     add_optimize_parser(sub)
     add_report_parser(sub)
+    add_electrodes_parser(sub)
     return ap
 
 
@@ -89,6 +91,10 @@ def main(argv=None) -> int:
             from .optimize import cli_optimize
 
             return cli_optimize(args)
+        if args.command == "electrodes":
+            from .electrodes.command import cli_electrodes
+
+            return cli_electrodes(args)
         if args.command == "report":
             from .report import cli_report
 
