@@ -33,7 +33,8 @@ KB = sc.k
 K_COULOMB = 1.0 / (4.0 * np.pi * sc.epsilon_0)
 BLOCK_STEPS = 2048
 # the kernel's "no noise" arrays (fixed ndim so that one compiled kernel serves both)
-NO_NOISE = (np.zeros((0, 3, 0)), np.zeros(0, dtype=np.int64), np.zeros((0, 0, 0)), np.zeros((0, 0, 0)))
+NO_NOISE = (np.zeros((0, 3, 0)), np.zeros(0, dtype=np.int64), np.zeros((0, 0, 0)), np.zeros((0, 0, 0)),
+            np.zeros(3), np.zeros((0, 2)), np.zeros(1, dtype=np.uint64), 0)
 NO_POLY = (np.zeros((0, 3), dtype=np.int64), np.zeros((1, 0)))
 RF_STEPS_PER_PERIOD = 64
 
@@ -446,6 +447,10 @@ class _Stepper:
     def __init__(self, plan: Plan, n_traj: int, chunk: int, rf_phases, noise_state=None):
         self.plan = plan
         self.noise_state = noise_state
+        # each trajectory's key for the white kicks drawn in the kernel (stream 3)
+        self.white_keys = (np.array([np.random.SeedSequence(noise_state.seed, spawn_key=(int(i), 3)).generate_state(1, np.uint64)[0]
+                                     for i in noise_state.indices], dtype=np.uint64)
+                           if noise_state is not None else NO_NOISE[6])
         self.chunk = chunk
         self.lag_u = np.zeros((2, n_traj))
         # a lag update every spp/4 steps: the pinning turns by at most 2 pi / 4 per order n in between
@@ -480,13 +485,22 @@ class _Stepper:
         lag = (plan.masses, plan.charges, plan.lag_n, sched.theta_rad(ts), track, self.lag_stride,
                self.lag_u if lag_u is None else lag_u)
         noise = NO_NOISE
-        if plan.noise is not None and noise_step0 is not None and plan.noise.active(sched.stages[stage].name):
-            blk = plan.noise.generate(self.noise_state, t_start_s=sched.boundaries_s[stage], dt_s=dt, step0=noise_step0,
-                                      n_steps=n, stage=sched.stages[stage].name)
-            noise = (blk.field_v_per_m if blk.field_v_per_m is not None else NO_NOISE[0],
-                     blk.orders if blk.g_re is not None else NO_NOISE[1],
-                     blk.g_re if blk.g_re is not None else NO_NOISE[2],
-                     blk.g_im if blk.g_im is not None else NO_NOISE[3])
+        model = plan.noise
+        if model is not None and noise_step0 is not None and model.active(sched.stages[stage].name):
+            name = sched.stages[stage].name
+            field, orders, g_re, g_im = NO_NOISE[:4]
+            if model.has_colored:  # Ornstein-Uhlenbeck parts and tones, from each trajectory's generator
+                blk = model.generate(self.noise_state, t_start_s=sched.boundaries_s[stage], dt_s=dt, step0=noise_step0,
+                                     n_steps=n, stage=name, white=False)
+                if blk.field_v_per_m is not None:
+                    field = blk.field_v_per_m
+                if blk.g_re is not None:
+                    g_re, g_im = blk.g_re, blk.g_im
+            if model.has_multipole:
+                orders = np.asarray(model.orders, dtype=np.int64)
+            w_field, w_g = model.white_sd(dt, name)
+            step = int(sum(plan.stage_steps[:stage])) + int(noise_step0)
+            noise = (field, orders, g_re, g_im, w_field, w_g, self.white_keys, step)
         poly = _poly_coefficients(plan, np.zeros_like(te) if frozen else te)
         advance(pos, vel, dt, n, plan.fracs, plan.kernel_model(), drive, (plan.pin_orders, c_re, c_im), poly, lag, noise,
                 self.chunk)

@@ -235,23 +235,77 @@ def _poly_accel(px, py, pz, ax, ay, az, qm, exps, coef, xp, yp, zp):
                     az[i, b] -= f * xp[a, b] * yp[bb, b] * zp[c - 1, b]
 
 
+SQRT3 = math.sqrt(3.0)
+
+
 @njit(cache=True)
-def _noise_field_accel(qm, b0, s, n_field, ex, ey, ez):
-    """(Q/m) E(s): the uniform noise field's acceleration for step s."""
+def _uniform(key, counter):
+    """A uniform number in [0, 1) from the 64-bit key and counter: the
+    SplitMix64 output function (G.L. Steele, D. Lea, C.H. Flood, OOPSLA 2014)
+    applied to key + counter x golden ratio. A pure function of (key,
+    counter): no generator state, so chunks and threads cannot change it."""
+    z = key + counter * np.uint64(0x9E3779B97F4A7C15)
+    z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+    z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+    z = z ^ (z >> np.uint64(31))
+    return float(z >> np.uint64(11)) * (1.0 / 9007199254740992.0)
+
+
+@njit(cache=True)
+def _noise_step(b0, s, step, n_field, n_gre, n_gim, w_field, w_g, keys, fe, ge):
+    """The noise values of step s for the chunk's trajectories: the
+    pre-generated coloured parts and tones (:mod:`mdrotor.noise`) plus the
+    white parts, drawn here as uniform kicks of the white variance
+    S_w / (2 dt) (any distribution with that variance gives the same white
+    spectrum; uniform kicks in place of Gaussian ones: B. Duenweg and W.
+    Paul, Int. J. Mod. Phys. C 2, 817 (1991)). fe (3, B), ge (K, 2, B)."""
+    nb = fe.shape[1]
+    counter = np.uint64(step * 16)
+    for u in range(3):
+        if n_field.shape[0] > 0:
+            for b in range(nb):
+                fe[u, b] = n_field[s, u, b0 + b]
+        else:
+            for b in range(nb):
+                fe[u, b] = 0.0
+        w = w_field[u] * SQRT3
+        if w != 0.0:
+            c = counter + np.uint64(u)
+            for b in range(nb):
+                fe[u, b] += w * (2.0 * _uniform(keys[b0 + b], c) - 1.0)
+    for p in range(ge.shape[0]):
+        for part in range(2):
+            if n_gre.shape[0] > 0:
+                src = n_gre if part == 0 else n_gim
+                for b in range(nb):
+                    ge[p, part, b] = src[s, p, b0 + b]
+            else:
+                for b in range(nb):
+                    ge[p, part, b] = 0.0
+            w = w_g[p, part] * SQRT3
+            if w != 0.0:
+                c = counter + np.uint64(3 + 2 * p + part)
+                for b in range(nb):
+                    ge[p, part, b] += w * (2.0 * _uniform(keys[b0 + b], c) - 1.0)
+
+
+@njit(cache=True)
+def _noise_field_accel(qm, fe, ex, ey, ez):
+    """(Q/m) E(s): the uniform noise field's acceleration for the step."""
     n_ions, nb = ex.shape
     for i in range(n_ions):
         f = qm[i]
         for b in range(nb):
-            ex[i, b] = f * n_field[s, 0, b0 + b]
-            ey[i, b] = f * n_field[s, 1, b0 + b]
-            ez[i, b] = f * n_field[s, 2, b0 + b]
+            ex[i, b] = f * fe[0, b]
+            ey[i, b] = f * fe[1, b]
+            ez[i, b] = f * fe[2, b]
 
 
 @njit(cache=True)
-def _noise_accel(px, py, qm, b0, s, n_orders, n_gre, n_gim, ex, ey, ez, nx, ny, nz, zr, zi):
-    """Noise accelerations (nx, ny, nz) at the current positions for step s:
-    the uniform field's (ex, ey, ez), plus -(Q/m) grad Re[g_n(s) z^n] for each
-    multipole order (the pinning formula with C = g_n, :mod:`mdrotor.multipole`)."""
+def _noise_accel(px, py, qm, n_orders, ge, ex, ey, ez, nx, ny, nz, zr, zi):
+    """Noise accelerations (nx, ny, nz) at the current positions: the uniform
+    field's (ex, ey, ez), plus -(Q/m) grad Re[g_n z^n] for each multipole
+    order (the pinning formula with C = g_n, :mod:`mdrotor.multipole`)."""
     n_ions, nb = px.shape
     for i in range(n_ions):
         for b in range(nb):
@@ -273,8 +327,8 @@ def _noise_accel(px, py, qm, b0, s, n_orders, n_gre, n_gim, ex, ey, ez, nx, ny, 
                     zi[b] = zr[b] * y + zi[b] * x
                     zr[b] = t
             for b in range(nb):
-                cr = n_gre[s, p, b0 + b]
-                ci = n_gim[s, p, b0 + b]
+                cr = ge[p, 0, b]
+                ci = ge[p, 1, b]
                 nx[i, b] -= f * (cr * zr[b] - ci * zi[b])
                 ny[i, b] += f * (cr * zi[b] + ci * zr[b])
 
@@ -316,11 +370,15 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, c
         (1 while the pinning is strong enough to define a lag) at the step
         ends; lag_stride: steps between updates; lag_u : (2, T) [unwrapped
         phase arg(M_n) - n theta, last raw phase], updated in place.
-    noise : tuple (n_field, n_orders, n_gre, n_gim)
-        Noise samples held constant over each step (:mod:`mdrotor.noise`):
-        uniform field (n_steps, 3, T) in V/m (or shape (0, 3, 0) for none),
-        multipole orders (K,) and their coefficients g_re, g_im (n_steps,
-        K, T) in V/m^n. They act in every half-kick of the step, at the
+    noise : tuple (n_field, n_orders, n_gre, n_gim, w_field, w_g, keys, step0)
+        Noise values held constant over each step (:mod:`mdrotor.noise`):
+        the coloured parts and tones pre-generated, uniform field
+        (n_steps, 3, T) in V/m (or shape (0, 3, 0) for none), multipole
+        orders (K,) and their g_re, g_im (n_steps, K, T) in V/m^n (or (0,
+        0, 0)); the white parts drawn here (see _noise_step): per-step
+        standard deviations w_field (3,) and w_g (K, 2), each trajectory's
+        64-bit key (T,), and the global index of the block's first step
+        (the counter). They act in every half-kick of the step, at the
         positions of that half-kick, and are kept out of the stored
         deterministic acceleration.
     chunk : int, trajectories per parallel work item. Each chunk is copied
@@ -336,7 +394,8 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, c
     for j in range(poly_exps.shape[0]):
         poly_deg = max(poly_deg, poly_exps[j, 0], poly_exps[j, 1], poly_exps[j, 2])
     masses, charges, lag_n, lag_theta, lag_track, lag_stride, lag_u = lag
-    n_field, n_orders, n_gre, n_gim = noise
+    n_field, n_orders, n_gre, n_gim, w_field, w_g, keys, step0 = noise
+    has_white_field = w_field[0] != 0.0 or w_field[1] != 0.0 or w_field[2] != 0.0
     use_rf = False
     for i in range(rf2.shape[0]):
         for u in range(3):
@@ -383,8 +442,10 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, c
         ex = np.zeros((n_ions, nb))
         ey = np.zeros((n_ions, nb))
         ez = np.zeros((n_ions, nb))
-        has_field = n_field.shape[0] > 0
+        has_field = n_field.shape[0] > 0 or has_white_field
         has_multipole = n_orders.shape[0] > 0
+        fe = np.zeros((3, nb))
+        ge = np.zeros((n_orders.shape[0], 2, nb))
         if use_rf:
             _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, 0)
         _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[0], c_im[0],
@@ -392,13 +453,15 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, c
         if use_poly:
             _poly_accel(px, py, pz, ax, ay, az, qm, poly_exps, poly_coef[0], xp, yp, zp)
         for s in range(n_steps):
+            if has_field or has_multipole:
+                _noise_step(b0, s, step0 + s, n_field, n_gre, n_gim, w_field, w_g, keys, fe, ge)
             if has_field:
-                _noise_field_accel(qm, b0, s, n_field, ex, ey, ez)
+                _noise_field_accel(qm, fe, ex, ey, ez)
             for k in range(n_sub):
                 h = fracs[k] * dt
                 _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
                 if has_multipole:
-                    _noise_accel(px, py, qm, b0, s, n_orders, n_gre, n_gim, ex, ey, ez, nx, ny, nz, zr, zi)
+                    _noise_accel(px, py, qm, n_orders, ge, ex, ey, ez, nx, ny, nz, zr, zi)
                     _kick(vx, vy, vz, nx, ny, nz, 0.5 * h)
                 elif has_field:
                     _kick(vx, vy, vz, ex, ey, ez, 0.5 * h)
@@ -412,7 +475,7 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, c
                     _poly_accel(px, py, pz, ax, ay, az, qm, poly_exps, poly_coef[e], xp, yp, zp)
                 _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
                 if has_multipole:
-                    _noise_accel(px, py, qm, b0, s, n_orders, n_gre, n_gim, ex, ey, ez, nx, ny, nz, zr, zi)
+                    _noise_accel(px, py, qm, n_orders, ge, ex, ey, ez, nx, ny, nz, zr, zi)
                     _kick(vx, vy, vz, nx, ny, nz, 0.5 * h)
                 elif has_field:
                     _kick(vx, vy, vz, ex, ey, ez, 0.5 * h)

@@ -64,7 +64,10 @@ a sum of independent pieces:
 * white level ``S_w``: the step average of white noise is Gaussian with
   variance ``S_w / (2 dt)``, independent between steps (a discrete white
   kick, momentum ``Q E_k dt``; this reproduces the heating rate of
-  Turchette et al., below);
+  Turchette et al., below). In runs the engine draws this part inside the
+  kernel instead (``generate(..., white=False)`` plus
+  :meth:`NoiseModel.white_sd`): uniform kicks of the same variance from a
+  counter-based hash, see :func:`mdrotor.kernels._noise_step`;
 * Ornstein-Uhlenbeck (OU) modes, real (``dx = -gamma x dt + noise``, one-sided
   PSD ``(4 sigma^2 / gamma) / (1 + (2 pi f / gamma)^2)``) or rotating complex
   (``dz = -(gamma - i Omega) z dt + noise``, ``x = Re z``, PSD
@@ -712,6 +715,28 @@ class NoiseModel:
     def n_normals_per_step(self) -> int:
         return sum(s.n_normals for s in self.sources)
 
+    @property
+    def has_colored(self) -> bool:
+        """Any Ornstein-Uhlenbeck (Lorentzian or power-law) part or tone."""
+        return any(len(s.spectrum.variance) for s in self.sources) or bool(self.tones)
+
+    def white_sd(self, dt_s: float, stage: str | None = None):
+        """Per-step standard deviations of the white parts, sqrt(scale S_w / (2 dt)):
+        ``(field (3,) V/m, multipole (K, 2) V/m^n for g_re, g_im of each order)``.
+        The engine draws these kicks inside the kernel (:mod:`mdrotor.kernels`)."""
+        field = np.zeros(3)
+        mult = np.zeros((len(self.orders), 2))
+        for src in self.sources:
+            w = src.spectrum.white_level * src.scale(stage)
+            if w <= 0:
+                continue
+            sd = math.sqrt(w / (2.0 * dt_s))
+            if src.target == "field":
+                field[src.channel] = math.hypot(field[src.channel], sd)
+            else:
+                mult[src.channel, src.part] = math.hypot(mult[src.channel, src.part], sd)
+        return field, mult
+
     def active(self, stage: str | None) -> bool:
         """True if any noise or tone is on during ``stage``.
 
@@ -836,7 +861,7 @@ class NoiseModel:
         return NoiseState(int(seed), idx, rngs, z_real, zi_real, z_rot, zi_rot)
 
     def generate(self, state: NoiseState, *, t_start_s: float, dt_s: float, step0: int, n_steps: int,
-                 stage: str | None = None) -> NoiseBlock:
+                 stage: str | None = None, white: bool = True) -> NoiseBlock:
         """Noise samples for the next ``n_steps`` steps of every trajectory of ``state``.
 
         Parameters
@@ -868,7 +893,7 @@ class NoiseModel:
         if coeffs is None:
             coeffs = [_coefficients(s, dt_s) for s in self.sources]
             state.cache = {dt_s: coeffs}
-        n_norm = self.n_normals_per_step
+        n_norm = self.n_normals_per_step - (0 if white else sum(1 for s in self.sources if s.spectrum.white_level > 0))
         if n_steps > 0 and n_norm > 0:
             tc = max(1, min(T, DRAW_BUDGET_BYTES // (8 * n_steps * n_norm)))
             for c0 in range(0, T, tc):
@@ -878,7 +903,7 @@ class NoiseModel:
                     state.rngs[b].standard_normal(out=draws[b - c0])
                 col = 0
                 for si, (src, cf) in enumerate(zip(self.sources, coeffs)):
-                    y, col = _run_source(src, cf, state, si, draws, col, c0, c1, new_dt)
+                    y, col = _run_source(src, cf, state, si, draws, col, c0, c1, new_dt, white)
                     a = math.sqrt(src.scale(stage))
                     if a != 1.0:
                         y *= a
@@ -904,13 +929,14 @@ class NoiseModel:
                           float(t_start_s), float(dt_s), int(step0), int(n_steps))
 
 
-def _run_source(src, cf, state, si, draws, col, c0, c1, new_dt):
-    """Samples (Tc, n_steps) of one source for trajectories c0:c1; advances its state."""
+def _run_source(src, cf, state, si, draws, col, c0, c1, new_dt, white=True):
+    """Samples (Tc, n_steps) of one source for trajectories c0:c1; advances its state.
+    ``white=False`` leaves the white part out (the engine draws it in the kernel)."""
     from scipy.signal import lfilter
 
     tc, n = draws.shape[0], draws.shape[1]
     y = np.zeros((tc, n))
-    if src.spectrum.white_level > 0:
+    if white and src.spectrum.white_level > 0:
         y += cf.white_sd * draws[:, :, col]
         col += 1
     zr, zir = state.z_real[si], state.zi_real[si]

@@ -1,0 +1,750 @@
+#!/usr/bin/env python3
+"""Performance figures of the mdrotor stepper (DESIGN.md section 8).
+
+What is measured, all in one run:
+
+1. Trajectory-steps per second per core of :func:`mdrotor.kernels.advance`
+   (pseudopotential trap, rotating multipole pinning on, velocity Verlet,
+   one thread) for N = 2, 4 and 8 ions, with and without lag tracking, and
+   the cost per ion pair and step for N >= 4.
+2. The same on two threads, and the speed-up from one to two threads.
+3. Two baselines on the same physics:
+   (a) a straightforward numpy velocity-Verlet integrator vectorised over
+       trajectories (checked against the kernel on a short run first);
+   (b) scipy.integrate.solve_ivp (DOP853) on one trajectory at a time, at
+       the tolerance that makes its error after 20 us about equal to the
+       kernel's Verlet error at the default dt (both errors are measured
+       against an order-4 kernel run with dt/8).
+4. Peak memory of a whole run with 1e4 trajectories (subprocesses, so that
+   ru_maxrss belongs to one run): it must not grow with the step count.
+5. Whole-engine steps (schedule sampling, noise synthesis and kernel, as a
+   run does them) for N = 2 with noise off and on (white field, white field
+   plus quadrupole, 1/f), and for N = 2 and 4 with the full RF force.
+6. The targets: met or missed, with the ratio.
+
+Usage::
+
+    python scripts/bench.py                # full run, Markdown table on stdout
+    python scripts/bench.py --quick        # smoke run (well under a minute)
+    python scripts/bench.py --json --out bench.json
+
+With ``--json`` stdout carries one JSON object and the table goes to
+stderr. Times are best-of-repeats wall-clock times. Other processes slow
+the measurements down (and can bias the ratios either way): the kernel table
+shows how much CPU they used during the best repeats, from /proc/stat.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import platform
+import resource
+import subprocess
+import sys
+import time
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+# idle OpenMP workers sleep instead of spinning: a one-thread measurement then
+# really uses one core (set before numba starts its thread pool)
+os.environ.setdefault("OMP_WAIT_POLICY", "passive")
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+import numba  # noqa: E402
+
+import mdrotor  # noqa: E402
+from mdrotor import engine, kernels  # noqa: E402
+
+TWO_PI = 2.0 * np.pi
+
+# Targets
+TARGET_RATE_N2 = 1e8          # trajectory-steps / s / core, N = 2, rotating pinning
+TARGET_NS_PER_PAIR = 8.0      # ns per ion pair per step, N >= 4
+TARGET_OVER_NUMPY = 8.0       # kernel (1 thread) / numpy baseline
+TARGET_OVER_IVP = 1000.0      # kernel (1 thread) / solve_ivp steps-equivalent
+TARGET_SPEEDUP_2T = 1.8       # 2 threads / 1 thread
+TARGET_NOISE_COST = 2.0       # step time with noise / without, N = 2
+
+
+def log(msg: str) -> None:
+    print(msg, file=sys.stderr, flush=True)
+
+
+def machine_busy_s() -> float:
+    """CPU seconds used so far by everything on the machine (/proc/stat;
+    NaN where unavailable). With time.process_time it tells how much of a
+    measurement other processes were running: a flag for contended figures."""
+    try:
+        with open("/proc/stat") as fh:
+            f = [int(x) for x in fh.readline().split()[1:]]
+    except (OSError, ValueError):
+        return math.nan
+    idle = f[3] + f[4]  # idle + iowait
+    return (sum(f[:8]) - idle) / os.sysconf("SC_CLK_TCK")
+
+
+# ---------------------------------------------------------------------------
+# The three test problems
+# ---------------------------------------------------------------------------
+def ring8_dict() -> dict:
+    """Eight 40Ca+ ions in a planar 1 + 7 crystal (one ion on the axis, a
+    7-ion ring), pinned by a rotating order-7 multipole: a regular 7-gon has
+    no in-plane moment below order 7. Libration about 200 kHz at rest."""
+    return {
+        "species": {"ion": "40Ca+"},
+        "crystal": {"ions": 8},
+        "trap": {"model": "pseudo", "f_radial": "1.0 MHz", "f_axial": "3.0 MHz"},
+        "pinning": {"order": 7, "strength": "1e30 V/m^7"},
+        "stage": [
+            {"name": "spin-up", "duration": "1 ms", "f_rot": {"to": "50 kHz", "shape": "smoothstep"}},
+            {"name": "release", "duration": "0.5 ms", "pinning": {"to": 0.0, "shape": "cosine"}},
+        ],
+        "initial": {"temperature": "0.5 mK"},
+        "run": {"seed": 8},
+    }
+
+
+def problem_dicts() -> list[tuple[str, dict]]:
+    """(label, raw config dict) for N = 2, 4, 8."""
+    out = []
+    for name in ("demo.toml", "square_order4.toml"):
+        with open(ROOT / "configs" / name, "rb") as fh:
+            out.append((f"configs/{name}", tomllib.load(fh)))
+    out.append(("8-ion ring (dict)", ring8_dict()))
+    return out
+
+
+def steady_dict(raw: dict, duration_s: float, dt_s: float | None = None) -> dict:
+    """The same crystal rotating steadily at the end-of-spin-up frequency,
+    pinned at full strength, for one 'hold' stage of ``duration_s``."""
+    cfg = mdrotor.load_config(raw)
+    f_end_hz = float(cfg.schedule.f_rot_hz(cfg.schedule.boundaries_s[1]))
+    new = {k: v for k, v in raw.items() if k != "stage"}
+    new["rotation"] = {"f_start": f"{f_end_hz!r} Hz"}
+    new["stage"] = [{"name": "hold", "duration": f"{duration_s!r} s"}]
+    if dt_s is not None:
+        new["run"] = dict(raw.get("run", {}), dt=f"{dt_s!r} s")
+    return new
+
+
+# ---------------------------------------------------------------------------
+# Calling the compiled stepper (the same arrays engine.integrate passes)
+# ---------------------------------------------------------------------------
+def force_times(t0: float, dt: float, n_steps: int, fracs: np.ndarray) -> np.ndarray:
+    """Force-evaluation times of a block: its start, then the end of every
+    sub-step (the layout kernels.advance expects for c_re, c_im)."""
+    ts = t0 + dt * np.arange(n_steps + 1)
+    sub = np.cumsum(fracs)
+    return np.concatenate([[ts[0]], (ts[:-1, None] + dt * sub[None, :]).ravel()])
+
+
+@dataclass
+class Block:
+    """Everything kernels.advance needs for one block of steps."""
+
+    plan: object
+    dt: float
+    n_steps: int
+    fracs: np.ndarray
+    c_re: np.ndarray
+    c_im: np.ndarray
+    lag_n: int
+    lag_theta: np.ndarray
+    lag_track: np.ndarray
+    lag_stride: int
+
+
+def make_block(plan, t0: float, dt: float, n_steps: int, fracs=None, lag: bool = False) -> Block:
+    fracs = plan.fracs if fracs is None else fracs
+    c_re, c_im = engine._pin_coefficients(plan, force_times(t0, dt, n_steps, fracs))
+    ts = t0 + dt * np.arange(n_steps + 1)
+    if lag and plan.lag_n > 0:
+        track = (np.abs(plan.schedule.pinning_scale(ts, plan.lag_term)) >= plan.lag_threshold).astype(np.uint8)
+        lag_n = plan.lag_n
+    else:
+        track = np.zeros(n_steps + 1, dtype=np.uint8)
+        lag_n = 0
+    # engine.integrate: one lag update per quarter of the fastest period
+    stride = max(1, plan.cfg.run.steps_per_period // 4)
+    return Block(plan, dt, n_steps, fracs, c_re, c_im, lag_n, plan.schedule.theta_rad(ts), track, stride)
+
+
+def initial_lag(plan, pos: np.ndarray) -> np.ndarray:
+    """Start values of the unwrapped lag phase, as engine.integrate sets them."""
+    lag_u = np.zeros((2, pos.shape[2]))
+    if plan.lag_n > 0:
+        raw = kernels.lag_phases(pos, plan.masses, plan.charges, plan.lag_n)
+        lag_u[0] = plan.lag_u_ref + (raw - plan.lag_u_ref + np.pi) % TWO_PI - np.pi
+        lag_u[1] = raw
+    return lag_u
+
+
+# noise off: empty field and multipole-noise arrays (shapes from kernels.advance)
+NO_NOISE = engine.NO_NOISE
+NO_POLY_EXPS = np.zeros((0, 3), dtype=np.int64)   # no electrode-layout (polynomial) pinning
+
+
+def advance(blk: Block, pos, vel, lag_u, chunk: int) -> None:
+    """kernels.advance on one block, noise off, pinning by pure multipoles
+    (pseudopotential: the RF drive arrays are placeholders the kernel ignores
+    as the RF spring terms are zero)."""
+    p = blk.plan
+    if p.rf or not np.all(p.pin_is_multipole == 1.0):
+        raise RuntimeError("this benchmark covers the pseudopotential model with multipole pinning only")
+    n_traj = pos.shape[2]
+    n_evals = blk.c_re.shape[0]
+    drive = (np.zeros(n_evals), np.zeros(n_evals), np.ones(n_traj), np.zeros(n_traj))
+    pin = (p.pin_orders, blk.c_re, blk.c_im)
+    poly = (NO_POLY_EXPS, np.zeros((n_evals, 0)))
+    lag = (p.masses, p.charges, blk.lag_n, blk.lag_theta, blk.lag_track, blk.lag_stride, lag_u)
+    kernels.advance(pos, vel, blk.dt, blk.n_steps, blk.fracs, p.kernel_model(), drive, pin, poly, lag, NO_NOISE,
+                    chunk)
+
+
+def kernel_run(plan, pos, vel, duration_s: float, integrator: str, refine: int, chunk: int = 64):
+    """Integrate (pos, vel) from t = 0 over ``duration_s`` with step
+    plan.dt_s / refine, in blocks of at most engine.BLOCK_STEPS steps."""
+    fracs = kernels.substep_fractions(integrator)
+    n_total = int(round(duration_s / plan.dt_s)) * refine
+    dt = duration_s / n_total
+    pos, vel = pos.copy(), vel.copy()
+    lag_u = np.zeros((2, pos.shape[2]))
+    done = 0
+    while done < n_total:
+        nb = min(engine.BLOCK_STEPS, n_total - done)
+        advance(make_block(plan, done * dt, dt, nb, fracs), pos, vel, lag_u, chunk)
+        done += nb
+    return pos, vel, dt, n_total
+
+
+def auto_chunk(n_traj: int, threads: int) -> int:
+    """mdrotor.runner's automatic chunk: about four work items per thread."""
+    return int(np.clip(n_traj // (4 * threads), 32, 256))
+
+
+# ---------------------------------------------------------------------------
+# (a) straightforward numpy baseline, vectorised over trajectories
+# ---------------------------------------------------------------------------
+def numpy_accel(pos: np.ndarray, plan, c_re: np.ndarray, c_im: np.ndarray) -> np.ndarray:
+    """Acceleration (3, N, T) in m/s^2 of positions ``pos`` (3, N, T) in m.
+
+    harmonic trap per axis + stray field
+    - (Q/m) grad Re[C z^n] with grad = (Re, -Im) of n C z^(n-1), z = x + i y
+    + Coulomb: sum_j k Q_i Q_j (r_i - r_j) / (m_i |r_i - r_j|^3).
+    """
+    acc = -plan.w2.T[:, :, None] * pos + plan.stray_acc.T[:, :, None]
+    z = pos[0] + 1j * pos[1]
+    qm = plan.qm[:, None]
+    for n, cr, ci in zip(plan.pin_orders, c_re, c_im):
+        g = n * complex(cr, ci) * z ** (n - 1)
+        acc[0] -= qm * g.real
+        acc[1] += qm * g.imag
+    d = pos[:, :, None, :] - pos[:, None, :, :]          # r_i - r_j, (3, N, N, T)
+    r2 = np.sum(d * d, axis=0)                           # (N, N, T)
+    diag = np.arange(pos.shape[1])
+    r2[diag, diag] = np.inf                              # no self-force
+    s = plan.kq_i[:, :, None] / (r2 * np.sqrt(r2))       # k Q_i Q_j / (m_i r^3)
+    acc += np.sum(s[None] * d, axis=2)
+    return acc
+
+
+def numpy_verlet(blk: Block, pos, vel):
+    """Velocity Verlet (kick-drift-kick) with the same force times as the kernel."""
+    pos, vel = pos.copy(), vel.copy()
+    dt = blk.dt
+    acc = numpy_accel(pos, blk.plan, blk.c_re[0], blk.c_im[0])
+    for s in range(blk.n_steps):
+        vel += 0.5 * dt * acc
+        pos += dt * vel
+        acc = numpy_accel(pos, blk.plan, blk.c_re[s + 1], blk.c_im[s + 1])
+        vel += 0.5 * dt * acc
+    return pos, vel
+
+
+def keep_freed_memory() -> bool:
+    """Ask glibc malloc to keep freed blocks instead of returning them to the
+    OS. numpy allocates fresh temporaries of a few MB on every force call;
+    with the default thresholds each is a new mmap whose page faults cost
+    more than the arithmetic on this VM (x2-x4). Returns False if not glibc."""
+    import ctypes
+
+    try:
+        libc = ctypes.CDLL("libc.so.6")
+    except OSError:
+        return False
+    M_TRIM_THRESHOLD, M_MMAP_THRESHOLD = -1, -3
+    return bool(libc.mallopt(M_MMAP_THRESHOLD, 32 * 2**20)) and bool(libc.mallopt(M_TRIM_THRESHOLD, 2**30))
+
+
+# ---------------------------------------------------------------------------
+# (b) solve_ivp on one trajectory
+# ---------------------------------------------------------------------------
+def ivp_rhs_factory(plan, f_rot_hz: float):
+    """dy/dt for y = (positions (3, N), velocities (3, N)) of one trajectory
+    in the steady 'hold' problem, where the pinning coefficient is
+    C_p(t) = c_p exp(-i n_p (angle_p + 2 pi f_rot t)) in closed form."""
+    n = len(plan.masses)
+    amp = plan.pin_strength
+    orders = plan.pin_orders
+    angle = plan.pin_angle
+    # the closed form must equal what the kernel is given
+    te = np.linspace(0.0, plan.schedule.duration_s, 7)
+    c_re, c_im = engine._pin_coefficients(plan, te)
+    closed = amp[None, :] * np.exp(-1j * orders[None, :] * (angle[None, :] + TWO_PI * f_rot_hz * te[:, None]))
+    tol = 1e-10 * np.max(np.abs(amp))
+    if not (np.allclose(closed.real, c_re, rtol=1e-10, atol=tol) and np.allclose(closed.imag, c_im, rtol=1e-10, atol=tol)):
+        raise RuntimeError("closed-form pinning coefficient disagrees with engine._pin_coefficients")
+
+    def rhs(t, y):
+        c = amp * np.exp(-1j * orders * (angle + TWO_PI * f_rot_hz * t))
+        acc = numpy_accel(y[: 3 * n].reshape(3, n, 1), plan, c.real, c.imag)
+        return np.concatenate([y[3 * n:], acc.ravel()])
+
+    return rhs
+
+
+def max_position_error(pos: np.ndarray, ref: np.ndarray) -> np.ndarray:
+    """Largest position-component difference (m) per trajectory."""
+    return np.max(np.abs(pos - ref), axis=(0, 1))
+
+
+# ---------------------------------------------------------------------------
+# Measurements
+# ---------------------------------------------------------------------------
+def bench_kernel(label, raw, n_traj, n_steps, repeats, seed=1):
+    """Rates of the kernel for one problem: 1 thread, 1 thread + lag, 2 threads."""
+    cfg = mdrotor.load_config(raw)
+    plan = engine.make_plan(cfg)
+    pos0, vel0 = engine.initial_states(plan, seed, np.arange(n_traj))
+    lag0 = initial_lag(plan, pos0)
+    blk = make_block(plan, 0.0, plan.dt_s, n_steps, lag=False)
+    blk_lag = make_block(plan, 0.0, plan.dt_s, n_steps, lag=True)
+    n_cores = min(2, numba.config.NUMBA_NUM_THREADS)
+    variants = {"1t": (1, blk), "1t_lag": (1, blk_lag), "2t": (n_cores, blk)}
+    # warm-up: load (or compile) the cached kernel and start the thread pool
+    for threads in (1, n_cores):
+        numba.set_num_threads(threads)
+        advance(make_block(plan, 0.0, plan.dt_s, 2), pos0[:, :, :64].copy(), vel0[:, :, :64].copy(),
+                lag0[:, :64].copy(), 32)
+    best = {k: math.inf for k in variants}
+    cpu, others = {}, {}               # of the best repeat: our CPU / wall, other processes' CPU / wall
+    for _ in range(repeats):           # interleaved, so that load changes hit all variants alike
+        for key, (threads, b) in variants.items():
+            numba.set_num_threads(threads)
+            pos, vel, lag_u = pos0.copy(), vel0.copy(), lag0.copy()
+            t, c, m = time.perf_counter(), time.process_time(), machine_busy_s()
+            advance(b, pos, vel, lag_u, auto_chunk(n_traj, threads))
+            wall = time.perf_counter() - t
+            if wall < best[key]:
+                best[key] = wall
+                cpu[key] = (time.process_time() - c) / wall
+                others[key] = max(0.0, (machine_busy_s() - m) / wall - cpu[key])
+            if not np.all(np.isfinite(pos)):
+                raise RuntimeError(f"{label}: non-finite positions after the benchmark block")
+    numba.set_num_threads(1)
+    n = len(plan.masses)
+    rate = {k: n_traj * n_steps / v for k, v in best.items()}
+    pairs = n * (n - 1) // 2
+    return plan, pos0, vel0, {
+        "config": label, "N": n, "pin_orders": [int(o) for o in plan.pin_orders], "lag_n": int(plan.lag_n),
+        "dt_s": plan.dt_s, "trajectories": n_traj, "steps": n_steps, "chunk_1t": auto_chunk(n_traj, 1),
+        "chunk_2t": auto_chunk(n_traj, n_cores), "threads_2": n_cores,
+        "rate_1t": rate["1t"], "rate_1t_lag": rate["1t_lag"], "rate_2t": rate["2t"],
+        "rate_2t_per_core": rate["2t"] / n_cores, "speedup_2t": rate["2t"] / rate["1t"],
+        "ns_per_pair_step": 1e9 / (rate["1t"] * pairs) if n >= 4 else None,
+        "ns_per_pair_step_lag": 1e9 / (rate["1t_lag"] * pairs) if n >= 4 else None,
+        "cpu_per_wall_1t": cpu["1t"], "cpu_per_wall_2t": cpu["2t"], "repeats": repeats,
+        "other_cpu_1t": others["1t"], "other_cpu_2t": others["2t"],
+    }
+
+
+def check_numpy(plan, pos0, vel0, n_traj, n_steps) -> float:
+    """Largest position difference between the numpy baseline and the kernel
+    after ``n_steps`` from the same state, relative to the largest coordinate."""
+    numba.set_num_threads(1)
+    blk = make_block(plan, 0.0, plan.dt_s, n_steps)
+    p_np, _ = numpy_verlet(blk, pos0[:, :, :n_traj], vel0[:, :, :n_traj])
+    p_k, v_k = pos0[:, :, :n_traj].copy(), vel0[:, :, :n_traj].copy()
+    advance(blk, p_k, v_k, np.zeros((2, n_traj)), 32)
+    rel = float(np.max(np.abs(p_np - p_k)) / np.max(np.abs(p_k)))
+    if not rel < 1e-9:
+        raise RuntimeError(f"numpy baseline disagrees with the kernel: max relative difference {rel:.2e}")
+    return rel
+
+
+def time_numpy(plan, pos0, vel0, n_traj, n_steps, repeats) -> float:
+    """Trajectory-steps per second of the numpy baseline (best of repeats)."""
+    blk = make_block(plan, 0.0, plan.dt_s, n_steps)
+    best = math.inf
+    for _ in range(repeats):
+        t = time.perf_counter()
+        numpy_verlet(blk, pos0[:, :, :n_traj], vel0[:, :, :n_traj])
+        best = min(best, time.perf_counter() - t)
+    return n_traj * n_steps / best
+
+
+def bench_ivp(label, raw, duration_s, n_traj, rtols, kernel_rate, tight_check, repeats, seed=3):
+    """solve_ivp (DOP853) at the tolerance matching the Verlet kernel's error."""
+    from scipy.integrate import solve_ivp
+
+    numba.set_num_threads(1)
+    cfg = mdrotor.load_config(steady_dict(raw, duration_s))
+    plan = engine.make_plan(cfg)
+    f_rot_hz = plan.f0_hz
+    n = len(plan.masses)
+    pos0, vel0 = engine.initial_states(plan, seed, np.arange(n_traj))
+    # the kernel at its default dt, and the reference (order 4, dt / 8)
+    p_v, _, dt, n_steps = kernel_run(plan, pos0, vel0, duration_s, "verlet", 1)
+    p_ref, _, _, _ = kernel_run(plan, pos0, vel0, duration_s, "order4", 8)
+    p_ref2, _, _, _ = kernel_run(plan, pos0, vel0, duration_s, "order4", 16)
+    err_verlet = float(np.median(max_position_error(p_v, p_ref)))
+    err_ref = float(np.median(max_position_error(p_ref2, p_ref)))
+    # tolerance scales: crystal size and the speed of the fastest motion
+    r_scale = max(float(np.max(np.abs(plan.crystal0.positions_m))), 1e-6)
+    v_scale = r_scale * TWO_PI * plan.f_fast_hz
+    scale = np.concatenate([np.full(3 * n, r_scale), np.full(3 * n, v_scale)])
+    rhs = ivp_rhs_factory(plan, f_rot_hz)
+    y0 = [np.concatenate([pos0[:, :, b].ravel(), vel0[:, :, b].ravel()]) for b in range(n_traj)]
+
+    def solve(rtol):
+        """Median final position error (m; inf if a run fails), wall time, RHS calls."""
+        out, nfev, t = [], 0, time.perf_counter()
+        for b in range(n_traj):
+            # a loose tolerance can let the ions fly apart: that is an error, not a crash
+            with np.errstate(over="ignore", invalid="ignore"):
+                sol = solve_ivp(rhs, (0.0, duration_s), y0[b], method="DOP853", rtol=rtol, atol=rtol * scale)
+            final = sol.y[: 3 * n, -1].reshape(3, n) if sol.status == 0 else np.full((3, n), np.inf)
+            out.append(np.where(np.isfinite(final), final, np.inf))
+            nfev += sol.nfev
+        wall = time.perf_counter() - t
+        err = float(np.median(max_position_error(np.stack(out, axis=-1), p_ref)))
+        return err, wall, nfev
+
+    scan = []
+    chosen = None
+    for rtol in rtols:               # loosest first: the first one at least as accurate as Verlet
+        err, wall, nfev = solve(rtol)
+        scan.append({"rtol": rtol, "err_m": err, "wall_s": wall, "nfev": nfev})
+        log(f"    solve_ivp N={n} rtol={rtol:.1e}: error {err:.2e} m (Verlet {err_verlet:.2e} m), {wall:.2f} s")
+        if err <= err_verlet:
+            chosen = scan[-1]
+            break
+    if chosen is None:
+        raise RuntimeError("no rtol in the scan reached the Verlet kernel's accuracy")
+    for _ in range(repeats - 1):     # best of repeats for the timing
+        chosen["wall_s"] = min(chosen["wall_s"], solve(chosen["rtol"])[1])
+    ref_vs_ivp = None
+    if tight_check:                  # independent check of the reference itself
+        err_tight, _, _ = solve(1e-13)
+        ref_vs_ivp = err_tight
+    rate = n_traj * n_steps / chosen["wall_s"]
+    return {"config": label, "N": n, "duration_s": duration_s, "f_rot_hz": f_rot_hz, "dt_s": dt,
+            "steps_equiv": n_steps, "trajectories": n_traj, "err_verlet_m": err_verlet,
+            "err_ivp_m": chosen["err_m"], "rtol": chosen["rtol"], "atol_pos_m": chosen["rtol"] * r_scale,
+            "atol_vel_m_per_s": chosen["rtol"] * v_scale, "nfev_per_traj": chosen["nfev"] / n_traj,
+            "reference": "kernel order4, dt/8", "reference_err_m (vs dt/16)": err_ref,
+            "reference_vs_ivp_rtol1e-13_m": ref_vs_ivp, "rate_steps_equiv": rate,
+            "kernel_over_ivp": kernel_rate / rate, "scan": scan}
+
+
+def memory_child(n_steps: int, n_traj: int, dt_s: float) -> dict:
+    """One whole run (engine.integrate) of the N = 2 demo crystal in steady
+    rotation; called in a fresh interpreter so that ru_maxrss is this run's."""
+    import tracemalloc
+
+    with open(ROOT / "configs" / "demo.toml", "rb") as fh:
+        raw = tomllib.load(fh)
+    cfg = mdrotor.load_config(steady_dict(raw, n_steps * dt_s, dt_s))
+    plan = engine.make_plan(cfg)
+    if plan.n_steps != n_steps:
+        raise RuntimeError(f"expected {n_steps} steps, the plan has {plan.n_steps}")
+    pos, vel = engine.initial_states(plan, 5, np.arange(n_traj))
+    # warm-up on a copy: loads the compiled kernel and the observables
+    engine.integrate(engine.make_plan(mdrotor.load_config(steady_dict(raw, 4 * dt_s, dt_s))),
+                     pos[:, :, :64].copy(), vel[:, :, :64].copy(), observe_stages=False)
+    rss_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+    tracemalloc.start()
+    t = time.perf_counter()
+    engine.integrate(plan, pos, vel, chunk=auto_chunk(n_traj, numba.get_num_threads()), observe_stages=False)
+    wall = time.perf_counter() - t
+    _, py_peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    rss_after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+    return {"steps": n_steps, "trajectories": n_traj, "threads": numba.get_num_threads(),
+            "state_mb": (pos.nbytes + vel.nbytes) / 2**20, "maxrss_before_mb": rss_before,
+            "maxrss_mb": rss_after, "tracemalloc_peak_mb": py_peak / 2**20, "wall_s": wall}
+
+
+def bench_memory(step_counts, n_traj, dt_s):
+    out = []
+    for n_steps in step_counts:
+        cmd = [sys.executable, str(Path(__file__).resolve()), "--memory-child", str(n_steps), str(n_traj), repr(dt_s)]
+        res = subprocess.run(cmd, capture_output=True, text=True, check=False)
+        if res.returncode != 0:
+            raise RuntimeError(f"memory run failed:\n{res.stderr}")
+        out.append(json.loads(res.stdout.strip().splitlines()[-1]))
+        log(f"    {n_steps} steps x {n_traj} trajectories: peak RSS {out[-1]['maxrss_mb']:.1f} MB")
+    return out
+
+
+# ---------------------------------------------------------------------------
+# Targets and report
+# ---------------------------------------------------------------------------
+# ---------------------------------------------------------------------------
+# Whole engine steps: noise on/off, pseudopotential vs RF
+# ---------------------------------------------------------------------------
+WHITE_FIELD = {"field": {"psd": {"kind": "white", "level": "1e-12 V^2/m^2/Hz"}}}
+WHITE_QUAD = {"multipole": {"order": 2, "psd": {"kind": "white", "level": "1e-2 V^2/m^4/Hz"}}}
+ONE_OVER_F = {"field": {"psd": {"kind": "power", "level": "1e-12 V^2/m^2/Hz", "f_ref": "1 MHz", "alpha": 1.0,
+                                "f_min": "50 kHz", "f_max": "5 MHz"}}}
+
+
+def engine_cases() -> list[tuple[str, dict]]:
+    """(label, raw config) for the engine-level table: the demo crystal
+    (N = 2) and the square (N = 4) with noise off / on and in both trap models."""
+    out = []
+    with open(ROOT / "configs" / "demo.toml", "rb") as fh:
+        demo = tomllib.load(fh)
+    with open(ROOT / "configs" / "square_order4.toml", "rb") as fh:
+        square = tomllib.load(fh)
+    square["trap"]["f_drive"] = "30 MHz"
+    for label, noise in (("N=2 pseudo, noise off", None), ("N=2 pseudo, white field noise", WHITE_FIELD),
+                         ("N=2 pseudo, white field + quadrupole noise", {**WHITE_FIELD, **WHITE_QUAD}),
+                         ("N=2 pseudo, 1/f field noise (50 kHz - 5 MHz)", ONE_OVER_F)):
+        raw = json.loads(json.dumps(demo))
+        if noise:
+            raw["noise"] = noise
+        out.append((label, raw))
+    for label, base, model in (("N=2 rf", demo, "rf"), ("N=4 pseudo", square, "pseudo"), ("N=4 rf", square, "rf")):
+        raw = json.loads(json.dumps(base))
+        raw["trap"]["model"] = model
+        out.append((label, raw))
+    return out
+
+
+def bench_engine(label, raw, n_traj, n_steps, repeats, threads, seed=1) -> dict:
+    """Steps of the whole engine (engine._Stepper: schedule sampling, noise
+    synthesis, kernel), as a run does them, on ``threads`` threads."""
+    from mdrotor.config import from_dict
+
+    numba.set_num_threads(threads)
+    cfg = from_dict(raw, label, base_dir=ROOT / "configs")
+    plan = engine.make_plan(cfg)
+    idx = np.arange(n_traj)
+    pos0, vel0 = engine.initial_states(plan, seed, idx)
+    phases = plan.rf_phases(seed, idx) if plan.rf else None
+    best = math.inf
+    for r in range(repeats + 1):  # the first call compiles
+        noise_state = plan.noise.new_state(seed, idx) if plan.noise is not None else None
+        stepper = engine._Stepper(plan, n_traj, auto_chunk(n_traj, threads), phases, noise_state)
+        pos, vel = pos0.copy(), vel0.copy()
+        t0 = time.perf_counter()
+        stepper.advance(pos, vel, 0, 0.0, plan.stage_dt[0], n_steps if r else 8, noise_step0=0)
+        if r:
+            best = min(best, time.perf_counter() - t0)
+    rate = n_traj * n_steps / best
+    return {"case": label, "threads": threads, "trajectories": n_traj, "steps": n_steps, "dt_s": plan.stage_dt[0],
+            "rate": rate, "rate_per_core": rate / threads,
+            "physical_time_per_s": rate * plan.stage_dt[0] / n_traj}
+
+
+def targets(result) -> list[dict]:
+    rows = []
+
+    def add(name, value, target, higher_is_better=True):
+        ratio = value / target if higher_is_better else target / value
+        rows.append({"target": name, "value": value, "threshold": target, "ratio": ratio, "met": bool(ratio >= 1.0)})
+
+    k = {r["N"]: r for r in result["kernel"]}
+    if 2 in k:
+        add("N=2 rotating pinning, traj-steps/s/core >= 1e8", k[2]["rate_1t"], TARGET_RATE_N2)
+    for n in sorted(k):
+        if n >= 4:
+            add(f"N={n}: ns per ion pair per step <= 8", k[n]["ns_per_pair_step"], TARGET_NS_PER_PAIR, False)
+    for r in result["numpy"]:
+        add(f"N={r['N']}: kernel / numpy >= 8x", r["kernel_over_numpy"], TARGET_OVER_NUMPY)
+    for r in result["solve_ivp"]:
+        add(f"N={r['N']}: kernel / solve_ivp >= 1000x", r["kernel_over_ivp"], TARGET_OVER_IVP)
+    for n in sorted(k):
+        add(f"N={n}: speed-up 1 -> {k[n]['threads_2']} threads >= 1.8x", k[n]["speedup_2t"], TARGET_SPEEDUP_2T)
+    e = {(r["case"], r["threads"]): r for r in result.get("engine", [])}
+    off = e.get(("N=2 pseudo, noise off", 1))
+    for case in ("N=2 pseudo, white field noise", "N=2 pseudo, white field + quadrupole noise"):
+        on = e.get((case, 1))
+        if off and on:
+            add(f"{case}: step cost <= 2x noise off", off["rate"] / on["rate"], TARGET_NOISE_COST, False)
+    return rows
+
+
+def g3(x) -> str:
+    return "–" if x is None else f"{x:.3g}"
+
+
+def markdown(result) -> str:
+    L = []
+    m = result["machine"]
+    L.append(f"Machine: {m['cpu']}, {m['cores']} cores; Python {m['python']}, numpy {m['numpy']}, "
+             f"numba {m['numba']}, scipy {m['scipy']}; load average {m['loadavg_start'][0]:.2f} at start, "
+             f"{m['loadavg_end'][0]:.2f} at end. Pseudopotential trap, rotating pinning on, velocity Verlet.")
+    L.append("")
+    L.append("| N | config | pinning order | trajectories x steps | traj-steps/s, 1 thread | "
+             "with lag tracking | ns / ion pair / step | 2 threads (per core) | speed-up 1 -> 2 | our CPU, 1 t / 2 t | "
+             "others' CPU, 1 t / 2 t |")
+    L.append("|---|---|---|---|---|---|---|---|---|---|---|")
+    for r in result["kernel"]:
+        L.append(f"| {r['N']} | {r['config']} | {','.join(map(str, r['pin_orders']))} | "
+                 f"{r['trajectories']} x {r['steps']} | {r['rate_1t']:.3g} | {r['rate_1t_lag']:.3g} | "
+                 f"{g3(r['ns_per_pair_step'])} | {r['rate_2t']:.3g} ({r['rate_2t_per_core']:.3g}) | "
+                 f"{r['speedup_2t']:.2f} | {r['cpu_per_wall_1t']:.2f} / {r['cpu_per_wall_2t']:.2f} | "
+                 f"{r['other_cpu_1t']:.2f} / {r['other_cpu_2t']:.2f} |")
+    L.append("")
+    L.append("| N | numpy baseline, traj-steps/s (default malloc / freed memory kept) | "
+             "max rel. diff vs kernel | kernel (1 thread) / faster numpy |")
+    L.append("|---|---|---|---|")
+    for r in result["numpy"]:
+        L.append(f"| {r['N']} | {r['rate_default_malloc']:.3g} / {g3(r['rate_tuned_malloc'])} | "
+                 f"{r['max_rel_diff']:.1e} ({r['check_steps']} steps) | {r['kernel_over_numpy']:.3g}x |")
+    L.append("")
+    L.append("| N | physical time | Verlet error (default dt) | solve_ivp DOP853 error | rtol | "
+             "reference error | solve_ivp steps-equiv/s | kernel / solve_ivp |")
+    L.append("|---|---|---|---|---|---|---|---|")
+    for r in result["solve_ivp"]:
+        L.append(f"| {r['N']} | {r['duration_s'] * 1e6:.3g} us | {r['err_verlet_m']:.2e} m | {r['err_ivp_m']:.2e} m | "
+                 f"{r['rtol']:.0e} | {r['reference_err_m (vs dt/16)']:.1e} m | {r['rate_steps_equiv']:.3g} | "
+                 f"{r['kernel_over_ivp']:.3g}x |")
+    L.append("")
+    L.append("| run (N = 2, engine.integrate) | steps | peak RSS | peak RSS before stepping | growth while stepping | "
+             "Python-side peak while stepping (tracemalloc) | state arrays |")
+    L.append("|---|---|---|---|---|---|---|")
+    for r in result["memory"]:
+        L.append(f"| {r['trajectories']} trajectories, {r['threads']} threads | {r['steps']} | "
+                 f"{r['maxrss_mb']:.1f} MB | {r['maxrss_before_mb']:.1f} MB | "
+                 f"{r['maxrss_mb'] - r['maxrss_before_mb']:.1f} MB | {r['tracemalloc_peak_mb']:.2f} MB | "
+                 f"{r['state_mb']:.2f} MB |")
+    L.append("")
+    if result.get("engine"):
+        L.append("| whole engine (engine._Stepper, as in a run) | threads | trajectories x steps | dt | "
+                 "traj-steps/s | per core | simulated time per wall second, per trajectory |")
+        L.append("|---|---|---|---|---|---|---|")
+        for r in result["engine"]:
+            L.append(f"| {r['case']} | {r['threads']} | {r['trajectories']} x {r['steps']} | {r['dt_s'] * 1e9:.3g} ns | "
+                     f"{r['rate']:.3g} | {r['rate_per_core']:.3g} | {r['physical_time_per_s'] * 1e6:.3g} us |")
+        L.append("")
+    L.append("| target | measured | threshold | ratio | |")
+    L.append("|---|---|---|---|---|")
+    for t in result["targets"]:
+        L.append(f"| {t['target']} | {t['value']:.3g} | {t['threshold']:.3g} | {t['ratio']:.2f} | "
+                 f"{'met' if t['met'] else 'MISSED'} |")
+    return "\n".join(L)
+
+
+def machine_info() -> dict:
+    import scipy
+
+    cpu = platform.processor() or "unknown CPU"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    return {"cpu": cpu, "cores": os.cpu_count(), "python": platform.python_version(), "numpy": np.__version__,
+            "numba": numba.__version__, "scipy": scipy.__version__, "mdrotor": mdrotor.__version__,
+            "OMP_WAIT_POLICY": os.environ.get("OMP_WAIT_POLICY"),
+            "loadavg_start": os.getloadavg()}
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0],
+                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--quick", action="store_true", help="small sizes: a smoke run under a minute")
+    ap.add_argument("--json", action="store_true", help="one JSON object on stdout (the table goes to stderr)")
+    ap.add_argument("--out", metavar="FILE.json", help="also write the JSON object to this file")
+    ap.add_argument("--memory-child", nargs=3, metavar=("STEPS", "TRAJ", "DT_S"), help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+
+    if args.memory_child:
+        s, b, dt = args.memory_child
+        print(json.dumps(memory_child(int(s), int(b), float(dt))))
+        return 0
+
+    rtols = [10 ** (-k / 2) for k in range(6, 27)]   # 1e-3 ... 1e-13, half-decade steps
+    if args.quick:
+        sizes = dict(traj=1024, steps=500, repeats=3,                  # kernel
+                     np_traj=1024, np_steps=30, np_repeats=1,          # numpy baseline
+                     ivp_n=(2,), ivp_time=5e-6, ivp_traj=2, ivp_repeats=1, rtols=rtols, tight=False,
+                     mem_steps=(200, 2000), mem_traj=10_000, eng_traj=512, eng_steps=256, eng_repeats=1)
+    else:
+        sizes = dict(traj=4096, steps=2000, repeats=15,
+                     np_traj=4096, np_steps=200, np_repeats=3,
+                     ivp_n=(2, 4, 8), ivp_time=20e-6, ivp_traj=3, ivp_repeats=3, rtols=rtols, tight=True,
+                     mem_steps=(1000, 10_000), mem_traj=10_000, eng_traj=2048, eng_steps=1024, eng_repeats=3)
+    t_start = time.perf_counter()
+    result = {"machine": machine_info(), "settings": {k: (list(v) if isinstance(v, tuple) else v)
+                                                      for k, v in sizes.items()},
+              "kernel": [], "numpy": [], "solve_ivp": [], "memory": []}
+    problems = problem_dicts()
+    numpy_problems = []
+    demo_dt = None
+    for label, raw in problems:
+        log(f"kernel: {label}")
+        plan, pos0, vel0, row = bench_kernel(label, raw, sizes["traj"], sizes["steps"], sizes["repeats"])
+        result["kernel"].append(row)
+        log(f"    {row['rate_1t']:.3g} traj-steps/s (1 thread), {row['rate_2t']:.3g} (2 threads)")
+        if demo_dt is None:
+            demo_dt = plan.dt_s
+        log(f"numpy baseline: {label}")
+        rel = check_numpy(plan, pos0, vel0, 64, 200)
+        rate = time_numpy(plan, pos0, vel0, sizes["np_traj"], sizes["np_steps"], sizes["np_repeats"])
+        result["numpy"].append({"N": row["N"], "trajectories": sizes["np_traj"], "steps": sizes["np_steps"],
+                                "check_trajectories": 64, "check_steps": 200, "max_rel_diff": rel,
+                                "rate_default_malloc": rate})
+        numpy_problems.append((plan, pos0, vel0))
+        if row["N"] in sizes["ivp_n"]:
+            log(f"solve_ivp: {label}")
+            result["solve_ivp"].append(bench_ivp(label, raw, sizes["ivp_time"], sizes["ivp_traj"], sizes["rtols"],
+                                                 row["rate_1t"], sizes["tight"], sizes["ivp_repeats"]))
+    # the numpy baseline again, without page-fault overhead (conservative: the faster one counts)
+    tuned = keep_freed_memory()
+    for r, k, (plan, pos0, vel0) in zip(result["numpy"], result["kernel"], numpy_problems):
+        log(f"numpy baseline, malloc keeps freed memory: N={r['N']}")
+        r["rate_tuned_malloc"] = (time_numpy(plan, pos0, vel0, sizes["np_traj"], sizes["np_steps"], sizes["np_repeats"])
+                                  if tuned else None)
+        r["rate"] = max(r["rate_default_malloc"], r["rate_tuned_malloc"] or 0.0)
+        r["kernel_over_numpy"] = k["rate_1t"] / r["rate"]
+    result["engine"] = []
+    for label, raw in engine_cases():
+        for threads in (1, 2):
+            n_steps = sizes["eng_steps"] * (4 if " rf" in label else 1)
+            log(f"engine: {label}, {threads} thread(s)")
+            result["engine"].append(bench_engine(label, raw, sizes["eng_traj"], n_steps, sizes["eng_repeats"], threads))
+    log("memory (subprocesses)")
+    result["memory"] = bench_memory(sizes["mem_steps"], sizes["mem_traj"], demo_dt)
+    result["targets"] = targets(result)
+    result["wall_s"] = time.perf_counter() - t_start
+    result["machine"]["loadavg_end"] = os.getloadavg()
+    result["machine"]["threading_layer"] = numba.threading_layer()
+    table = markdown(result)
+    text = json.dumps(result, indent=1, default=float)
+    if args.out:
+        Path(args.out).write_text(text + "\n")
+    if args.json:
+        print(table, file=sys.stderr)
+        print(text)
+    else:
+        print(table)
+    log(f"total wall time {result['wall_s']:.0f} s")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
