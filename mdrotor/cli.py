@@ -122,8 +122,6 @@ def _load(args):
 def cmd_crystal(args) -> int:
     import warnings
 
-    import numpy as np
-
     from . import units
     from .statics import crystal_from_config, pinning_margin
     from .report_text import crystal_json, crystal_text
@@ -143,7 +141,6 @@ def cmd_crystal(args) -> int:
         print(crystal_text(cfg, cr, margin))
         for w in cr.warnings:
             print(f"warning: {w}", file=sys.stderr)
-    del np
     return 0
 
 

@@ -10,11 +10,11 @@ from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
+from scipy.constants import k as KB
 
 from . import __version__
 
 TWO_PI = 2.0 * np.pi
-KB = 1.380649e-23  # J/K (exact, SI 2019)
 
 
 def run(cfg, *, trajectories: int | None = None, seed: int | None = None, threads: int | None = None,
