@@ -378,9 +378,10 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, c
         0, 0)); the white parts drawn here (see _noise_step): per-step
         standard deviations w_field (3,) and w_g (K, 2), each trajectory's
         64-bit key (T,), and the global index of the block's first step
-        (the counter). They act in every half-kick of the step, at the
-        positions of that half-kick, and are kept out of the stored
-        deterministic acceleration.
+        (the counter). Step s's values give one kick after the
+        deterministic step, dt times the noise acceleration at the step's end
+        (a first-order splitting, exact for the impulse of a uniform field;
+        a white process has no timing within a step to resolve).
     chunk : int, trajectories per parallel work item. Each chunk is copied
         into local (N, B) arrays per component: with them the compiler can
         prove that nothing aliases and vectorises every loop.
@@ -460,11 +461,6 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, c
             for k in range(n_sub):
                 h = fracs[k] * dt
                 _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
-                if has_multipole:
-                    _noise_accel(px, py, qm, n_orders, ge, ex, ey, ez, nx, ny, nz, zr, zi)
-                    _kick(vx, vy, vz, nx, ny, nz, 0.5 * h)
-                elif has_field:
-                    _kick(vx, vy, vz, ex, ey, ez, 0.5 * h)
                 _drift(px, py, pz, vx, vy, vz, h)
                 e = n_sub * s + k + 1
                 if use_rf:
@@ -474,11 +470,13 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, c
                 if use_poly:
                     _poly_accel(px, py, pz, ax, ay, az, qm, poly_exps, poly_coef[e], xp, yp, zp)
                 _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
-                if has_multipole:
-                    _noise_accel(px, py, qm, n_orders, ge, ex, ey, ez, nx, ny, nz, zr, zi)
-                    _kick(vx, vy, vz, nx, ny, nz, 0.5 * h)
-                elif has_field:
-                    _kick(vx, vy, vz, ex, ey, ez, 0.5 * h)
+            # the step's noise impulse, dt times the noise acceleration at the
+            # step's end (a kick after the deterministic step)
+            if has_multipole:
+                _noise_accel(px, py, qm, n_orders, ge, ex, ey, ez, nx, ny, nz, zr, zi)
+                _kick(vx, vy, vz, nx, ny, nz, dt)
+            elif has_field:
+                _kick(vx, vy, vz, ex, ey, ez, dt)
             if lag_n > 0 and (s + 1) % lag_stride == 0 and lag_track[s + 1] == 1:
                 th = lag_n * lag_theta[s + 1]
                 _lag_raw(px, py, masses, charges, lag_n, zr, zi, fx, fy, raw)

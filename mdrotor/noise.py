@@ -56,7 +56,7 @@ Time-domain synthesis
 Each noise sample is the exact average of a continuous-time process over one
 integration step: sample ``k`` of a block is ``(1/dt) int x(t) dt`` over
 ``[t_k, t_k + dt)``, ``t_k = t_start + dt (step0 + k)``, and the kernel
-holds it constant over that step (every sub-step kick of step k uses it).
+applies it as one kick of duration dt after step k.
 For a position-independent force the momentum transferred in a step is then
 exactly ``Q int E dt`` of the continuous process. The continuous process is
 a sum of independent pieces:
