@@ -154,6 +154,7 @@ def _series_arrays(points: list) -> dict:
     out = {k: np.array([p[k] for p in points]) for k in ("t_s", "L_mean_hbar", "L_std_hbar", "lag_mean_rad", "lag_std_rad", "lag_absmax_rad")}
     out["mode_n_mean"] = e
     out["stage"] = [p["stage"] for p in points]
+    out["mode_labels"] = [",".join(p["mode_labels"]) for p in points]  # the columns of each row
     return out
 
 
