@@ -1,5 +1,5 @@
-import os
-import sys
+"""Shared test fixtures: the configs folder and the small forced-oscillator run."""
+
 from pathlib import Path
 
 import pytest
@@ -7,13 +7,37 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = ROOT / "configs"
 
+# Two 40Ca+ ions pinned by a rotating quadrupole (libration near 221 kHz),
+# spun up linearly to a small rotation (2 kHz: harmonic limit) from the exact
+# equilibrium (T = 0, no zero-point motion: deterministic trajectories).
+# Sweeps, optimisation and their tests run it as their base config.
+FORCED_OSCILLATOR_TOML = """
+[species]
+ion = "40Ca+"
+[crystal]
+ions = 2
+[trap]
+f_radial = "1.2 MHz"
+f_axial = "2.9 MHz"
+[pinning]
+order = 2
+strength = "2e5 V/m^2"
+[[stage]]
+name = "spin-up"
+duration = "5 us"
+f_rot = { to = "2 kHz", shape = "linear" }
+[[stage]]
+name = "hold"
+duration = "5 us"
+[initial]
+temperature = "0 K"
+wigner = false
+[run]
+trajectories = 2
+seed = 1
+"""
+
 
 @pytest.fixture
 def configs_dir():
     return CONFIGS
-
-
-def write_toml(tmp_path, text, name="bad.toml"):
-    p = tmp_path / name
-    p.write_text(text)
-    return p

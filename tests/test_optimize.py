@@ -5,39 +5,15 @@ import json
 
 import numpy as np
 import pytest
+from conftest import FORCED_OSCILLATOR_TOML
 
 import mdrotor
 from mdrotor.executors import ProcessExecutor, SerialExecutor
 from mdrotor.optimize import load_optimize, run_optimize
 from mdrotor.sweep import read_point, read_table
 
-# Two 40Ca+ ions pinned by a rotating quadrupole (libration near 221 kHz),
-# linear spin-up to 2 kHz (harmonic limit) from the exact equilibrium.
-BASE = """
-[species]
-ion = "40Ca+"
-[crystal]
-ions = 2
-[trap]
-f_radial = "1.2 MHz"
-f_axial = "2.9 MHz"
-[pinning]
-order = 2
-strength = "2e5 V/m^2"
-[[stage]]
-name = "spin-up"
-duration = "5 us"
-f_rot = { to = "2 kHz", shape = "linear" }
-[[stage]]
-name = "hold"
-duration = "5 us"
-[initial]
-temperature = "0 K"
-wigner = false
-[run]
-trajectories = 2
-seed = 1
-"""
+# the forced-oscillator crystal of conftest.py (deterministic trajectories)
+BASE = FORCED_OSCILLATOR_TOML
 
 OPT = """
 base = "base.toml"

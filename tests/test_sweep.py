@@ -7,39 +7,14 @@ import math
 
 import numpy as np
 import pytest
+from conftest import FORCED_OSCILLATOR_TOML
 from scipy import constants as sc
 
 from mdrotor.executors import ProcessExecutor, SerialExecutor
 from mdrotor.sweep import export_csv, load_sweep, read_point, read_table, run_sweep
 
-# Two 40Ca+ ions pinned by a rotating quadrupole (libration near 221 kHz),
-# spun up linearly to a small rotation (2 kHz: harmonic limit) from the exact
-# equilibrium (T = 0, no zero-point motion: deterministic trajectories).
-FO_BASE = """
-[species]
-ion = "40Ca+"
-[crystal]
-ions = 2
-[trap]
-f_radial = "1.2 MHz"
-f_axial = "2.9 MHz"
-[pinning]
-order = 2
-strength = "2e5 V/m^2"
-[[stage]]
-name = "spin-up"
-duration = "5 us"
-f_rot = { to = "2 kHz", shape = "linear" }
-[[stage]]
-name = "hold"
-duration = "5 us"
-[initial]
-temperature = "0 K"
-wigner = false
-[run]
-trajectories = 2
-seed = 1
-"""
+# the forced-oscillator crystal of conftest.py (deterministic trajectories)
+FO_BASE = FORCED_OSCILLATOR_TOML
 F_ROT_END_HZ = 2e3
 
 # The same crystal, thermal and Wigner-sampled: results depend on the seeds.

@@ -12,36 +12,16 @@ from pathlib import Path
 
 import h5py
 import numpy as np
+from conftest import FORCED_OSCILLATOR_TOML
 
 from mdrotor.sweep import load_sweep, read_point, read_table, run_sweep
 
 ROOT = Path(__file__).resolve().parents[1]
 
-BASE = """
-[species]
-ion = "40Ca+"
-[crystal]
-ions = 2
-[trap]
-f_radial = "1.2 MHz"
-f_axial = "2.9 MHz"
-[pinning]
-order = 2
-strength = "2e5 V/m^2"
-[[stage]]
-name = "spin-up"
-duration = "5 us"
-f_rot = { to = "2 kHz", shape = "linear" }
-[[stage]]
-name = "hold"
-duration = "5 us"
-[initial]
-temperature = "0.5 mK"
-wigner = true
-[run]
-trajectories = 32
-seed = 3
-"""
+# the forced-oscillator crystal of conftest.py, thermal and Wigner-sampled,
+# with enough trajectories that a point takes a moment
+BASE = (FORCED_OSCILLATOR_TOML.replace('temperature = "0 K"\nwigner = false', 'temperature = "0.5 mK"\nwigner = true')
+        .replace("trajectories = 2\nseed = 1", "trajectories = 32\nseed = 3"))
 
 SWEEP = """
 base = "base.toml"
