@@ -125,6 +125,14 @@ class Plan:
             return False
         return bool(np.any(np.abs(self.pin_scales(t) * self.pin_strength) > 0.0))
 
+    def crystal_at(self, t_s: float, f_hz: float):
+        """Equilibrium and modes of the crystal rotating at f_hz with the
+        pinning as scheduled at time t_s (relaxed from the t = 0 crystal)."""
+        from .statics import compute_crystal
+
+        return compute_crystal(self.potential(f_hz, float(self.schedule.theta_rad(t_s)), self.pin_scales(t_s)), f_hz,
+                               start=self.crystal0.positions_m)
+
     def potential(self, f_hz: float, theta: float, scales):
         from .statics import model_potential
 
@@ -227,6 +235,7 @@ def initial_states(plan: Plan, seed: int, indices: np.ndarray):
 
     See :mod:`mdrotor.sampling` for the distribution and the RNG keys.
     """
+    from .observables import _rotate_positions
     from .sampling import mode_occupations, phase_space_point, sample_normal_coordinates, trajectory_rng
 
     cfg = plan.cfg
@@ -257,9 +266,7 @@ def initial_states(plan: Plan, seed: int, indices: np.ndarray):
             rc = r - np.sum(m[:, None] * r, axis=0) / np.sum(m)
             v[:, 0] += -dl / I * rc[:, 1]
             v[:, 1] += dl / I * rc[:, 0]
-            c, s = math.cos(phi), math.sin(phi)
-            r[:, 0], r[:, 1] = c * r[:, 0] - s * r[:, 1], s * r[:, 0] + c * r[:, 1]
-            v[:, 0], v[:, 1] = c * v[:, 0] - s * v[:, 1], s * v[:, 0] + c * v[:, 1]
+            r, v = _rotate_positions(r, phi), _rotate_positions(v, phi)
         pos[:, :, b] = r.T
         vel[:, :, b] = v.T
     if plan.rf:
@@ -350,7 +357,7 @@ def _curl_rotation(r, v, r0, m, w):
     rotation by the same angle, so that a large libration does not stretch
     the crystal by r phi^2 / 2 (the inverse of what
     :func:`mdrotor.observables.observe` does when it measures)."""
-    from .observables import _kabsch_angle
+    from .observables import _kabsch_angle, _rotate_positions
 
     z0 = r0[:, 0] + 1j * r0[:, 1]
     z0c = z0 - np.sum(m * z0) / np.sum(m)
@@ -364,12 +371,7 @@ def _curl_rotation(r, v, r0, m, w):
     v = v.copy()
     v[:, 0] += phi * w * r0[:, 0]
     v[:, 1] += phi * w * r0[:, 1]
-    c, s = math.cos(phi), math.sin(phi)
-    out_r = lin.copy()
-    out_r[:, 0], out_r[:, 1] = c * lin[:, 0] - s * lin[:, 1], s * lin[:, 0] + c * lin[:, 1]
-    out_v = v.copy()
-    out_v[:, 0], out_v[:, 1] = c * v[:, 0] - s * v[:, 1], s * v[:, 0] + c * v[:, 1]
-    return out_r, out_v
+    return _rotate_positions(lin, phi), _rotate_positions(v, phi)
 
 
 # ---------------------------------------------------------------------------
@@ -395,7 +397,7 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
     ``noise_state``: from ``plan.noise.new_state(seed, indices)`` when the
     config has noise.
     """
-    from .kernels import lag_phases
+    from .kernels import _wrap, lag_phases
 
     sched = plan.schedule
     T = pos.shape[2]
@@ -536,10 +538,6 @@ class _Stepper:
         # time-averaged kinetic energy of the micromotion: <KE> - KE(secular velocity)
         out["micromotion_ke_j"] = ke - 0.5 * np.sum(m * v_sec * v_sec, axis=(0, 1))
         return out
-
-
-def _wrap(a):
-    return a - TWO_PI * math.floor((a + math.pi) / TWO_PI)
 
 
 def _pin_coefficients(plan: Plan, te: np.ndarray):

@@ -1376,7 +1376,6 @@ def run_rates(plan, raw) -> dict:
     Turchette COM heating along x, y, z and D per multipole order
     (:meth:`NoiseModel.rotor_diffusion`).
     """
-    from .statics import compute_crystal
     from .stats import OK_MASK
 
     model = plan.noise
@@ -1414,8 +1413,7 @@ def run_rates(plan, raw) -> dict:
     out["heating_fit_err_quanta_per_s"] = np.array(errs)
     # analytic: the crystal rotating at the stage-end mean rate
     f_end = float(np.mean(after["f_rot_hz"][ok])) if n else 0.0
-    cr = compute_crystal(plan.potential(f_end, float(sched.theta_rad(t1)), plan.pin_scales(t1)), f_end,
-                         start=plan.crystal0.positions_m)
+    cr = plan.crystal_at(t1, f_end)
     com = {lab: f for lab, f, kind in zip(cr.modes.labels, cr.modes.freq_hz, cr.modes.kinds) if kind == "com"}
     if model.has_field:
         # lab-frame COM frequencies along x, y, z from the secular frequencies (the COM of identical ions)

@@ -6,7 +6,6 @@ import datetime as _dt
 import json
 import sys
 import time
-from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -126,15 +125,13 @@ def micromotion_report(plan, raw) -> dict:
     RF-period average of the kinetic energy minus that of the secular
     velocity, averaged over trajectories.
     """
-    from .statics import compute_crystal
     from .stats import mean_sem
 
     fin = list(raw.stages.values())[-1]
     ok = (fin["status"] & (2 | 8)) == 0
     f_end = float(np.mean(fin["f_rot_hz"][ok])) if np.any(ok) else 0.0
     t_end = plan.schedule.duration_s
-    cr = compute_crystal(plan.potential(f_end, float(plan.schedule.theta_rad(t_end)), plan.pin_scales(t_end)), f_end,
-                         start=plan.crystal0.positions_m)
+    cr = plan.crystal_at(t_end, f_end)
     q = plan.cfg.trap.q_per_ion(plan.masses, plan.charges)
     W = TWO_PI * plan.f_drive_hz
     r = cr.positions_m
@@ -201,7 +198,7 @@ def summary_text(res, path=None) -> str:
     lines.append(f"{a['n_trajectories']} trajectories x {a['n_steps']} steps (dt = {a['dt_s'] * 1e9:.4g} ns, {a['integrator']}), "
                  f"seed {int(a['seed'])}, wall {a['wall_s']:.3g} s, {a['traj_steps_per_s']:.3e} trajectory-steps/s on {a['threads']} thread(s)")
     lines.append("")
-    lines.append(f"  stage            t_end (ms)    L mean (hbar)          L spread (hbar)     slipped    diff. phonons")
+    lines.append("  stage            t_end (ms)    L mean (hbar)          L spread (hbar)     slipped    diff. phonons")
     for name, o in res.stages.items():
         ss = o.summary
         lines.append(f"  {name:<15s} {o.t_s * 1e3:10.4g}   {ss['L_mean_hbar']:12.6g} +- {ss['L_mean_err_hbar']:<8.3g} "

@@ -391,7 +391,6 @@ def normal_modes(pot: Potential, r0: np.ndarray, *, zero_tol: float = 1e-6) -> M
     rot = np.zeros_like(xi0)
     rot[:, 0], rot[:, 1] = -xi0[:, 1], xi0[:, 0]
     g1 = np.concatenate([rot.ravel(), (-w * xi0 * np.array([1.0, 1.0, 0.0])).ravel()])
-    keff = kmw - w * w * _inplane(n)
     tang = rot.ravel()
     # symmetric about the centre of mass: no multipole, isotropic in-plane
     # springs, no in-plane stray field unless every ion has the same Q/m (it

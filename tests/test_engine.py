@@ -6,7 +6,7 @@ from scipy import constants as sc
 
 import mdrotor
 from mdrotor.engine import NO_NOISE, NO_POLY, _pin_coefficients, initial_states, integrate, make_plan
-from mdrotor.kernels import advance, substep_fractions
+from mdrotor.kernels import advance
 from mdrotor.observables import observe
 
 HBAR = sc.hbar

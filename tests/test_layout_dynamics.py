@@ -1,7 +1,6 @@
 """Pinning from an electrode layout in the dynamics: the electrodes' full potential."""
 
 import numpy as np
-import pytest
 
 import mdrotor
 from mdrotor.cli import main

@@ -38,7 +38,6 @@ def test_single_ion_heating_turchette():
     t = res.final.t_s
     n, f = _mode(res, "com-xy-2")  # the x mode (higher of the split pair)
     assert abs(f - 1.3e6) < 1.0
-    rate = turchette_heating_rate(S, res.attrs["moment_of_inertia_kg_m2"] * 0 + 39.96 * sc.atomic_mass, sc.e, f)
     from mdrotor.species import get_species
 
     m = get_species("40Ca+").mass_kg

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy import constants as sc
 
-from mdrotor.statics import Potential, compute_crystal, find_equilibrium, normal_modes, virial_ratio
+from mdrotor.statics import Potential, compute_crystal, normal_modes, virial_ratio
 
 M = 40 * sc.atomic_mass
 Q = sc.e
