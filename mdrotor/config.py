@@ -18,6 +18,7 @@ import numpy as np
 
 from . import units
 from .errors import InputError, PhysicsError
+from .inputfiles import read_text
 from .multipole import MultipoleTerm
 from .schedule import Schedule, Stage, parse_profile
 from .trap import Trap
@@ -140,10 +141,7 @@ def load_config(path_or_dict, overrides=(), *, source: str | None = None) -> Con
     else:
         p = Path(path_or_dict)
         src = source or str(path_or_dict)
-        try:
-            text = p.read_text()
-        except OSError as e:
-            raise InputError("", f"cannot read config file: {e.strerror}", src) from None
+        text = read_text(p, "config")
         try:
             raw = tomllib.loads(text)
         except tomllib.TOMLDecodeError as e:

@@ -158,14 +158,10 @@ def _pm(v, e, digits=4) -> str:
 # ---------------------------------------------------------------------------
 def file_kind(path) -> str:
     """``"run"``, ``"sweep"`` or ``"optimize"``: what an mdrotor HDF5 file holds."""
-    import h5py
+    from .inputfiles import open_hdf5
 
     p = Path(path)
-    try:
-        f = h5py.File(p, "r")
-    except OSError as e:
-        raise InputError("", f"cannot open the file: {e}", str(p)) from None
-    with f:
+    with open_hdf5(p, "an mdrotor result, sweep or optimisation file (.h5)") as f:
         kind = f.attrs.get("kind")
         if kind is not None:
             kind = kind.decode() if isinstance(kind, bytes) else str(kind)

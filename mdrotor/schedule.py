@@ -254,20 +254,23 @@ def _read_table(path, key, source, base_dir):
     p = Path(path)
     if not p.is_absolute() and base_dir is not None:
         p = Path(base_dir) / p
-    try:
-        rows = []
-        for line in p.read_text().splitlines():
-            line = line.strip()
-            if not line or line.startswith("#"):
-                continue
-            parts = [x.strip() for x in line.split(",")]
-            try:
-                rows.append([float(parts[0]), float(parts[1])])
-            except (ValueError, IndexError):
-                if rows:
-                    raise InputError(key, f"{str(p)!r}: cannot read the row {line!r}; expected 'time_s, value'", source) from None
-    except OSError as e:
-        raise InputError(key, f"cannot read table file {str(p)!r}: {e.strerror}", source) from None
+    from .inputfiles import read_text
+
+    rows = []
+    for line in read_text(p, "table", key=key, source=source).splitlines():
+        line = line.strip()
+        if not line or line.startswith("#"):
+            continue
+        parts = [x.strip() for x in line.split(",")]
+        try:
+            row = [float(parts[0]), float(parts[1])]
+        except (ValueError, IndexError):
+            if rows:
+                raise InputError(key, f"{str(p)!r}: cannot read the row {line!r}; expected 'time_s, value'", source) from None
+            continue
+        if not all(math.isfinite(x) for x in row):
+            raise InputError(key, f"{str(p)!r}: the row {line!r} is not finite; expected finite 'time_s, value'", source)
+        rows.append(row)
     # CSV tables: first column time in s, second the value in SI
     # (Hz for f_rot, a multiplier for pinning); a header line is skipped.
     if not rows:

@@ -121,15 +121,10 @@ def _read_summary(g) -> dict:
 
 def load_result(path) -> Result:
     """Read a result file written by :func:`save_result`."""
-    import h5py
-
     from .errors import InputError
+    from .inputfiles import open_hdf5
 
-    try:
-        f = h5py.File(path, "r")
-    except OSError as e:
-        raise InputError("", f"cannot open result file: {e}", str(path)) from None
-    with f:
+    with open_hdf5(path, "an mdrotor result file (.h5, written by mdrotor run)") as f:
         if "format_version" not in f.attrs or "stages" not in f:
             raise InputError("", "not an mdrotor result file (no format_version or /stages)", str(path))
         attrs = {k: (v.item() if hasattr(v, "item") and np.ndim(v) == 0 else v) for k, v in f.attrs.items()}

@@ -45,6 +45,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
+from .inputfiles import read_text
 
 SWEEP_KEYS = {"base", "combine", "seed", "seeding", "trajectories", "axis", "sample", "description"}
 AXIS_KEYS = {"key", "values", "range", "bounds", "scale"}
@@ -62,10 +63,7 @@ def read_toml(path, what: str):
     """(parsed dict, text, source label, folder) of a sweep / optimisation file."""
     p = Path(path)
     src = str(path)
-    try:
-        text = p.read_text()
-    except OSError as e:
-        raise InputError("", f"cannot read {what} file: {e.strerror}", src) from None
+    text = read_text(p, what)
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
@@ -95,10 +93,7 @@ def resolve_base(spec: dict, source: str, folder: Path, overrides=()):
     b = spec["base"]
     if isinstance(b, str):
         p = (folder / b) if not Path(b).is_absolute() else Path(b)
-        try:
-            text = p.read_text()
-        except OSError as e:
-            raise InputError("base", f"cannot read the base config {str(p)!r}: {e.strerror}", source) from None
+        text = read_text(p, "base config", key="base", source=source)
         try:
             raw = tomllib.loads(text)
         except tomllib.TOMLDecodeError as e:
@@ -717,13 +712,9 @@ def read_table(path) -> dict:
     "axes": {key: {"text": [...], "si": array}}, "metrics": {name: array}}``
     (for an optimisation the axes are its parameters, one row per evaluation).
     """
-    import h5py
+    from .inputfiles import open_hdf5
 
-    try:
-        f = h5py.File(path, "r")
-    except OSError as e:
-        raise InputError("", f"cannot open sweep file: {e}", str(path)) from None
-    with f:
+    with open_hdf5(path, "an mdrotor sweep or optimisation file (.h5)") as f:
         if "summary" not in f or "kind" not in f.attrs:
             raise InputError("", "not an mdrotor sweep or optimisation file", str(path))
         s = f["summary"]

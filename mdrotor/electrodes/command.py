@@ -53,19 +53,16 @@ def add_electrodes_parser(subparsers) -> argparse.ArgumentParser:
 
 def _load_layout(path, overrides):
     import tomllib
-    from pathlib import Path
 
     from ..config import apply_override
     from ..errors import InputError
+    from ..inputfiles import read_text
     from .layout import load_layout, parse_layout
 
     if not overrides:
         return load_layout(path)
     src = str(path)
-    try:
-        text = Path(path).read_text(encoding="utf-8")
-    except OSError as exc:
-        raise InputError("", f"cannot read layout file: {exc.strerror}", src) from None
+    text = read_text(path, "layout")
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:

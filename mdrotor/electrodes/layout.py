@@ -77,6 +77,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
+from ..inputfiles import read_text
 from .. import units as _units
 from . import polygons as _poly
 from .potentials import PlaneElectrodes
@@ -789,10 +790,7 @@ def load_layout(path) -> Layout:
     """
     path = Path(path)
     source = str(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise InputError("", f"cannot read layout file: {exc.strerror}", source) from None
+    text = read_text(path, "layout")
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
