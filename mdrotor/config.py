@@ -340,9 +340,9 @@ def _trap(raw, species, source) -> Trap:
 
 
 def _numbers(v, key, source):
-    if not isinstance(v, list) or len(v) != 3 or not all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in v):
+    if not isinstance(v, list) or len(v) != 3:
         raise InputError(key, f"expected a list of 3 numbers, got {v!r}", source)
-    return v
+    return [units.number(x, f"{key}[{i}]", source, "a number") for i, x in enumerate(v)]
 
 
 def _pinning(raw, source, base_dir=None) -> tuple:
@@ -415,9 +415,8 @@ def _schedule(raw, pinning, f_start, source, base_dir) -> Schedule | None:
                     val = units.parse(v, "custom", k, source, dimensionality=units.multipole_dimension(term.order),
                                       example=units.multipole_example(term.order))
                     return val / term.strength if term.strength else 0.0
-                if isinstance(v, bool) or not isinstance(v, (int, float)):
-                    raise InputError(k, f"expected a multiplier of the configured strength (e.g. 0.5) or a strength such as '{units.multipole_example(term.order)}'", source)
-                return float(v)
+                return units.number(v, k, source, f"a multiplier of the configured strength (e.g. 0.5) or a strength such as "
+                                                  f"'{units.multipole_example(term.order)}'")
 
             profs.append(parse_profile(spec, prev_k[j], dur, mult, key, source, base_dir))
         if pspec and not pinning:
@@ -443,9 +442,10 @@ def _initial(raw, source) -> Initial:
         raise InputError("initial.occupations", "expected a table {selector = mean phonon number}", source)
     pairs = []
     for k, v in occ.items():
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or v < 0:
-            raise InputError(f"initial.occupations.{k}", "expected a non-negative mean phonon number", source)
-        pairs.append((k, float(v)))
+        n = units.number(v, f"initial.occupations.{k}", source, "a non-negative mean phonon number")
+        if n < 0:
+            raise InputError(f"initial.occupations.{k}", f"expected a non-negative mean phonon number, got {v!r}", source)
+        pairs.append((k, n))
     return Initial(temp, wig, tuple(pairs))
 
 

@@ -219,7 +219,7 @@ def load_optimize(path, overrides=()) -> OptimizeSpec:
     tol = _number(o.get("tol", 0.01), "optimizer.tol", src)
     atol = _number(o.get("atol", 0.0), "optimizer.atol", src)
     xatol = _number(o.get("xatol", 1e-3), "optimizer.xatol", src, positive=True)
-    fatol = _number(o.get("fatol", math.inf), "optimizer.fatol", src)
+    fatol = _number(o.get("fatol", math.inf), "optimizer.fatol", src, allow_inf=True)
     step = _number(o.get("initial_step", 0.1), "optimizer.initial_step", src, positive=True)
     if step > 0.5:
         raise InputError("optimizer.initial_step", "expected a step in the unit cube of the bounds, at most 0.5", src)
@@ -247,9 +247,10 @@ def load_optimize(path, overrides=()) -> OptimizeSpec:
                         method, budget, opt_seed, popsize, tol, atol, xatol, fatol, step, ctraj, cseed, digest)
 
 
-def _number(v, key, src, positive=False):
-    if isinstance(v, bool) or not isinstance(v, (int, float)) or math.isnan(v) or (positive and not v > 0):
-        raise InputError(key, f"expected a {'positive ' if positive else ''}number, got {v!r}", src)
+def _number(v, key, src, positive=False, allow_inf=False):
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or math.isnan(v) or (positive and not v > 0) \
+            or (math.isinf(v) and not allow_inf):
+        raise InputError(key, f"expected a {'positive ' if positive else ''}{'' if allow_inf else 'finite '}number, got {v!r}", src)
     return float(v)
 
 

@@ -188,8 +188,9 @@ def cli_rotor(args) -> int:
             D = float(args.diffusion)
         except ValueError:
             raise InputError("--diffusion", f"expected a number in hbar^2/s, got {args.diffusion!r}", "command line") from None
-        if D < 0:
-            raise InputError("--diffusion", "expected a non-negative diffusion constant in hbar^2/s", "command line")
+        if not (np.isfinite(D) and D >= 0):
+            raise InputError("--diffusion", f"expected a finite, non-negative diffusion constant in hbar^2/s, got {args.diffusion!r}",
+                             "command line")
     if args.k is not None and args.k < 1:
         raise InputError("--k", "expected a positive number of quanta", "command line")
     d = rotor_summary(args.source, k=args.k, diffusion_hbar2_per_s=D, contrast=args.contrast, overrides=args.overrides)

@@ -233,8 +233,10 @@ def parse_profile(spec, previous: float, duration_s: float, parse_value, key: st
         raise InputError(f"{key}.to", "a 'hold' cannot change the value; give a shape such as 'linear' or 'smoothstep'", source)
     steep = 8.0
     if "steepness" in spec:
-        steep = spec["steepness"]
-        if not isinstance(steep, (int, float)) or isinstance(steep, bool) or steep <= 0:
+        from .units import number
+
+        steep = number(spec["steepness"], f"{key}.steepness", source, "a positive number")
+        if steep <= 0:
             raise InputError(f"{key}.steepness", "expected a positive number", source)
     tau = 0.0
     if shape == "exponential":

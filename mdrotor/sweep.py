@@ -163,7 +163,7 @@ def quantity(value, key: str, source: str):
     if isinstance(value, bool) or not isinstance(value, (int, float, str)):
         raise InputError(key, f"expected a number or a quantity with units such as '2 ms', got {value!r}", source)
     if not isinstance(value, str):
-        return float(value), None
+        return units.number(value, key, source), None
     ureg = units.registry()
     text = value.strip().replace("µ", "u").replace("μ", "u")
     try:
@@ -171,7 +171,7 @@ def quantity(value, key: str, source: str):
     except Exception:
         raise InputError(key, f"expected a quantity with units such as '2 ms', could not read {value!r}", source) from None
     if not isinstance(q, ureg.Quantity) or (q.dimensionless and str(q.units) == "dimensionless"):
-        return float(getattr(q, "magnitude", q)), None
+        return units.number(float(getattr(q, "magnitude", q)), key, source), None
     m = _NUMBER.match(text)
     unit = text[m.end():].strip() if m else ""
     try:
@@ -181,6 +181,8 @@ def quantity(value, key: str, source: str):
     except Exception:
         unit = f"{q.units:~}".replace("µ", "u")
         mag = float(q.magnitude)
+    if not math.isfinite(mag):
+        raise InputError(key, f"expected a finite quantity such as '2 ms', got {value!r}", source)
     return mag, unit
 
 

@@ -581,7 +581,7 @@ class _Reader:
         if isinstance(value, (int, float)) and not isinstance(value, bool):
             if self.scale_m is None:
                 raise InputError(key, f"expected a length such as '120 um' (a bare number needs layout.units = \"um\"), got {value!r}", self.source)
-            return float(value) * self.scale_m
+            return _units.number(value, key, self.source, "a length") * self.scale_m
         return _units.parse(value, "length", key, self.source)
 
     def point2(self, value, key):
