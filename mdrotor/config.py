@@ -271,7 +271,7 @@ def _vec3(v, key, source, dim):
 
 
 def _trap(raw, species, source) -> Trap:
-    from .mathieu import characteristic_exponent, solve_point_trap
+    from .mathieu import secular_frequency_hz, solve_point_trap
 
     tr = raw.get("trap")
     if tr is None:
@@ -295,17 +295,16 @@ def _trap(raw, species, source) -> Trap:
             raise InputError("trap.f_drive", "missing; Mathieu a and q need the drive frequency f_drive", source)
         if "f_radial" in tr or "f_axial" in tr:
             raise InputError("trap", "give either secular frequencies (f_radial, f_axial) or Mathieu parameters (a, q), not both", source)
-        q = tuple(float(x) for x in _numbers(_require(tr, "q", "trap", source, "3 Mathieu q values [q_x, q_y, q_z]"), "trap.q", source))
-        a = tuple(float(x) for x in _numbers(tr.get("a", [0.0, 0.0, 0.0]), "trap.a", source))
+        q = tuple(_numbers(_require(tr, "q", "trap", source, "3 Mathieu q values [q_x, q_y, q_z]"), "trap.q", source))
+        a = tuple(_numbers(tr.get("a", [0.0, 0.0, 0.0]), "trap.a", source))
         if abs(sum(q)) > 1e-9 * max(abs(x) for x in q) or abs(sum(a)) > 1e-9 * max(1e-300, max(abs(x) for x in a)):
             raise InputError("trap.q", "Laplace's equation needs q_x + q_y + q_z = 0 and a_x + a_y + a_z = 0 (a point trap has q_x = q_y = -q_z/2)", source)
         fsec = []
         for u in range(3):
             try:
-                beta = characteristic_exponent(a[u], q[u])
+                fsec.append(float(secular_frequency_hz(f_drive, a[u], q[u])))
             except InputError:
                 raise PhysicsError(f"trap.q[{u}]", f"the trap is unstable for (a, q) = ({a[u]:g}, {q[u]:g}) on axis {'xyz'[u]}: outside the first Mathieu stability region", source) from None
-            fsec.append(beta * f_drive / 2)
         f_sec = tuple(fsec)
     else:
         fr = units.parse(_require(tr, "f_radial", "trap", source, "a radial secular frequency such as '1.1 MHz'"), "frequency", "trap.f_radial", source)
@@ -319,12 +318,10 @@ def _trap(raw, species, source) -> Trap:
             raise InputError("trap.radial_split", "expected a split smaller than twice f_radial", source)
         f_sec = (fr + split / 2, fr - split / 2, fz)
         if f_drive is not None:
-            if max(f_sec) >= f_drive / 2:
-                raise PhysicsError("trap.f_drive", "secular frequencies must stay below half the drive frequency", source)
             try:
                 a_arr, q_arr = solve_point_trap(f_drive, f_sec)
-            except InputError as e:
-                raise PhysicsError("trap", f"no stable point-trap (a, q) gives these secular frequencies at this drive: {e.expected}", source) from None
+            except PhysicsError as e:
+                raise _point_trap_error(e, tr, f_sec, f_drive, source) from None
             a, q = tuple(map(float, a_arr)), tuple(map(float, q_arr))
     if model == "rf" and f_drive is None:
         raise InputError("trap.f_drive", "missing; model = 'rf' needs the drive frequency", source)
@@ -337,6 +334,40 @@ def _trap(raw, species, source) -> Trap:
     if np.any(w2 <= 0):
         raise PhysicsError("trap", "the trap does not confine every ion (a secular frequency squared is not positive for some species)", source)
     return trap
+
+
+def _hz(f: float) -> str:
+    for unit, s in (("GHz", 1e9), ("MHz", 1e6), ("kHz", 1e3)):
+        if abs(f) >= s:
+            return f"{f / s:.4g} {unit}"
+    return f"{f:.4g} Hz"
+
+
+def _point_trap_error(e: PhysicsError, tr: dict, f_sec, f_drive: float, source) -> PhysicsError:
+    """The point-trap solver's error in the config's terms: the key the user
+    wrote for the axis at fault, the values as written, the numbers that matter."""
+    axis = getattr(e, "axis", None)
+    if axis is None:
+        return PhysicsError("trap", e.expected, source)
+    name = "f_axial" if axis == 2 else "f_radial"
+    other = "f_radial" if axis == 2 else "f_axial"
+    drive = f"f_drive = {tr['f_drive']!r}"
+    given = repr(tr[name])
+    if axis < 2 and "radial_split" in tr:
+        given += f" (radial_split = {tr['radial_split']!r})"
+    cause = getattr(e, "cause", "")
+    if cause == "above_half_drive":
+        text = (f"{name} = {given} is not below half the drive frequency ({drive}: {_hz(0.5 * f_drive)}); "
+                f"expected a secular frequency below f_drive/2 (the first Mathieu stability region)")
+    elif cause == "too_weak":
+        ratio = (f_sec[axis] / e.f_rf_hz) ** 2
+        text = (f"the trap is too weak for this drive: {name} = {given} at {drive} is a {ratio:.1e} remainder of the "
+                f"{_hz(e.f_rf_hz)} RF confinement after the static defocusing that {other} = {tr[other]!r} needs, "
+                f"beyond double precision; expected a stronger trap along this axis")
+    else:
+        text = (f"{name} = {given} is too close to half the drive frequency ({drive}: {_hz(0.5 * f_drive)}) to be "
+                f"set in double precision; expected a lower {name} or a faster drive")
+    return PhysicsError(f"trap.{name}", text, source)
 
 
 def _numbers(v, key, source):

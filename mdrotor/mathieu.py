@@ -452,7 +452,11 @@ def solve_point_trap(f_drive_hz: float, f_secular_hz, *, key: str = "",
     PhysicsError
         If a secular frequency is >= f_drive/2 (beta >= 1: outside the first
         stability region for any a, q), or so close to 0 or f_drive/2 that the
-        solution cannot be verified in double precision.
+        solution cannot be verified in double precision. Its attributes
+        ``axis`` (0, 1, 2 for x, y, z: the axis at fault) and ``cause``
+        (``"above_half_drive"``, ``"at_half_drive"`` or ``"too_weak"``, then
+        with ``f_rf_hz``, the lowest-order RF confinement of that axis) let a
+        caller word the message in its own terms.
     InputError
         For non-finite, non-positive or wrongly shaped input.
     """
@@ -471,14 +475,15 @@ def solve_point_trap(f_drive_hz: float, f_secular_hz, *, key: str = "",
         raise InputError(key, f"secular frequencies must be finite and > 0 Hz, "
                               f"got {f_sec.tolist()}", source)
     half = 0.5 * f_drive
-    for name, f in zip("xyz", f_sec):
+    for u, (name, f) in enumerate(zip("xyz", f_sec)):
         if f >= half:
-            raise PhysicsError(
+            err = PhysicsError(
                 key,
-                f"secular frequency f_{name} = {f:.6g} Hz below half the drive "
-                f"frequency, f_drive/2 = {half:.6g} Hz (beta = 2 f / f_drive < 1: "
-                f"first stability region); raise the drive frequency or lower "
-                f"f_{name}", source)
+                f"secular frequency f_{name} = {f:.6g} Hz is not below half the drive "
+                f"frequency, f_drive/2 = {half:.6g} Hz (the first stability region needs "
+                f"beta = 2 f / f_drive < 1); expected a faster drive or a lower f_{name}", source)
+            err.axis, err.cause = u, "above_half_drive"
+            raise err
 
     beta_t = f_sec / half
     scale = np.array([1.0, 1.0, 2.0])  # |q_u| / q_r
@@ -502,13 +507,30 @@ def solve_point_trap(f_drive_hz: float, f_secular_hz, *, key: str = "",
         beta = np.full(3, np.nan)
     mismatch = np.abs(beta / beta_t - 1.0)
     if not np.all(mismatch < 1e-9):
-        raise PhysicsError(
-            key,
-            f"secular frequencies (f_x, f_y, f_z) = {tuple(f_sec.tolist())} Hz "
-            f"that a point Paul trap at f_drive = {f_drive:.6g} Hz can be set to "
-            f"in double precision; these are too close to 0 or f_drive/2 "
-            f"(found a = {a.tolist()}, q = {q.tolist()}, relative mismatch "
-            f"{np.nanmax(mismatch) if np.any(np.isfinite(mismatch)) else 'unstable'})",
-            source,
-        )
+        raise _unresolved(f_drive, f_sec, a, q, mismatch, key, source)
     return a, q
+
+
+def _unresolved(f_drive, f_sec, a, q, mismatch, key, source) -> PhysicsError:
+    """The error of a point trap that double precision cannot set: one axis
+    so weak that its beta^2 = a + q^2/2 + ... is the residue of cancelling
+    its RF confinement against the static defocusing that Laplace's equation
+    and the other axes impose, or so close to f_drive/2 that beta = 1 is not
+    resolved. Names that axis (``err.axis``) and the numbers that matter."""
+    u = int(np.nanargmax(np.where(np.isfinite(mismatch), mismatch, np.inf)))
+    name = "xyz"[u]
+    f = float(f_sec[u])
+    # lowest order: w^2 = (W/2)^2 (a + q^2/2), the RF part |q| W / (2 sqrt 2)
+    f_rf = abs(float(q[u])) * f_drive / (2.0 * math.sqrt(2.0))
+    if f < 0.25 * f_drive:
+        cause = "too_weak"
+        text = (f"the trap is too weak for this drive along {name}: f_{name} = {f:.4g} Hz at f_drive = {f_drive:.4g} Hz "
+                f"leaves {(f / f_rf) ** 2:.1e} of the {f_rf:.4g} Hz RF confinement after the static defocusing "
+                f"(a cancellation double precision cannot resolve)")
+    else:
+        cause = "at_half_drive"
+        text = (f"f_{name} = {f:.10g} Hz is too close to half the drive frequency ({0.5 * f_drive:.10g} Hz) for "
+                f"double precision; expected a lower f_{name} or a faster drive")
+    err = PhysicsError(key, text, source)
+    err.axis, err.cause, err.f_rf_hz = u, cause, f_rf
+    return err

@@ -68,12 +68,11 @@ class Trap:
         s = (np.asarray(charges_c) / np.asarray(masses_kg)) / (self.ref_charge_c / self.ref_mass_kg)
         out = np.empty((len(s), 3))
         if self.a is not None and self.q is not None and self.f_drive_hz is not None:
-            from .mathieu import characteristic_exponent
+            from .mathieu import secular_frequency_hz
 
             for i, si in enumerate(s):
                 for u in range(3):
-                    beta = characteristic_exponent(si * self.a[u], si * self.q[u])
-                    out[i, u] = (beta * np.pi * self.f_drive_hz) ** 2
+                    out[i, u] = (TWO_PI * secular_frequency_hz(self.f_drive_hz, si * self.a[u], si * self.q[u])) ** 2
             return out
         w2 = (TWO_PI * np.asarray(self.f_secular_hz)) ** 2
         w2_dc = np.array([-0.5 * w2[2], -0.5 * w2[2], w2[2]])
