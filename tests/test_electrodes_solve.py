@@ -95,6 +95,37 @@ def test_unreachable_target_reports_shortfall(tri):
     dphi = np.angle(np.exp(1j * (ph - ph[0] - 3 * 2 * math.pi * np.arange(8) / 8)))
     assert np.max(np.abs(dphi)) < 2e-2
 
+    # a layout that can make the multipole: only the limits are in the way
+    assert plan.producible and "limits would have to grow" in plan.shortfall_text()
+
+
+@pytest.fixture(scope="module")
+def ring6():
+    lay = load_layout("configs/electrodes/ring6_string2.toml")
+    return lay, fit_multipoles(lay)
+
+
+@pytest.mark.parametrize("which,order,words", [
+    # k equal sectors of span 2 pi / k centred at alpha_j = 2 pi j / k. A sector's
+    # order-m coefficient goes as int e^{i m phi} over it = e^{i m alpha_j} (2/m)
+    # sin(m pi / k) (the solid harmonics separate in phi; Jackson ch. 3):
+    ("ring6", 6, "lacks order 6"),  # m = k: sin(pi) = 0, no dc channel has order 6
+    # m = k / 2: e^{i m alpha_j} = (-1)^j is real, only cos(3 phi), one orientation
+    ("ring6", 3, "lacks the other orientation of order 3"),
+    # voltages cos(m alpha_j) = cos((k - m) alpha_j) on the k sector centres
+    # (sampling): order m only together with azimuthal order k - m
+    ("ring6", 4, "independent of azimuthal order 2"),
+    ("tri", 6, "independent of azimuthal order 2"),
+])
+def test_layout_that_cannot_make_the_multipole_says_what_it_lacks(which, order, words, request):
+    lay, tab = request.getfixturevalue(which)
+    plan = solve_rotating(lay, order, 1e6, table=tab)
+    assert not plan.reached and not plan.producible
+    text = plan.shortfall_text()
+    assert f"cannot produce a rotating order-{order} multipole at any voltage" in text and words in text, text
+    assert "limits would have to grow" not in text
+    assert plan.to_dict()["lacking"] == plan.lacking
+
 
 def test_unwanted_terms_are_reported(tri):
     lay, tab = tri

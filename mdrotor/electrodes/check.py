@@ -707,9 +707,7 @@ def design_check(layout, cfg=None, *, n_phi: int = N_PHI, n_rows: int = 128) -> 
     out["plan"]["crystal_radius_m"] = plan.crystal_radius_m
     verdict = []
     if not plan.reached:
-        verdict.append(f"the target c_{n} = {c_target:.4g} V/m^{n} is not reached within the limits "
-                       f"(achieved {abs(plan.k_corot):.4g}, {plan.shortfall_rel * 100:.3g} % short; the limits would have to "
-                       f"grow {plan.peak_ratio_unbounded:.3g}x)")
+        verdict.append(plan.shortfall_text())
     if cfg is None:
         out["verdict"] = {"ok": not verdict, "problems": verdict}
         return out

@@ -135,10 +135,8 @@ def cli_electrodes(args) -> int:
             rate = units.parse(args.rate, "frequency", "--rate", "command line")
             ds = prepare_design(layout, cfg, depth=False)
             if not ds.plan.reached:
-                n = ds.plan.order
-                raise InputError("pinning.strength", f"the layout reaches only {abs(ds.plan.k_corot):.6g} V/m^{n} of the "
-                                                     f"{ds.plan.strength_si:.6g} V/m^{n} asked within its limits; expected a "
-                                                     f"strength the electrodes can make", cfg.source)
+                key = "pinning.order" if not ds.plan.producible else "pinning.strength"
+                raise InputError(key, f"{ds.plan.shortfall_text()}; expected a pinning the electrodes can make", cfg.source)
             d = write_waveform(args.waveform, layout, ds.plan, cfg, rate, allow_over=args.allow_over)
             d.update({"order": ds.plan.order, "strength_si": ds.plan.strength_si, "target_from": ds.target["from"],
                       "layout": layout.source, "config": cfg.source})

@@ -114,9 +114,8 @@ def layout_pinning(path, order: int, strength_si: float, *, base_dir=None, key: 
     table = fit_multipoles(layout, layout.trap_point_m, order=fit_order)
     plan = solve_rotating(layout, order, strength_si, table=table)
     if not plan.reached:
-        raise InputError(key.rsplit(".", 1)[0] + ".strength",
-                         f"the layout {p.name} reaches only {abs(plan.k_corot):.4g} V/m^{order} of the requested "
-                         f"{strength_si:.4g} within its voltage limits (short by {100 * plan.shortfall_rel:.3g} %)", source)
+        raise InputError(key.rsplit(".", 1)[0] + (".strength" if plan.producible else ".order"),
+                         f"layout {p.name}: {plan.shortfall_text()}", source)
     m = harmonics_to_monomials(table.order)
     return LayoutPinning(str(p), int(order), monomial_exponents(table.order), plan.coeff_static @ m,
                          plan.coeff_cos @ m, plan.coeff_sin @ m, plan)

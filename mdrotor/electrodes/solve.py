@@ -49,7 +49,7 @@ from scipy.optimize import lsq_linear
 from ..errors import InputError
 from .multipoles import MultipoleTable, fit_multipoles
 
-__all__ = ["StaticSolution", "RotatingPlan", "solve_static", "solve_rotating", "CAUTION"]
+__all__ = ["StaticSolution", "RotatingPlan", "solve_static", "solve_rotating", "lacking_terms", "CAUTION"]
 
 CAUTION = ("Voltages must stay within the trap's rated limits and the lab's safety rules; "
            "check every waveform against them before applying it.")
@@ -293,7 +293,14 @@ class RotatingPlan:
         |k_corot - c| / c.
     peak_ratio_unbounded : float
         max_e A_e / (L_e - |s_e|) of the same problem without limits; > 1 is
-        the factor by which the limits would have to grow.
+        the factor by which the limits would have to grow. Meaningful only
+        when ``producible``.
+    producible : bool
+        The same problem without limits reaches the target: only the limits
+        stand in the way (True when reached).
+    lacking : str
+        When not ``producible``: what the layout lacks, in words (see
+        :func:`lacking_terms`); else "".
     crystal_radius_m : float
     fit_residual_v : float
         Bound on the fit residual of the combined potential at the largest
@@ -322,6 +329,21 @@ class RotatingPlan:
     fit_residual_v: float
     table: MultipoleTable = field(repr=False)
     caution: str = CAUTION
+    producible: bool = True
+    lacking: str = ""
+
+    def shortfall_text(self) -> str:
+        """Why the target is not reached, in one sentence ("" when it is):
+        the layout cannot make this multipole at any voltage (and what it
+        lacks), or its limits cap the strength (and by how much they would
+        have to grow)."""
+        n, c = self.order, self.strength_si
+        if self.reached:
+            return ""
+        if not self.producible:
+            return f"the layout cannot produce a rotating order-{n} multipole at any voltage: {self.lacking}"
+        return (f"the target c_{n} = {c:.4g} V/m^{n} is not reached within the voltage limits (achieved {abs(self.k_corot):.4g}, "
+                f"{self.shortfall_rel * 100:.3g} % short; the limits would have to grow {self.peak_ratio_unbounded:.3g}x)")
 
     def voltages_at(self, theta_rad) -> np.ndarray:
         """Channel voltages (V) at pinning angle(s) theta, shape (..., n_channels)."""
@@ -373,6 +395,9 @@ class RotatingPlan:
             "shortfall_si": self.shortfall_si,
             "shortfall_rel": self.shortfall_rel,
             "peak_ratio_unbounded": self.peak_ratio_unbounded,
+            "producible": self.producible,
+            "lacking": self.lacking,
+            "shortfall_text": self.shortfall_text(),
             "unwanted": self.unwanted()[:12],
             "caution": self.caution,
         }
@@ -469,6 +494,24 @@ def solve_rotating(layout, order: int, strength_si: float, *, static_v=None, tab
             phi = np.where(amp > 1e-9, np.arctan2(cand[1], cand[0]), phi)
     xp, xq = best
     peak_free = float(np.max(np.hypot(fp, fq) * Hs / np.where(H > 0, H, np.inf)))
+
+    def miss_of(gp, gq):  # relative miss of the rotating target by cosine / sine voltages (scaled units)
+        vp, vq = np.zeros(layout.n_channels), np.zeros(layout.n_channels)
+        vp[use], vq[use] = gp * Hs, gq * Hs
+        cc, cs = table.combine(vp), table.combine(vq)
+        al, be = cc[jc] - 1j * cc[js], cs[jc] - 1j * cs[js]
+        return max(abs(0.5 * (al + 1j * be) - c), abs(0.5 * (al - 1j * be))) / c
+
+    clean = resolved_table(table)
+
+    def reaches(extra_free=()):  # the problem without limits on the resolved table, more terms left free
+        fr = free | set(extra_free)
+        A1, b1 = _rows(clean, use, Hs, w, tg_p, scale, sup, fr, target_weight, regularization)
+        A2, b2 = _rows(clean, use, Hs, w, tg_q, scale, sup, fr, target_weight, regularization)
+        return miss_of(np.linalg.lstsq(A1, b1, rcond=None)[0], np.linalg.lstsq(A2, b2, rcond=None)[0]) <= rtol
+
+    producible = reaches()
+    lacking = "" if producible else lacking_terms(clean, use, order, sup, free, reaches)
     p = np.zeros(layout.n_channels)
     q = np.zeros(layout.n_channels)
     p[use] = np.where(live, xp * Hs, 0.0)
@@ -488,4 +531,82 @@ def solve_rotating(layout, order: int, strength_si: float, *, static_v=None, tab
         phases_rad=np.arctan2(q, p), limits_v=limits, coeff_static=Cst, coeff_cos=Ccos, coeff_sin=Csin,
         k_corot=complex(k_co), k_counter=complex(k_ct), reached=bool(miss <= rtol), shortfall_si=float(c - abs(k_co)),
         shortfall_rel=float(abs(k_co - c) / c), peak_ratio_unbounded=peak_free, crystal_radius_m=rho,
-        fit_residual_v=float(peak @ table.residual_rms), table=table)
+        fit_residual_v=float(peak @ table.residual_rms), table=table, producible=bool(producible or miss <= rtol),
+        lacking=lacking if miss > rtol else "")
+
+
+def resolved_table(table: MultipoleTable) -> MultipoleTable:
+    """The table with every coefficient the fit does not resolve set to 0.
+
+    A coefficient counts as resolved when its term's rms potential on the fit
+    sphere, |C_lm| rho_fit^l s_lm per volt, exceeds 10 times the channel's fit
+    residual (the rule of :meth:`MultipoleTable.significant_orders`); below
+    that it is the fit's rounding noise (a centred disc's 1e-18 order-4
+    coefficient, say), which a solve without limits would otherwise exploit
+    with absurd voltages.
+    """
+    import dataclasses
+
+    size = np.abs(table.coeffs) * np.array([table.term_rms[j] * table.radius_m ** l for j, (l, m) in enumerate(table.terms)])
+    floor = 10.0 * np.maximum(table.residual_rms, 1e-15 * table.potential_rms)
+    return dataclasses.replace(table, coeffs=np.where(size > floor[:, None], table.coeffs, 0.0))
+
+
+def lacking_terms(table: MultipoleTable, use, order: int, suppress_order: int, free, reaches) -> str:
+    """What a layout lacks to make a rotating order-n multipole, in words.
+
+    A rotating pattern Re[c (x + i y)^n e^{-i n theta}] needs both sectoral
+    components of order n, C_nn (cos n phi) and C_n,-n (sin n phi), made
+    independently of every term that must stay zero. In order:
+
+    * no dc channel makes an order-n term: the layout lacks order n;
+    * the channels make only one orientation (the 2 x channels matrix of
+      per-volt C_nn, C_n,-n has rank 1): it lacks the other;
+    * they make both, but only together with terms of another azimuthal
+      order |m| (every l), or of another order l, that must stay zero
+      (leaving those free lets the solve reach the target): it lacks an
+      order-n pattern independent of them (a ring of k equal segments, for
+      example, makes azimuthal order n only together with its alias |k - n|).
+
+    A component counts as made when the fit resolves it
+    (:func:`resolved_table`).
+
+    Parameters
+    ----------
+    table : MultipoleTable
+        Resolved coefficients (:func:`resolved_table`).
+    use : sequence of int
+        The dc channels of the solve.
+    order, suppress_order : int
+    free : set of (l, m)
+        Terms already left free.
+    reaches : callable
+        ``reaches(extra_free) -> bool``: whether the solve without limits
+        reaches the target with the terms ``extra_free`` also left free.
+    """
+    jc, js = table.index(order, order), table.index(order, -order)
+    T = table.coeffs[use][:, [jc, js]].T
+    sv = np.linalg.svd(T, compute_uv=False)
+    rank = int(np.sum(sv > 1e-9 * max(float(sv[0]), 1e-300))) if np.any(T) else 0
+    if rank == 0:
+        return (f"no dc channel makes an in-plane order-{order} term (l = {order}, m = +-{order}); "
+                f"the layout lacks order {order}")
+    if rank == 1:
+        return (f"its dc channels make only one orientation of the order-{order} term, and a rotating pattern needs "
+                f"two (cos and sin {order} phi); the layout lacks the other orientation of order {order}")
+    target = ((order, order), (order, -order))
+    terms = [(l, m) for (l, m) in table.terms if 1 <= l <= suppress_order and (l, m) not in target]
+    # terms of one azimuthal order |m| (the aliases of a segmented ring), then of one order l
+    by_m = [mm for mm in range(0, suppress_order + 1) if reaches([(l, m) for l, m in terms if abs(m) == mm])]
+    if by_m:
+        alias = " or ".join(str(mm) for mm in by_m)
+        return (f"its dc channels make order {order} only together with terms of azimuthal order {alias} "
+                f"(cos and sin {alias} phi, l = {max(by_m[0], 1)}..{suppress_order}) that must stay zero; the layout lacks "
+                f"an order-{order} pattern independent of azimuthal order {alias}")
+    by_l = [l for l in range(1, suppress_order + 1) if reaches([(ll, m) for ll, m in terms if ll == l])]
+    if by_l:
+        alias = " or ".join(str(l) for l in by_l)
+        return (f"its dc channels make order {order} only together with an order-{alias} term that must stay zero; "
+                f"the layout lacks an order-{order} pattern independent of order {alias}")
+    return (f"its dc channels make order {order} only together with terms of several other orders that must stay "
+            f"zero; the layout lacks an independent order-{order} pattern")
