@@ -53,12 +53,15 @@ class NullResult:
         Typical |E| per volt near the point (at half its height), 1/m.
     found : bool
         ``field_per_v <= 1e-6 * reference_per_v``.
+    others : tuple of (3,) arrays
+        Further nulls the global search found (not chosen).
     """
 
     point_m: np.ndarray
     field_per_v: float
     reference_per_v: float
     found: bool
+    others: tuple = ()
 
 
 def _rf_field(layout, pts):
@@ -72,48 +75,62 @@ def _rf_hessian(layout, pts):
 
 
 def _rf_extent(layout):
-    """Centroid (x, y) and size (m) of the rf electrodes."""
-    outer = np.vstack([e.outer_m for e in layout.electrodes if e.role == "rf"])
+    """Bounding box (lo, hi) of the rf electrodes in the plane (m), their
+    area-weighted centroid (x, y), and their smallest feature: min over rf
+    electrodes of 2 area / perimeter (a strip's width, a ring's radial width)."""
+    rf = [e for e in layout.electrodes if e.role == "rf"]
+    outer = np.vstack([e.outer_m for e in rf])
     lo, hi = outer.min(axis=0), outer.max(axis=0)
-    areas = np.array([e.area_m2 for e in layout.electrodes if e.role == "rf"])
-    cents = np.array([e.outer_m.mean(axis=0) for e in layout.electrodes if e.role == "rf"])
+    areas = np.array([e.area_m2 for e in rf])
+    cents = np.array([e.outer_m.mean(axis=0) for e in rf])
     c = (areas[:, None] * cents).sum(axis=0) / areas.sum()
-    return c, float(np.max(hi - lo))
+
+    def perimeter(loop):
+        return float(np.sum(np.linalg.norm(np.roll(loop, -1, axis=0) - loop, axis=1)))
+
+    feature = min(2.0 * e.area_m2 / (perimeter(e.outer_m) + sum(perimeter(h) for h in e.holes_m)) for e in rf)
+    return lo, hi, c, feature
 
 
-def find_rf_null(layout, guess_m=None) -> NullResult:
-    """Locate the RF null (E_rf = 0) above the surface.
+#: Grid of the null search: points per axis in the plane (at most), height
+#: levels per factor e, and the number of best grid minima refined.
+SEARCH_XY_MAX, SEARCH_Z_PER_E, SEARCH_STARTS = 25, 4, 6
 
-    Parameters
-    ----------
-    layout : Layout
-    guess_m : (3,) array-like, optional
-        Start point; by default the smallest |E_rf| on a vertical line above
-        the area-weighted centre of the rf electrodes.
 
-    Returns
-    -------
-    NullResult
-    """
-    if not layout.rf_channels:
-        raise InputError("rf", "the layout has no electrode with role = 'rf'", layout.source)
-    c, size = _rf_extent(layout)
-    if guess_m is None:
-        zs = size * np.geomspace(1e-3, 3.0, 200)
-        pts = np.column_stack([np.full_like(zs, c[0]), np.full_like(zs, c[1]), zs])
-        e = np.linalg.norm(_rf_field(layout, pts), axis=1)
-        # |E| also fades far away: pick the deepest *local* minimum, measured
-        # against the largest |E| within a factor 2 in height
-        inner = np.nonzero((e[1:-1] <= e[:-2]) & (e[1:-1] <= e[2:]))[0] + 1
-        if inner.size == 0:
-            inner = np.array([int(np.argmin(e))])
-        score = [e[i] / max(np.max(e[(zs > zs[i] / 2) & (zs < 2 * zs[i])]), 1e-300) for i in inner]
-        x0 = pts[inner[int(np.argmin(score))]]
-    else:
-        x0 = np.asarray(guess_m, dtype=float)
-        if x0.shape != (3,) or x0[2] <= 0:
-            raise InputError("trap.guess", "expected a point [x, y, z] above the surface", layout.source)
-    scale = max(x0[2], 1e-9)
+def _search_grid(layout):
+    """Coarse grid over the region above the rf electrodes (their bounding
+    box with a quarter of its size added on every side; heights from a tenth
+    of the smallest feature to twice the box size, geometric)."""
+    lo, hi, c, feature = _rf_extent(layout)
+    ext = hi - lo
+    size = float(np.max(ext))
+    axes = []
+    for k in range(2):
+        n = int(np.clip(np.ceil(1.5 * ext[k] / (0.5 * feature)), 9, SEARCH_XY_MAX)) | 1  # odd: the box centre is on it
+        axes.append(np.linspace(lo[k] - 0.25 * ext[k], hi[k] + 0.25 * ext[k], n))
+    z_lo, z_hi = 0.1 * feature, 2.0 * size
+    nz = max(8, int(np.ceil(SEARCH_Z_PER_E * math.log(z_hi / z_lo))))
+    axes.append(np.geomspace(z_lo, z_hi, nz))
+    return axes, lo, hi, c, size
+
+
+def _grid_minima(e2):
+    """Indices of the interior local minima of a 3D array (26 neighbours, ties allowed)."""
+    core = e2[1:-1, 1:-1, 1:-1]
+    is_min = np.ones(core.shape, dtype=bool)
+    nx, ny, nz = e2.shape
+    for dx in (-1, 0, 1):
+        for dy in (-1, 0, 1):
+            for dz in (-1, 0, 1):
+                if dx == dy == dz == 0:
+                    continue
+                is_min &= core <= e2[1 + dx:nx - 1 + dx, 1 + dy:ny - 1 + dy, 1 + dz:nz - 1 + dz]
+    return np.argwhere(is_min) + 1
+
+
+def _refine(layout, x0):
+    """Least-squares solve of E_rf = 0 from x0 (scaled by its height): (point, |E|, |E| at half height)."""
+    scale = max(float(x0[2]), 1e-9)
 
     def fun(u):
         return _rf_field(layout, (u * scale)[None, :])[0] * scale
@@ -126,7 +143,73 @@ def find_rf_null(layout, guess_m=None) -> NullResult:
     p = sol.x * scale
     e = float(np.linalg.norm(_rf_field(layout, p[None, :])[0]))
     ref = float(np.linalg.norm(_rf_field(layout, np.array([[p[0], p[1], 0.5 * p[2]]]))[0]))
-    return NullResult(p, e, ref, bool(e <= 1e-6 * max(ref, 1e-300)))
+    return p, e, ref
+
+
+def find_rf_null(layout, guess_m=None) -> NullResult:
+    """Locate the RF null (E_rf = 0) above the surface.
+
+    Without a guess the search is global over the region above the rf
+    electrodes: |E_rf|^2 on a coarse grid (:func:`_search_grid`: the rf
+    electrodes' bounding box widened by a quarter of its size on each side,
+    at least a point per half feature up to 25 per axis, heights geometric
+    from a tenth of the smallest rf feature to twice the layout's size), its
+    interior local minima ranked by the distance to the null that a Newton
+    step predicts relative to the height, |E| / (||H|| z) (small only near a
+    null: far from the electrodes |E| and its Hessian H fall off together), and a
+    least-squares solve of E_rf = 0 from the best few. Of the nulls found
+    (|E| <= 1e-6 of the field at half their height), the one nearest the rf
+    electrodes' area-weighted centre (horizontally, then the lowest) is the
+    result; the others are in ``NullResult.others``. A layout whose null is
+    elsewhere can name a start point (``[trap] guess``).
+
+    Parameters
+    ----------
+    layout : Layout
+    guess_m : (3,) array-like, optional
+        Start point of a local solve instead of the global search.
+
+    Returns
+    -------
+    NullResult
+    """
+    if not layout.rf_channels:
+        raise InputError("rf", "the layout has no electrode with role = 'rf'", layout.source)
+    if guess_m is not None:
+        x0 = np.asarray(guess_m, dtype=float)
+        if x0.shape != (3,) or x0[2] <= 0:
+            raise InputError("trap.guess", "expected a point [x, y, z] above the surface", layout.source)
+        p, e, ref = _refine(layout, x0)
+        return NullResult(p, e, ref, bool(e <= 1e-6 * max(ref, 1e-300)))
+    (gx, gy, gz), lo, hi, c, size = _search_grid(layout)
+    X, Y, Z = np.meshgrid(gx, gy, gz, indexing="ij")
+    pts = np.column_stack([X.ravel(), Y.ravel(), Z.ravel()])
+    e2 = np.sum(_rf_field(layout, pts) ** 2, axis=1).reshape(X.shape)
+    idx = _grid_minima(e2)
+    if len(idx) == 0:  # no interior minimum: every point is a candidate
+        idx = np.argwhere(np.ones(e2.shape, dtype=bool))
+    cand = np.column_stack([gx[idx[:, 0]], gy[idx[:, 1]], gz[idx[:, 2]]])
+    hess = np.linalg.norm(_rf_hessian(layout, cand), axis=(1, 2))
+    score = np.sqrt(e2[tuple(idx.T)]) / np.maximum(hess * cand[:, 2], 1e-300)
+    starts = cand[np.argsort(score)[:SEARCH_STARTS]]
+    found, best = [], None
+    centre = 0.5 * (lo + hi)
+    for x0 in starts:
+        p, e, ref = _refine(layout, x0)
+        inside = np.all(np.abs(p[:2] - centre) <= 0.5 * (hi - lo) + size) and p[2] <= 5.0 * size
+        rel = e / max(ref, 1e-300)
+        if inside and rel <= 1e-6:
+            if not any(np.linalg.norm(p - q) <= 1e-6 * p[2] for q, _, _ in found):
+                found.append((p, e, ref))
+        if inside and (best is None or rel < best[1] / max(best[2], 1e-300)):
+            best = (p, e, ref)
+    if not found:
+        if best is None:
+            best = _refine(layout, starts[0])
+        return NullResult(best[0], best[1], best[2], False)
+    found.sort(key=lambda r: (round(float(np.hypot(*(r[0][:2] - c))) / (1e-6 * size)), r[0][2]))
+    p, e, ref = found[0]
+    return NullResult(p, e, ref, True, tuple(q for q, _, _ in found[1:]))
 
 
 def pseudo_energy_j(layout, points_m, v_rf, f_drive_hz, mass_kg, charge_c) -> np.ndarray:
