@@ -361,9 +361,9 @@ def _point_trap_error(e: PhysicsError, tr: dict, f_sec, f_drive: float, source) 
                 f"expected a secular frequency below f_drive/2 (the first Mathieu stability region)")
     elif cause == "too_weak":
         ratio = (f_sec[axis] / e.f_rf_hz) ** 2
-        text = (f"the trap is too weak for this drive: {name} = {given} at {drive} is a {ratio:.1e} remainder of the "
-                f"{_hz(e.f_rf_hz)} RF confinement after the static defocusing that {other} = {tr[other]!r} needs, "
-                f"beyond double precision; expected a stronger trap along this axis")
+        text = (f"the trap is too weak for this drive: {name} = {given} at {drive} leaves only {ratio:.1e} of the "
+                f"curvature of the {_hz(e.f_rf_hz)} RF confinement after the static defocusing that {other} = "
+                f"{tr[other]!r} needs, beyond double precision; expected a stronger trap along this axis")
     else:
         text = (f"{name} = {given} is too close to half the drive frequency ({drive}: {_hz(0.5 * f_drive)}) to be "
                 f"set in double precision; expected a lower {name} or a faster drive")
