@@ -39,6 +39,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=None, help="base seed (overrides run.seed)")
     p.add_argument("--threads", type=int, default=None, help="threads for the kernels (default: all cores)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--force", action="store_true",
+                   help="run even when the preflight refuses (a spin-up that the pinning does not hold); same as --set run.force=true")
     _add_common(p)
 
     p = sub.add_parser("rotor", help="quantum-rotor quantities, diffusion and coherence of a result or a config")
@@ -123,7 +125,8 @@ def cmd_crystal(args) -> int:
     import warnings
 
     from . import units
-    from .statics import crystal_from_config, pinning_margin
+    from .pinning import assess_config
+    from .statics import crystal_from_config
     from .report_text import crystal_json, crystal_text
 
     cfg = _load(args)
@@ -133,12 +136,11 @@ def cmd_crystal(args) -> int:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         cr = crystal_from_config(cfg, f_rot)
-    margin = (pinning_margin(cr, cr.potential.multipoles, cr.potential.external, [t.order for t in cfg.pinning])
-              if cfg.pinning else None)
+        holding = assess_config(cfg, cr.f_rot_hz, start=cr.positions_m) if cfg.pinning else None
     if args.json:
-        print(json.dumps(crystal_json(cfg, cr, margin)))
+        print(json.dumps(crystal_json(cfg, cr, holding)))
     else:
-        print(crystal_text(cfg, cr, margin))
+        print(crystal_text(cfg, cr, holding))
         for w in cr.warnings:
             print(f"warning: {w}", file=sys.stderr)
     return 0

@@ -32,7 +32,7 @@ SECTIONS = {
     "rotation": {"f_start"},
     "stage": {"name", "duration", "f_rot", "pinning"},
     "initial": {"temperature", "wigner", "occupations"},
-    "run": {"trajectories", "seed", "dt", "integrator", "chunk", "threads", "steps_per_period"},
+    "run": {"trajectories", "seed", "dt", "integrator", "chunk", "threads", "steps_per_period", "force"},
     "observe": {"loss_radius", "series_interval"},
     "noise": None,  # validated by mdrotor.noise
 }
@@ -59,6 +59,7 @@ class RunOptions:
     chunk: int = 0
     threads: int = 0
     steps_per_period: int = 40
+    force: bool = False  # run even when the preflight refuses (mdrotor.pinning.preflight)
 
 
 @dataclass(frozen=True)
@@ -497,7 +498,10 @@ def _run(raw, source) -> RunOptions:
     chunk = _int(r.get("chunk", 0), "run.chunk", source, 0, "a chunk size (0: automatic)")
     threads = _int(r.get("threads", 0), "run.threads", source, 0, "a thread count (0: all cores)")
     spp = _int(r.get("steps_per_period", 40), "run.steps_per_period", source, 8, "steps per fastest period")
-    return RunOptions(traj, seed, dt_s, integ, chunk, threads, spp)
+    force = r.get("force", False)
+    if not isinstance(force, bool):
+        raise InputError("run.force", f"expected true or false, got {force!r}", source)
+    return RunOptions(traj, seed, dt_s, integ, chunk, threads, spp, force)
 
 
 def _observe(raw, source) -> Observe:

@@ -78,6 +78,7 @@ class Plan:
     rf_orbit: tuple | None = None
     noise: object = None
     notes: list = field(default_factory=list)
+    holding: object = None
 
     @property
     def pin_is_multipole(self) -> np.ndarray:
@@ -141,7 +142,7 @@ class Plan:
 
 def make_plan(cfg) -> Plan:
     """Resolve a config into a :class:`Plan` (crystal at t = 0, dt, kernel arrays)."""
-    from .statics import compute_crystal, pinning_margin
+    from .statics import compute_crystal
     from .errors import PhysicsError
 
     sched = cfg.schedule
@@ -172,26 +173,33 @@ def make_plan(cfg) -> Plan:
         raise e.with_source(cfg.source)
     plan.crystal0 = cr
     plan.free_rotor0 = not any(lab == "libration" for lab in cr.modes.labels) and not plan.pinned0 and n > 1
-    # the pinning term whose lag is tracked: the largest restoring torque on the crystal
+    # the pinning term whose lag is tracked, and the order of its wells: the
+    # pinning core's verdict on the t = 0 crystal with every term at its
+    # largest multiplier of the schedule (a pinning that ramps up from 0 counts)
     if len(orders):
-        z = cr.positions_m[:, 0] + 1j * cr.positions_m[:, 1]
-        zc = np.sum(m * z) / np.sum(m)
-        torques = [o * abs(s) * abs(np.sum(q * (z - zc) ** o)) for o, s in zip(orders, strength)]
-        ref = [o * abs(s) * np.sum(np.abs(q) * np.abs(z - zc) ** o) for o, s in zip(orders, strength)]
-        best = int(np.argmax(torques))
-        if torques[best] > 1e-6 * ref[best]:
-            plan.lag_term, plan.lag_n = best, int(orders[best])
+        from .pinning import MOMENT_REL, assess, config_terms, moment_rel
+
+        peak = np.array([sched.peak_pinning_scale(j) for j in range(len(orders))])
+        try:
+            hold = assess(plan.potential(f0, 0.0, peak), plan.potential(f0, 0.0, np.zeros(len(orders))),
+                          config_terms(cfg, peak), start=cr.positions_m, seed=cfg.search_seed, curve=False)
+        except PhysicsError as e:
+            raise e.with_source(cfg.source)
+        plan.holding = hold
+        if hold.held and moment_rel(cr.positions_m, m, q, hold.order) > MOMENT_REL:
+            plan.lag_term, plan.lag_n = hold.term, int(hold.order)
             from .kernels import lag_phases
 
             p3 = np.ascontiguousarray(cr.positions_m.T[:, :, None])
             plan.lag_u_ref = float(lag_phases(p3, m, q, plan.lag_n)[0])
-            grid = np.linspace(0.0, sched.duration_s, 2001)
-            plan.lag_threshold = 0.1 * float(np.max(np.abs(sched.pinning_scale(grid, best))))
+            plan.lag_threshold = 0.1 * float(peak[hold.term])
+            if hold.verdict == "deformation":
+                plan.notes.append(f"the pinning holds this crystal only through its deformation: {hold.reason}")
+        elif hold.held:
+            plan.notes.append(f"the crystal is {hold.describe()}, but has no order-{hold.order} moment at t = 0 to "
+                              f"track its lag by; lag and slips are not measured")
         else:
-            margin = pinning_margin(cr, cr.potential.multipoles)
-            plan.notes.append("no pinning term has a moment on this crystal, so it is not pinned (a regular N-gon "
-                              "of identical ions feels only orders that are multiples of N); moments "
-                              + ", ".join(f"|M_{o}| = {v:.3g} C m^{o}" for o, v in margin["moments"].items()))
+            plan.notes.append(f"the pinning does not hold this crystal: {hold.reason}")
     # time step from the fastest frequency in the problem
     f_sec = float(np.sqrt(np.max(cfg.trap.omega_sq(m, q)))) / TWO_PI
     f_modes = float(np.max(cr.modes.freq_hz)) + abs(f0) if len(cr.modes.omega) else 0.0
@@ -235,7 +243,7 @@ def initial_states(plan: Plan, seed: int, indices: np.ndarray):
 
     See :mod:`mdrotor.sampling` for the distribution and the RNG keys.
     """
-    from .observables import _rotate_positions
+    from .frame import rotate_positions
     from .sampling import mode_occupations, phase_space_point, sample_normal_coordinates, trajectory_rng
 
     cfg = plan.cfg
@@ -266,7 +274,7 @@ def initial_states(plan: Plan, seed: int, indices: np.ndarray):
             rc = r - np.sum(m[:, None] * r, axis=0) / np.sum(m)
             v[:, 0] += -dl / I * rc[:, 1]
             v[:, 1] += dl / I * rc[:, 0]
-            r, v = _rotate_positions(r, phi), _rotate_positions(v, phi)
+            r, v = rotate_positions(r, phi), rotate_positions(v, phi)
         pos[:, :, b] = r.T
         vel[:, :, b] = v.T
     if plan.rf:
@@ -357,12 +365,12 @@ def _curl_rotation(r, v, r0, m, w):
     rotation by the same angle, so that a large libration does not stretch
     the crystal by r phi^2 / 2 (the inverse of what
     :func:`mdrotor.observables.observe` does when it measures)."""
-    from .observables import _kabsch_angle, _rotate_positions
+    from .frame import alignment_angle, rotate_positions
 
     z0 = r0[:, 0] + 1j * r0[:, 1]
     z0c = z0 - np.sum(m * z0) / np.sum(m)
     z = r[:, 0] + 1j * r[:, 1]
-    phi = float(_kabsch_angle(z0c[:, None], (z - np.sum(m * z) / np.sum(m))[:, None], m)[0])
+    phi = float(alignment_angle(z0c[:, None], (z - np.sum(m * z) / np.sum(m))[:, None], m)[0])
     lin = r.copy()
     lin[:, 0] += phi * r0[:, 1]
     lin[:, 1] -= phi * r0[:, 0]
@@ -371,7 +379,7 @@ def _curl_rotation(r, v, r0, m, w):
     v = v.copy()
     v[:, 0] += phi * w * r0[:, 0]
     v[:, 1] += phi * w * r0[:, 1]
-    return _rotate_positions(lin, phi), _rotate_positions(v, phi)
+    return rotate_positions(lin, phi), rotate_positions(v, phi)
 
 
 # ---------------------------------------------------------------------------

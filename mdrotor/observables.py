@@ -36,6 +36,8 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy import constants as sc
 
+from .frame import alignment_angle, angular_momentum, rotate_positions, rotate_states
+
 HBAR = sc.hbar
 TWO_PI = 2.0 * np.pi
 STATUS_BITS = {"slipped": 1, "lost": 2, "reordered": 4, "nonfinite": 8}
@@ -52,36 +54,6 @@ class ModeFrame:
     pinned: bool
 
 
-def _kabsch_angle(z_eq: np.ndarray, z: np.ndarray, m: np.ndarray) -> np.ndarray:
-    """Best rotation angle phi (per trajectory) mapping z_eq onto z:
-    phi = arg sum_i m_i conj(z_eq,i) z_i. z_eq and z complex (N, T)."""
-    if z_eq.ndim != 2 or z.ndim != 2:
-        raise ValueError("z_eq and z must be (N, T)")
-    return np.angle(np.sum(m[:, None] * np.conj(z_eq) * z, axis=0))
-
-
-def _rotate(a: np.ndarray, phi: np.ndarray) -> np.ndarray:
-    """Rotate the x, y components of a (3, N, T) by phi (T,) about z."""
-    c, s = np.cos(phi), np.sin(phi)
-    out = a.copy()
-    out[0] = c * a[0] - s * a[1]
-    out[1] = s * a[0] + c * a[1]
-    return out
-
-
-def angular_momentum(pos, vel, m):
-    """L_z about the axis and about the centre of mass (J s), and I_com."""
-    lz = np.sum(m[:, None] * (pos[0] * vel[1] - pos[1] * vel[0]), axis=0)
-    mt = np.sum(m)
-    xc = np.sum(m[:, None] * pos[0], axis=0) / mt
-    yc = np.sum(m[:, None] * pos[1], axis=0) / mt
-    vxc = np.sum(m[:, None] * vel[0], axis=0) / mt
-    vyc = np.sum(m[:, None] * vel[1], axis=0) / mt
-    lcom = lz - mt * (xc * vyc - yc * vxc)
-    icom = np.sum(m[:, None] * ((pos[0] - xc) ** 2 + (pos[1] - yc) ** 2), axis=0)
-    return lz, lcom, icom
-
-
 def mode_frame(plan, t_s: float, w_traj: np.ndarray, pinned: bool) -> ModeFrame:
     """Equilibria and modes to measure trajectories at time t."""
     from .statics import compute_crystal, normal_modes
@@ -92,7 +64,7 @@ def mode_frame(plan, t_s: float, w_traj: np.ndarray, pinned: bool) -> ModeFrame:
         theta = float(sched.theta_rad(t_s)) if sched is not None else 0.0
         scales = plan.pin_scales(t_s)
         pot = plan.potential(f, theta, scales)
-        start = _rotate_positions(plan.crystal0.positions_m, theta - plan.theta0)
+        start = rotate_positions(plan.crystal0.positions_m, theta - plan.theta0)
         cr = compute_crystal(pot, f, start=start)
         return ModeFrame(np.array([f]), cr.positions_m[None], [cr.modes], True)
     ok = np.isfinite(w_traj)
@@ -115,8 +87,8 @@ def mode_frame(plan, t_s: float, w_traj: np.ndarray, pinned: bool) -> ModeFrame:
         r = compute_crystal(pot, f, start=start).positions_m
         # same orientation and labels as the previous node (rotating an
         # equilibrium of this rotation-symmetric potential gives another one)
-        phi = _kabsch_angle((start[:, 0] + 1j * start[:, 1])[:, None], (r[:, 0] + 1j * r[:, 1])[:, None], plan.masses)[0]
-        r = _rotate_positions(r, -phi)
+        phi = alignment_angle((start[:, 0] + 1j * start[:, 1])[:, None], (r[:, 0] + 1j * r[:, 1])[:, None], plan.masses)[0]
+        r = rotate_positions(r, -phi)
         start = r
         r_list.append(r)
         modes.append(normal_modes(replace(pot, omega_frame=TWO_PI * f), r))
@@ -129,14 +101,6 @@ def v_rigid_gen(r_eq: np.ndarray, wf: np.ndarray) -> np.ndarray:
     out = np.zeros_like(r_eq)
     out[:, :, 0] = -wf[:, None] * r_eq[:, :, 0]
     out[:, :, 1] = -wf[:, None] * r_eq[:, :, 1]
-    return out
-
-
-def _rotate_positions(r: np.ndarray, phi: float) -> np.ndarray:
-    c, s = np.cos(phi), np.sin(phi)
-    out = r.copy()
-    out[:, 0] = c * r[:, 0] - s * r[:, 1]
-    out[:, 1] = s * r[:, 0] + c * r[:, 1]
     return out
 
 
@@ -219,7 +183,7 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     nearest = np.where(weight > 0.5, nxt, node)
     z_eq = (r_eq[:, :, 0] + 1j * r_eq[:, :, 1]).T  # (N, T)
     z_eq_c = z_eq - np.sum(m[:, None] * z_eq, axis=0) / np.sum(m)
-    phi = _kabsch_angle(z_eq_c, z - zc, m)
+    phi = alignment_angle(z_eq_c, z - zc, m)
     # Rotate each configuration by its best-fit angle phi so that a finite
     # rotation does not leak into the radial modes through 1 - cos(phi); in
     # the pinning frame the angle from the nearest well, phi - phi_well, is
@@ -231,8 +195,8 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
         phi_well = np.zeros(n_traj)
     else:
         phi_well = phi
-    body_pos = _rotate(safe_pos, -phi)
-    body_vel = _rotate(safe_vel, -phi)
+    body_pos = rotate_states(safe_pos, -phi)
+    body_vel = rotate_states(safe_vel, -phi)
     species = plan.species_ids
     for b in np.nonzero(good)[0]:
         d = body_pos[:, :, b].T[:, None, :] - r_eq[b][None, :, :]

@@ -5,23 +5,28 @@ from __future__ import annotations
 import numpy as np
 
 from . import __version__
+from .pinning import MOMENT_REL
 
 TWO_PI = 2.0 * np.pi
+KB = 1.380649e-23  # J/K (exact, SI 2019)
 
 
-def _pin_notes(cfg, cr, margin) -> list[str]:
+def _pin_notes(cfg, cr, holding) -> list[str]:
+    """Notes on pinning orders that find no first-order moment on the crystal."""
     notes = []
-    if not margin:
+    if holding is None:
         return notes
     n = cr.positions_m.shape[0]
-    for order, pins in margin["pins"].items():
-        if not pins:
-            notes.append(f"order {order} does not pin this crystal: its order-{order} moment vanishes "
-                         f"(a regular {n}-gon of identical ions feels only multipole orders that are multiples of {n})")
+    for t in cfg.pinning:
+        rel = holding.moments_rel.get(t.order)
+        if rel is not None and rel <= MOMENT_REL and n > 1 and holding.reason.find("axis") < 0:
+            why = ("a pair of identical ions has no odd moment" if n == 2
+                   else f"a regular {n}-gon of identical ions has moments only at orders that are multiples of {n}")
+            notes.append(f"order {t.order} finds no moment on this crystal without the pinning ({why})")
     return notes
 
 
-def crystal_json(cfg, cr, margin) -> dict:
+def crystal_json(cfg, cr, holding) -> dict:
     """JSON-ready description of a crystal, with what it takes to reproduce it."""
     trap_hz = (np.sqrt(cfg.trap.omega_sq(cfg.masses_kg[:1], cfg.charges_c[:1]))[0] / TWO_PI).tolist()
     out = {
@@ -47,15 +52,17 @@ def crystal_json(cfg, cr, margin) -> dict:
                   for f, lab, k, p in zip(cr.modes.freq_hz, cr.modes.labels, cr.modes.kinds, cr.modes.planes)],
         "warnings": list(cr.warnings),
     }
-    if margin is not None:
-        out["libration_hz"] = margin["f_lib_hz"]
-        out["max_angular_acceleration_rad_s2"] = margin["alpha_max_rad_s2"]
-        out["pinned_by_order"] = {str(k): bool(v) for k, v in margin["pins"].items()}
-        out["notes"] = _pin_notes(cfg, cr, margin)
+    if holding is not None:
+        out["pinning_verdict"] = holding.to_dict()
+        out["libration_hz"] = holding.f_lib_hz
+        out["max_angular_acceleration_rad_s2"] = holding.alpha_max_rad_s2
+        out["pinned_by_order"] = {str(t.order): bool(holding.verdict == "pinned" and holding.order == t.order)
+                                  for t in cfg.pinning}
+        out["notes"] = _pin_notes(cfg, cr, holding)
     return out
 
 
-def crystal_text(cfg, cr, margin) -> str:
+def crystal_text(cfg, cr, holding) -> str:
     """Human-readable crystal report."""
     lines = []
     n = cr.positions_m.shape[0]
@@ -81,17 +88,20 @@ def crystal_text(cfg, cr, margin) -> str:
         lines.append(f"  {k:4d}   {fr / 1e3:10.4f}   {lab:<18s} {kind:<14s} {pl}")
     if not any(lab == "libration" for lab in cr.modes.labels) and n > 1:
         lines.append("  (the rotation about z is a free zero mode: reported as L, not listed)")
-    if margin is not None:
+    if holding is not None:
         lines.append("")
         for t in cfg.pinning:
-            pins = margin["pins"].get(t.order, False)
-            lines.append(f"pinning {t.name}: order {t.order}, c = {t.strength:.4g} V/m^{t.order}: "
-                         f"{'pins' if pins else 'does NOT pin'} this crystal (|M_{t.order}| = {margin['moments'][t.order]:.3e} C m^{t.order})")
-        if margin["f_lib_hz"] > 0:
-            lines.append(f"libration frequency (rigid)   {margin['f_lib_hz'] / 1e3:.6g} kHz")
-            alpha = margin["alpha_max_rad_s2"]
+            lines.append(f"pinning {t.name}: order {t.order}, c = {t.strength:.4g} V/m^{t.order}; "
+                         f"|M_{t.order}| / sum|Q| r^{t.order} = {holding.moments_rel.get(t.order, 0.0):.3g} "
+                         f"on the crystal without the pinning")
+        lines.append(f"verdict: {holding.describe()}")
+        if holding.held:
+            lines.append(f"libration frequency (relaxed crystal)   {holding.f_lib_hz / 1e3:.6g} kHz"
+                         f"   (rigid crystal {holding.f_lib_rigid_hz / 1e3:.6g} kHz)")
+            alpha = holding.alpha_max_rad_s2
             lines.append(f"largest angular acceleration before a slip   {alpha:.4e} rad/s^2"
                          f" (an f_rot ramp of {alpha / TWO_PI / 1e6:.4g} kHz/ms)")
-        for note in _pin_notes(cfg, cr, margin):
+            lines.append(f"pinning barrier   {holding.barrier_j / KB * 1e3:.4g} mK x k_B")
+        for note in _pin_notes(cfg, cr, holding):
             lines.append(f"note: {note}")
     return "\n".join(lines)

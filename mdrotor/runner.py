@@ -46,6 +46,7 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
     if chunk == 0:  # auto: about four work items per thread; results do not depend on it
         chunk = int(np.clip(n_traj // (4 * _get_threads()), 32, 256))
     plan = make_plan(cfg)
+    pre = _preflight(plan)
     idx = np.arange(n_traj) if order is None else np.asarray(order)
     pos, vel = initial_states(plan, seed, idx)
     phases = plan.rf_phases(seed, idx) if plan.rf else None
@@ -94,6 +95,8 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         "lag_order": plan.lag_n,
         "status_bits": "1 slipped, 2 lost ion, 4 reordered, 8 non-finite",
         "notes": "; ".join(plan.notes),
+        "preflight_margin_min": pre["margin_min"],
+        "preflight_warnings": "\n".join(pre["warnings"]),
     }
     grid = np.linspace(0.0, sched.duration_s, 1001)
     schedule = {"t_s": grid, "f_rot_hz": sched.f_rot_hz(grid), "theta_rad": sched.theta_rad(grid),
@@ -101,7 +104,9 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
     if len(cfg.pinning):
         schedule["pinning_strength_si"] = np.stack([sched.pinning_scale(grid, p) * t.strength for p, t in enumerate(cfg.pinning)], axis=-1)
     series = _series_arrays(raw.series) if raw.series else None
-    extra = {}
+    from .pinning import preflight_group
+
+    extra = {"preflight": preflight_group(pre)}
     if plan.rf:
         extra["micromotion"] = micromotion_report(plan, raw)
     if plan.noise is not None:
@@ -111,6 +116,22 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         if rates:
             extra["noise"] = rates
     return Result(attrs, initial, stages, series, schedule, extra)
+
+
+def _preflight(plan) -> dict:
+    """The pinning core's preflight (:func:`mdrotor.pinning.preflight`):
+    refuse a spin-up the pinning does not hold unless ``run.force``."""
+    from .errors import PhysicsError
+    from .pinning import preflight
+
+    pre = preflight(plan)
+    if pre["refusal"]:
+        if not plan.cfg.run.force:
+            raise PhysicsError(f"stage.{pre['refusal_stage']}", pre["refusal"] + " (run.force = true, or mdrotor run "
+                               "--force, runs it anyway)", plan.cfg.source)
+        pre["forced"] = True
+        pre["warnings"].insert(0, "forced (run.force): " + pre["refusal"])
+    return pre
 
 
 def micromotion_report(plan, raw) -> dict:
@@ -182,6 +203,13 @@ def summary_dict(res) -> dict:
         v = res.attrs[k]
         out[k] = v.item() if hasattr(v, "item") else v
     out["seed"] = int(res.attrs["seed"])
+    pre = res.extra.get("preflight")
+    if pre is not None:
+        init = pre.get("initial") or {k[len("initial."):]: v for k, v in pre.items() if k.startswith("initial.")}
+        out["preflight"] = {"margin_min": float(pre["margin_min"]), "initial": dict(init),
+                            "warnings": [w for w in str(pre.get("warnings", "")).split("\n") if w],
+                            "stages": [{"stage": s, "verdict": v, "margin": float(mg)} for s, v, mg in
+                                       zip(pre.get("stage", []), pre.get("verdict", []), np.atleast_1d(pre.get("margin", [])))]}
     out["stages"] = {name: {"L_mean_hbar": o.summary["L_mean_hbar"], "L_std_hbar": o.summary["L_std_hbar"],
                             "slip_fraction": o.summary["slip_fraction"], "differential_n_mean": o.summary["differential_n_mean"]}
                      for name, o in res.stages.items()}
@@ -197,6 +225,9 @@ def summary_text(res, path=None) -> str:
         lines.append(f"result: {path}")
     lines.append(f"{a['n_trajectories']} trajectories x {a['n_steps']} steps (dt = {a['dt_s'] * 1e9:.4g} ns, {a['integrator']}), "
                  f"seed {int(a['seed'])}, wall {a['wall_s']:.3g} s, {a['traj_steps_per_s']:.3e} trajectory-steps/s on {a['threads']} thread(s)")
+    pre = res.extra.get("preflight") or {}
+    for w in [w for w in str(pre.get("warnings", "")).split("\n") if w]:
+        lines.append(f"WARNING (preflight): {w}")
     lines.append("")
     lines.append("  stage            t_end (ms)    L mean (hbar)          L spread (hbar)     slipped    diff. phonons")
     for name, o in res.stages.items():
@@ -246,7 +277,7 @@ def cli_run(args) -> int:
     from .config import load_config
     from .errors import InputError
 
-    ov = list(args.overrides)
+    ov = list(args.overrides) + (["run.force=true"] if getattr(args, "force", False) else [])
     cfg = load_config(args.config, ov)
     if args.trajectories is not None and args.trajectories < 1:
         raise InputError("--trajectories", "expected a positive number of trajectories", "command line")
@@ -260,6 +291,9 @@ def cli_run(args) -> int:
     res = run(cfg, trajectories=args.trajectories, seed=args.seed, threads=args.threads, progress=show)
     if res.attrs.get("notes"):
         print(f"mdrotor: warning: {res.attrs['notes']}", file=sys.stderr)
+    for w in str(res.attrs.get("preflight_warnings", "")).split("\n"):
+        if w:
+            print(f"mdrotor: warning: {w}", file=sys.stderr)
     res.save(out)
     if args.json:
         d = summary_dict(res)

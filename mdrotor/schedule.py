@@ -91,6 +91,40 @@ class Profile:
             return (s + np.expm1(-s * r) / r) / -math.expm1(-r)
         raise ValueError(self.shape)
 
+    def dg(self, s: np.ndarray) -> np.ndarray:
+        """dg/ds of the shape (analytic)."""
+        s = np.asarray(s, dtype=float)
+        if self.shape == "hold":
+            return np.zeros_like(s)
+        if self.shape == "linear":
+            return np.ones_like(s)
+        if self.shape == "cosine":
+            return 0.5 * np.pi * np.sin(np.pi * s)
+        if self.shape == "smoothstep":
+            return 30.0 * s * s * (1.0 - s) ** 2
+        if self.shape == "tanh":
+            w, h = self.steepness, math.tanh(self.steepness / 2)
+            return w / np.cosh(w * (s - 0.5)) ** 2 / (2 * h)
+        if self.shape == "exponential":
+            r = self.duration_s / self.tau_s
+            return r * np.exp(-s * r) / -math.expm1(-r)
+        raise ValueError(self.shape)
+
+    def rate(self, t_local: np.ndarray) -> np.ndarray:
+        """d value / dt (SI value per s), analytic per shape (the table's
+        interpolant differentiated exactly)."""
+        t = np.clip(np.asarray(t_local, dtype=float), 0.0, self.duration_s)
+        if self.shape == "table":
+            return self._table().derivative()(t)
+        return (self.v1 - self.v0) * self.dg(t / self.duration_s) / self.duration_s
+
+    def extremes(self) -> tuple:
+        """(smallest, largest) value over the stage. Every shape is monotone
+        and a table's interpolant is shape-preserving (PCHIP), so they sit
+        at the ends or at the knots."""
+        v = [self.v0, self.v1, *self.table_v]
+        return min(v), max(v)
+
     def value(self, t_local: np.ndarray) -> np.ndarray:
         t = np.clip(np.asarray(t_local, dtype=float), 0.0, self.duration_s)
         if self.shape == "table":
@@ -173,9 +207,64 @@ class Schedule:
             out[m] = offsets[i] + st.f_rot.integral(t[m] - b[i])
         return 2.0 * np.pi * out
 
+    def f_rot_rate_hz_per_s(self, t) -> np.ndarray:
+        """d f_rot / dt (Hz/s) at absolute times t (the rate inside the stage
+        that holds t; at a boundary, the later stage's)."""
+        t, k, b = self._locate(t)
+        out = np.empty(t.shape)
+        for i, st in enumerate(self.stages):
+            m = k == i
+            out[m] = st.f_rot.rate(t[m] - b[i])
+        return out
+
+    def angular_acceleration_rad_s2(self, t) -> np.ndarray:
+        """The angular acceleration the schedule asks of the pinning, 2 pi d f_rot / dt (rad/s^2)."""
+        return 2.0 * np.pi * self.f_rot_rate_hz_per_s(t)
+
     def max_f_rot_hz(self) -> float:
-        grid = np.linspace(0.0, self.duration_s, 4001)
-        return float(np.max(np.abs(self.f_rot_hz(grid))))
+        """Largest |f_rot| over the schedule (Hz), exact (:meth:`Profile.extremes`)."""
+        return max(max(abs(v) for v in st.f_rot.extremes()) for st in self.stages)
+
+    def peak_pinning_scale(self, term: int = 0) -> float:
+        """Largest |pinning multiplier| of a term over the schedule."""
+        return max(max(abs(v) for v in st.pinning[term].extremes()) for st in self.stages)
+
+    def spins(self, stage: int) -> bool:
+        """True when f_rot changes during stage ``stage`` (a spin-up or spin-down)."""
+        lo, hi = self.stages[stage].f_rot.extremes()
+        return hi != lo
+
+    def stage_samples(self, stage: int, n: int = 2001) -> dict:
+        """A stage sampled on ``n`` points: absolute times ``t_s``,
+        ``f_rot_hz``, ``alpha_rad_s2`` (2 pi d f_rot/dt, analytic) and
+        ``scale`` ((n, P) pinning multipliers, one column per term)."""
+        st = self.stages[stage]
+        tl = np.linspace(0.0, st.duration_s, n)
+        scales = np.stack([np.asarray(p.value(tl), dtype=float) for p in st.pinning], axis=-1) if st.pinning \
+            else np.zeros((n, 0))
+        return {"t_s": self.boundaries_s[stage] + tl, "f_rot_hz": np.asarray(st.f_rot.value(tl), dtype=float),
+                "alpha_rad_s2": 2.0 * np.pi * np.asarray(st.f_rot.rate(tl), dtype=float), "scale": scales}
+
+    def acceleration_profile(self, term: int = 0, n_per_stage: int = 4001) -> dict:
+        """The angular acceleration asked over the whole schedule.
+
+        Returns
+        -------
+        dict with arrays ``t_s``, ``alpha_rad_s2`` (2 pi d f_rot/dt),
+        ``scale`` (multiplier of pinning term ``term``, 1 without pinning),
+        ``f_rot_hz``; and ``alpha_max_rad_s2``, ``t_alpha_max_s``,
+        ``f_max_hz``, ``t_f_max_s``, ``scale_at_f_max``.
+        """
+        parts = [self.stage_samples(i, n_per_stage) for i in range(len(self.stages))]
+        t = np.concatenate([p["t_s"] for p in parts])
+        a = np.concatenate([p["alpha_rad_s2"] for p in parts])
+        f = np.concatenate([p["f_rot_hz"] for p in parts])
+        s = np.concatenate([p["scale"][:, term] if p["scale"].shape[1] > term else np.ones(len(p["t_s"])) for p in parts])
+        ka = int(np.argmax(np.abs(a)))
+        kf = int(np.argmax(np.abs(f)))
+        return {"t_s": t, "alpha_rad_s2": a, "scale": s, "f_rot_hz": f, "alpha_max_rad_s2": float(abs(a[ka])),
+                "t_alpha_max_s": float(t[ka]), "f_max_hz": float(f[kf]), "t_f_max_s": float(t[kf]),
+                "scale_at_f_max": float(s[kf])}
 
 
 # ---------------------------------------------------------------------------

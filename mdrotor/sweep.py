@@ -316,19 +316,11 @@ def point_metrics(res, cfg=None) -> dict:
 
 def schedule_peaks(cfg) -> dict:
     """Largest |f_rot| (Hz) and pinning strength per term (SI) of a config's
-    schedule. Every shape is monotone within a stage and tables use a
-    shape-preserving interpolant, so the peaks sit at stage ends or knots."""
-    out = {}
-    f = [abs(cfg.f_start_hz)]
-    for st in cfg.schedule.stages:
-        f += [abs(st.f_rot.v0), abs(st.f_rot.v1)] + [abs(v) for v in st.f_rot.table_v]
-    out["f_rot_peak_hz"] = max(f)
+    schedule (the schedule's own peaks, :meth:`mdrotor.schedule.Schedule.max_f_rot_hz`)."""
+    sched = cfg.schedule
+    out = {"f_rot_peak_hz": max(abs(cfg.f_start_hz), sched.max_f_rot_hz())}
     for j, term in enumerate(cfg.pinning):
-        k = [1.0]
-        for st in cfg.schedule.stages:
-            p = st.pinning[j]
-            k += [abs(p.v0), abs(p.v1)] + [abs(v) for v in p.table_v]
-        out[f"pinning_peak.{term.name}"] = max(k) * abs(term.strength)
+        out[f"pinning_peak.{term.name}"] = max(1.0, sched.peak_pinning_scale(j)) * abs(term.strength)
     return out
 
 

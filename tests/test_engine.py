@@ -69,7 +69,7 @@ def test_angular_momentum_conserved_to_rounding():
     conservation of quadratic invariants by symplectic Runge-Kutta-Nystrom)."""
     plan = thermal_plan(4, "2 mK")
     pos, vel = initial_states(plan, 1, np.arange(16))
-    from mdrotor.observables import angular_momentum
+    from mdrotor.frame import angular_momentum
 
     l0 = angular_momentum(pos, vel, plan.masses)[0]
     step(plan, pos, vel, 20000)
