@@ -384,6 +384,7 @@ class Holding:
     barrier_j: float = 0.0
     torque_rel: float = 0.0
     curve: HeldCurve | None = field(default=None, repr=False)
+    positions_off_m: np.ndarray | None = field(default=None, repr=False)
 
     @property
     def held(self) -> bool:
@@ -456,8 +457,9 @@ def assess(pot_on, pot_off, terms, *, start=None, seed: int = 0, n_phi: int = N_
     if len(m) < 2:
         return Holding("none", None, None, "one ion has no orientation to hold", {}, **base)
     if not active:
-        return Holding("none", None, None, "there is no pinning (every strength is 0)", {}, **base)
+        return Holding("none", None, None, "the pinning is off (every strength is 0)", {}, **base)
     r_off = _equilibrium(pot_off, r_on, seed)
+    base["positions_off_m"] = r_off
     rel = {n: moment_rel(r_off, m, q, n) for n in orders}
     if on_axis(r_off, m) or on_axis(r_on, m):
         return Holding("none", None, None, "the ions lie on the rotation axis (no in-plane moment of any order)", rel, **base)
@@ -540,7 +542,7 @@ def pinning_energy_harmonics(cfg, f_rot_hz: float = 0.0, *, max_order: int = 12,
 
 __all__ = ["MOMENT_REL", "HELD_REL", "AXIS_REL", "BARRIER_KT_MIN", "N_PHI", "VERDICTS", "moments", "moment_rel",
            "lowest_moment_order", "on_axis", "relax_at_angle", "HeldCurve", "held_curve", "Holding", "assess",
-           "assess_config", "config_terms", "pinning_energy_harmonics", "preflight"]
+           "assess_config", "config_terms", "pinning_energy_harmonics", "schedule_margin", "preflight"]
 
 
 
@@ -556,6 +558,34 @@ def _scale_power(h: Holding, orders) -> float:
         return 1.0
     n = orders[h.term] if h.term is not None else 0
     return float(h.order // n) if n and h.order and h.order % n == 0 else 2.0
+
+
+def schedule_margin(h: Holding, profile: dict, scale_ref: float, orders) -> dict:
+    """Smallest held / asked angular acceleration over a sampled schedule.
+
+    ``profile``: arrays ``t_s``, ``alpha_rad_s2`` (asked, 2 pi d f_rot/dt)
+    and ``scale`` (the multiplier of the holding term); ``h`` was assessed at
+    multiplier ``scale_ref``. The held acceleration at multiplier s is
+    h's (forward for alpha > 0, backward for alpha < 0) times
+    (s / scale_ref)^p (:func:`_scale_power`).
+
+    Returns ``ratio`` (inf when nothing is asked), ``t_s``,
+    ``needed_rad_s2`` and ``held_rad_s2`` where the ratio is smallest.
+    """
+    a = np.asarray(profile["alpha_rad_s2"], dtype=float)
+    s = np.abs(np.asarray(profile["scale"], dtype=float))
+    t = np.asarray(profile["t_s"], dtype=float)
+    amax = float(np.max(np.abs(a))) if len(a) else 0.0
+    if amax <= 0.0:
+        return {"ratio": float("inf"), "t_s": None, "needed_rad_s2": 0.0, "held_rad_s2": None}
+    p = _scale_power(h, orders)
+    held = np.where(a >= 0, h.alpha_forward_rad_s2, h.alpha_backward_rad_s2)
+    held = held * (s / scale_ref) ** p if scale_ref > 0 else np.zeros(len(a))
+    act = np.abs(a) > 1e-9 * amax
+    ratio = np.full(len(a), np.inf)
+    ratio[act] = held[act] / np.abs(a[act])
+    j = int(np.argmin(ratio))
+    return {"ratio": float(ratio[j]), "t_s": float(t[j]), "needed_rad_s2": float(abs(a[j])), "held_rad_s2": float(held[j])}
 
 
 def preflight(plan, *, n_samples: int = 401) -> dict:
@@ -640,22 +670,15 @@ def preflight(plan, *, n_samples: int = 401) -> dict:
                 warnings_.append(f"stage '{st.name}' changes f_rot, but one ion has no orientation: the spin-up turns nothing")
             stages.append(entry)
             continue
-        p = _scale_power(h, orders)
-        s_ref = float(abs(s_k[h.term])) if len(s_k) else 0.0
-        s_all = np.abs(smp["scale"][:, h.term]) if smp["scale"].shape[1] else np.zeros(len(a))
-        held = np.where(a >= 0, h.alpha_forward_rad_s2, h.alpha_backward_rad_s2) * (s_all / s_ref) ** p if s_ref > 0 \
-            else np.zeros(len(a))
-        act = np.abs(a) > 1e-9 * np.max(np.abs(a))
-        ratio = np.full(len(a), np.inf)
-        ratio[act] = held[act] / np.abs(a[act])
-        j = int(np.argmin(ratio))
-        entry.update(alpha_held_rad_s2=float(h.alpha_held_rad_s2(a[k])), margin=float(ratio[j]),
-                     t_margin_s=float(smp["t_s"][j]))
-        if ratio[j] < 1.0:
-            warnings_.append(f"stage '{st.name}' asks {abs(a[j]):.4g} rad/s^2 ({abs(a[j]) / TWO_PI / 1e6:.4g} kHz/ms) at "
-                             f"t = {smp['t_s'][j] * 1e3:.4g} ms, but the pinning holds only {held[j]:.4g} rad/s^2 "
-                             f"({held[j] / TWO_PI / 1e6:.4g} kHz/ms) there (margin {ratio[j]:.3g}, "
-                             f"{h.verdict}): expect slips")
+        s_all = smp["scale"][:, h.term] if smp["scale"].shape[1] else np.zeros(len(a))
+        mg = schedule_margin(h, {"t_s": smp["t_s"], "alpha_rad_s2": a, "scale": s_all},
+                             float(abs(s_k[h.term])) if len(s_k) else 0.0, orders)
+        entry.update(alpha_held_rad_s2=float(h.alpha_held_rad_s2(a[k])), margin=mg["ratio"], t_margin_s=mg["t_s"])
+        if mg["ratio"] < 1.0:
+            warnings_.append(f"stage '{st.name}' asks {mg['needed_rad_s2']:.4g} rad/s^2 "
+                             f"({mg['needed_rad_s2'] / TWO_PI / 1e6:.4g} kHz/ms) at t = {mg['t_s'] * 1e3:.4g} ms, but the "
+                             f"pinning holds only {mg['held_rad_s2']:.4g} rad/s^2 ({mg['held_rad_s2'] / TWO_PI / 1e6:.4g} "
+                             f"kHz/ms) there (margin {mg['ratio']:.3g}, {h.verdict}): expect slips")
         stages.append(entry)
     margins = [s["margin"] for s in stages]
     return {"initial": init, "stages": stages, "margin_min": float(min(margins)) if margins else float("inf"),

@@ -67,7 +67,7 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
     from . import coherence as coh
     from . import rotor
     from .errors import InputError
-    from .multipole import moment
+    from . import pinning
     from .statics import compute_crystal, model_potential
 
     p = Path(source)
@@ -95,10 +95,9 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
     t_ex = float(rotor.exchange_time_s(I, k, n_ions))
     t_rev = float(rotor.revival_time_s(I, k))
     # the lowest multipole order that the crystal feels (its noise torques kick L by n quanta)
-    xy = cr.positions_m[:, :2] - np.sum(cr.masses_kg[:, None] * cr.positions_m[:, :2], axis=0) / np.sum(cr.masses_kg)
-    ref = [np.sum(np.abs(cr.charges_c) * np.hypot(*xy.T) ** n) for n in range(2, 13)]
-    order = next((n for n, r in zip(range(2, 13), ref) if abs(moment(xy, cr.charges_c, n)) > 1e-6 * r), 2)
-    m_n = moment(xy, cr.charges_c, order)
+    order = pinning.lowest_moment_order(cr.positions_m, cr.masses_kg, cr.charges_c) or 2
+    m_n = pinning.moments(cr.positions_m, cr.masses_kg, cr.charges_c, [order])[order]
+    holding = pinning.assess_config(cfg, f, scales=scales, start=cr.positions_m) if cfg.pinning else None
     # D: given > fitted from the run > analytic from the config's noise
     analytic = None
     if cfg.noise:
@@ -127,6 +126,8 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
         "exchange_time_s": t_ex, "revival_time_s": t_rev,
         "diffusion_hbar2_per_s": D, "diffusion_source": d_src, "noise_order": order, "kick_quanta": kick,
     }
+    if holding is not None:
+        out["pinning"] = holding.to_dict()
     if fitted is not None:
         out["diffusion_fitted_hbar2_per_s"], out["diffusion_fitted_err_hbar2_per_s"] = fitted
     if analytic is not None:
@@ -157,7 +158,12 @@ def text(d: dict) -> str:
              + (f", spread {d['L_std_hbar']:.4g} hbar" if d['L_std_hbar'] else " (no spread from a config)"),
              f"  moment of inertia I = {d['moment_of_inertia_kg_m2']:.6e} kg m^2 (centrifugally stretched), hbar/(2 pi I) = {d['hbar_over_I_hz']:.6g} Hz",
              f"  spin statistics: {d['statistics']}; allowed L = {d['allowed_L_residue']} mod {d['allowed_L_mod']}",
-             "", "  rotational lines L -> L + dL:"]
+             ]
+    if "pinning" in d:
+        pn = d["pinning"]
+        lines.append(f"  pinning at the end of the schedule: {pn['description']}"
+                     + (f"; libration {pn['libration_hz'] / 1e3:.6g} kHz" if pn["verdict"] != "none" else ""))
+    lines += ["", "  rotational lines L -> L + dL:"]
     for ln in d["lines"]:
         lines.append(f"    dL = {ln['dL']}: {ln['freq_hz'] / 1e3:14.6f} kHz, width {ln['width_hz']:.4g} Hz")
     lines += ["",

@@ -15,47 +15,39 @@ config (crystal, pinning order and strength, schedule) and reports:
    pseudopotential and whose pinning is the achieved leading multipole;
 5. whether the crystal is pinned, the libration frequency, the largest
    angular acceleration before a slip against the one the schedule asks
-   for, and what the stray multipoles do.
+   for (:mod:`mdrotor.pinning`), and what the stray multipoles do;
+6. the verdict: problems are a target out of reach, a crystal not pinned
+   at first order, a margin below 1, a pinning barrier below
+   :data:`mdrotor.pinning.BARRIER_KT_MIN` k_B T_initial, a run config
+   whose trap differs from the layout's by more than
+   :data:`TRAP_MISMATCH_REL`, an unstable crystal at the fastest rotation.
 
-Pinned or not (first order, the moment argument)
--------------------------------------------------
-The pinning voltages are V_e(theta) = s_e + A_e cos(n theta - phi_e), so
-for a rigid crystal turned by phi about the trap axis the pattern's energy
-is Re[W(phi) e^{-i n theta}], W(phi) = sum_e A_e e^{i phi_e} sum_i Q_i
-phi_e(R(phi) r_i) (phi_e the potential per volt of channel e). Expanding W
-in harmonics, W = sum_m w_m e^{i m phi}, and writing the crystal's angle as
-phi = theta - lambda (lag lambda behind the pattern) gives terms
-Re[w_m e^{i (m - n) theta} e^{-i m lambda}]: only m = n is static in the
-pattern's frame and pins; the others ripple at |m - n| f_rot. The pinning
-torque amplitude is n |w_n| (a Fourier coefficient of the exact field, not
-of a fit). A regular N-gon has w_m = 0 unless N divides m (its order-m
-moments vanish, the sum of N-th roots of unity; common practice), so an
-order-n pattern pins it only when N divides n. The check evaluates
-n |w_n| on the crystal in the trap *without* the rotating voltages (first
-order in the pinning) and calls the crystal pinned when it exceeds
-:data:`PINNED_REL` of the torque the same strength would exert if the
-order-n moments of all ions added up, n c sum_i |Q_i| rho_i^n. (Beyond
-first order the pinning distorts the crystal, and a distorted N-gon can be
-held weakly by a mismatched order: by symmetry its energy then varies only
-as the cube of the strength. The check reports first order.)
+Pinned or not, libration, held acceleration (the pinning core)
+---------------------------------------------------------------
+The verdict, the libration of the relaxed crystal, the largest held angular
+acceleration, the barrier and the margin against the schedule come from
+:mod:`mdrotor.pinning`, the same core that ``mdrotor crystal``, the run's
+preflight and ``mdrotor rotor`` call: the moments of the crystal without
+the rotating voltages (static voltages, pseudopotential and stray field
+only) decide "pinned" (first order) against "held only through its
+deformation" against "not held"; the relaxed held curve in the full field
+at the configured pattern angle gives the rest. The margin is the smallest
+held / asked over the schedule, of the lab-frame crystal and of the crystal
+rotating at the fastest f_rot, whichever is smaller.
 
-Margin (rigid crystal, every pattern angle)
--------------------------------------------
+Rigid scan (torque harmonics)
+-----------------------------
 For the crystal at its pinned equilibrium, held rigid and turned by phi,
-with the pattern at theta, U(phi, theta) = U_fixed(phi) + Re[W(phi) e^{-i n
-theta}] (U_fixed: pseudopotential, static voltages, stray field; the
-Coulomb energy does not change). The torque is tau = -dU/dphi (spectral
-derivatives on a periodic grid in phi). For each pattern angle theta the
-crystal sits at the lag of least U; spun up at angular acceleration alpha
-it needs tau = I alpha (the pseudo-torque in the accelerating pattern's
-frame), which holds up to the first maximum of tau on the way forward:
-alpha_max = tau_max / I, the worst over theta. The rigid libration
-frequency is sqrt(d^2U/dphi^2 / I) / (2 pi) at the well bottom (Landau and
-Lifshitz, Mechanics, section 21); the non-rigid one is the normal mode
-labelled "libration" (:func:`mdrotor.statics.normal_modes`). The schedule
-needs |2 pi d f_rot / dt|; the margin is min over t of s(t) alpha_max /
-|2 pi d f_rot/dt| with s(t) the pinning multiplier (the held acceleration
-scales with the strength when nothing static breaks the symmetry).
+the pattern's energy is Re[W(phi) e^{-i n theta}] with V_e(theta) = s_e +
+A_e cos(n theta - phi_e) and W(phi) = sum_e A_e e^{i phi_e} sum_i Q_i
+phi_e(R(phi) r_i) (phi_e the potential per volt of channel e). Expanding
+W = sum_m w_m e^{i m phi} and writing phi = theta - lambda gives terms
+Re[w_m e^{i (m - n) theta} e^{-i m lambda}]: only m = n is static in the
+pattern's frame; the others ripple at |m - n| f_rot and are reported with
+the static torques (pseudopotential, static voltages, stray field), the
+rigid libration over a turn of the pattern and the lag ripple. The torque
+is evaluated from the fields, energies and curvatures by spectral
+integration and differentiation in phi.
 
 Rotating frame
 --------------
@@ -85,15 +77,16 @@ from .multipoles import fit_multipoles
 from .pseudo import rf_pseudopotential
 from .solve import CAUTION, solve_rotating
 
-__all__ = ["RFPseudoTerm", "ElectrodeTerm", "full_potential", "rigid_scan", "spinup_need", "resolve_target",
-           "design_check", "check_text", "PINNED_REL", "CAUTION"]
+__all__ = ["RFPseudoTerm", "ElectrodeTerm", "full_potential", "rigid_scan", "resolve_target",
+           "design_check", "check_text", "TRAP_MISMATCH_REL", "CAUTION"]
 
 TWO_PI = 2.0 * math.pi
 K_B = sc.k
-#: A crystal is called pinned when the first-order pinning torque exceeds this
-#: fraction of n c sum_i |Q_i| rho_i^n (all order-n moments adding up). A
-#: mismatched regular polygon gives ~1e-10 (rounding); a matched one ~1.
-PINNED_REL = 1e-3
+#: The run config's secular frequencies may differ from the layout's by this
+#: fraction before the check calls it a problem (the libration and the held
+#: acceleration of a crystal scale with the trap; a few per cent is what a
+#: calibrated trap frequency is known to; common practice, no source).
+TRAP_MISMATCH_REL = 0.02
 #: Order of the multipole fit (as for a run's [pinning] layout).
 FIT_ORDER = 6
 #: Grid of crystal angles for the rigid scan (a power of 2 for the FFT).
@@ -419,50 +412,6 @@ def rigid_scan(layout, pseudo: RFPseudoTerm, positions_m, masses_kg, charges_c, 
 # what the schedule asks for
 
 
-def spinup_need(schedule, term: int = 0, n_per_stage: int = 4001) -> dict:
-    """Angular acceleration 2 pi d f_rot / dt the schedule asks for.
-
-    Each stage is sampled on its own grid of ``n_per_stage`` points (the
-    profiles are smooth inside a stage; a kink at a boundary is not
-    differentiated across), derivative by second-order differences.
-
-    Returns
-    -------
-    dict with arrays ``t_s``, ``alpha_rad_s2``, ``scale`` (pinning
-    multiplier of ``term``), ``f_rot_hz``, and ``alpha_max_rad_s2``,
-    ``t_alpha_max_s``, ``f_max_hz``, ``t_f_max_s``.
-    """
-    ts, al, sc_, fs = [], [], [], []
-    b = schedule.boundaries_s
-    for i, st in enumerate(schedule.stages):
-        tl = np.linspace(0.0, st.duration_s, n_per_stage)
-        f = np.asarray(st.f_rot.value(tl), dtype=float)
-        ts.append(b[i] + tl)
-        fs.append(f)
-        al.append(TWO_PI * np.gradient(f, tl))
-        sc_.append(np.asarray(st.pinning[term].value(tl), dtype=float) if len(st.pinning) > term else np.ones_like(tl))
-    t, a, s, f = (np.concatenate(x) for x in (ts, al, sc_, fs))
-    ka = int(np.argmax(np.abs(a)))
-    kf = int(np.argmax(np.abs(f)))
-    return {"t_s": t, "alpha_rad_s2": a, "scale": s, "f_rot_hz": f, "alpha_max_rad_s2": float(abs(a[ka])),
-            "t_alpha_max_s": float(t[ka]), "f_max_hz": float(f[kf]), "t_f_max_s": float(t[kf]),
-            "scale_at_f_max": float(s[kf])}
-
-
-def _margin(need: dict, alpha_fwd: float, alpha_back: float) -> dict:
-    """Smallest held / needed acceleration over the schedule (held scales with the multiplier)."""
-    a, s, t = need["alpha_rad_s2"], need["scale"], need["t_s"]
-    amax = need["alpha_max_rad_s2"]
-    if amax <= 0.0:
-        return {"ratio": float("inf"), "t_s": None, "needed_rad_s2": 0.0, "held_rad_s2": None}
-    act = np.abs(a) > 1e-9 * amax
-    held = np.where(a > 0, alpha_fwd, alpha_back) * np.abs(s)
-    ratio = np.full(a.shape, np.inf)
-    ratio[act] = held[act] / np.abs(a[act])
-    k = int(np.argmin(ratio))
-    return {"ratio": float(ratio[k]), "t_s": float(t[k]), "needed_rad_s2": float(abs(a[k])), "held_rad_s2": float(held[k])}
-
-
 # ----------------------------------------------------------------------------
 # target, configs
 
@@ -681,7 +630,8 @@ def design_check(layout, cfg=None, *, n_phi: int = N_PHI, n_rows: int = 128) -> 
         JSON-ready; see :func:`check_text` for the meaning of the entries.
         Always carries ``caution``.
     """
-    from ..statics import compute_crystal, find_equilibrium, model_potential, normal_modes, pinning_margin
+    from .. import pinning as pin
+    from ..statics import compute_crystal, model_potential, normal_modes
 
     ds = prepare_design(layout, cfg)
     notes, target, pt, pseudo, table, plan = ds.notes, ds.target, ds.trap, ds.pseudo, ds.table, ds.plan
@@ -697,6 +647,7 @@ def design_check(layout, cfg=None, *, n_phi: int = N_PHI, n_rows: int = 128) -> 
         f_cfg = np.sqrt(run_cfg.trap.omega_sq(masses[:1], charges[:1]))[0] / TWO_PI
         out["rf"]["run_config_secular_xyz_hz"] = [float(x) for x in f_cfg]
         dev = float(np.max(np.abs(f_cfg / f_xyz - 1.0)))
+        out["rf"]["run_config_mismatch_rel"] = dev
         if dev > 0.01:
             notes.append(f"the run config's trap frequencies differ from the layout's pseudopotential by up to "
                          f"{dev * 100:.3g} %; the check uses the layout's")
@@ -706,6 +657,12 @@ def design_check(layout, cfg=None, *, n_phi: int = N_PHI, n_rows: int = 128) -> 
     out["plan"]["fit_residual_v"] = plan.fit_residual_v
     out["plan"]["crystal_radius_m"] = plan.crystal_radius_m
     verdict = []
+    dev = out["rf"].get("run_config_mismatch_rel", 0.0)
+    if dev > TRAP_MISMATCH_REL:
+        fc, fl = out["rf"]["run_config_secular_xyz_hz"], out["rf"]["secular_xyz_hz"]
+        verdict.append(f"the run config's trap ({', '.join(f'{x / 1e6:.4g}' for x in fc)} MHz) differs from the layout's "
+                       f"({', '.join(f'{x / 1e6:.4g}' for x in fl)} MHz) by {dev * 100:.3g} %, above "
+                       f"{TRAP_MISMATCH_REL * 100:g} %: the run would simulate another trap than these electrodes make")
     if not plan.reached:
         verdict.append(plan.shortfall_text())
     if cfg is None:
@@ -721,38 +678,30 @@ def design_check(layout, cfg=None, *, n_phi: int = N_PHI, n_rows: int = 128) -> 
         cr_fit = compute_crystal(model_potential(fit_cfg), 0.0, start=ds.fitted_crystal.positions_m)
     except PhysicsError as e:
         raise e.with_source(src_fit)
-    m_fit = pinning_margin(cr_fit, cr_fit.potential.multipoles)
+    hold_fit = pin.assess_config(fit_cfg, 0.0, start=cr_fit.positions_m)
     stray = np.asarray(cfg.trap.stray_field_v_per_m, dtype=float)
-    # first order: the crystal without the rotating voltages
+    # the pinning core's verdict: the crystal without the rotating voltages
+    # (first order) and the relaxed held curve with them, lab frame
     pot_off = full_potential(layout, pseudo, masses, charges, plan.static_v, stray_v_per_m=stray)
-    try:
-        eq_off = find_equilibrium(pot_off, start=cr_fit.positions_m)
-    except PhysicsError as e:
-        raise e.with_source(cfg.source)
-    scan_off = rigid_scan(layout, pseudo, eq_off.positions_m, masses, charges, plan, angle_rad=angle, scale=1.0,
-                          stray_v_per_m=stray, n_phi=max(4 * n + 8, n_phi // 4), n_rows=8)
-    pinned = bool(scan_off["pinning_rel"] > PINNED_REL)
-    z0 = eq_off.positions_m[:, 0] + 1j * eq_off.positions_m[:, 1]
-    rho0 = np.abs(z0)
-    moments = {}
-    for m_ in range(1, 7):
-        mm = abs(np.sum(charges * z0 ** m_)) / max(float(np.sum(np.abs(charges) * rho0 ** m_)), 1e-300)
-        moments[m_] = float(mm)
-    lowest = next((m_ for m_ in range(2, 7) if moments[m_] > PINNED_REL), None)
-    full = {"pinned": pinned, "order": n if pinned else None, "first_order_rel": scan_off["pinning_rel"],
-            "moments_rel": {str(k): v for k, v in moments.items()}, "lowest_moment_order": lowest}
-    if not pinned:
-        verdict.append(f"the crystal is not pinned by the order-{n} pattern (first-order torque "
-                       f"{scan_off['pinning_rel']:.2g} of n c sum|Q| r^n; its order-{n} moment vanishes"
-                       + (f"; its lowest in-plane moment is order {lowest}" if lowest else "") + ")")
-    # the pinned equilibrium in the full field, lab frame
     V0 = plan_voltages(plan, angle, 1.0)
     pot_on = full_potential(layout, pseudo, masses, charges, V0, stray_v_per_m=stray)
     try:
-        eq_on = find_equilibrium(pot_on, start=cr_fit.positions_m)
+        hold = pin.assess(pot_on, pot_off, [(n, c_ach)], start=cr_fit.positions_m)
     except PhysicsError as e:
         raise e.with_source(cfg.source)
-    pos = eq_on.positions_m
+    pinned = hold.held
+    moments = {m_: pin.moment_rel(hold.positions_off_m, masses, charges, m_) for m_ in range(1, 7)}
+    lowest = pin.lowest_moment_order(hold.positions_off_m, masses, charges, range(2, 7))
+    full = {"pinned": hold.verdict == "pinned", "held": pinned, "verdict": hold.to_dict(),
+            "order": hold.order if pinned else None, "first_order_rel": moments[n],
+            "moments_rel": {str(k): v for k, v in moments.items()}, "lowest_moment_order": lowest}
+    if hold.verdict == "none":
+        verdict.append(f"the crystal is not held by the order-{n} pattern: {hold.reason}"
+                       + (f"; its lowest in-plane moment is order {lowest}" if lowest else ""))
+    elif hold.verdict == "deformation":
+        verdict.append(f"the order-{n} pattern finds no moment on the crystal: it is {hold.describe()}"
+                       + (f"; its lowest in-plane moment is order {lowest}" if lowest else ""))
+    pos = hold.positions_m
     f_lib_mode = None
     modes_lab = None
     if pinned:
@@ -768,24 +717,26 @@ def design_check(layout, cfg=None, *, n_phi: int = N_PHI, n_rows: int = 128) -> 
     com = np.sum(masses[:, None] * pos, axis=0) / np.sum(masses)
     rho = np.hypot(pos[:, 0], pos[:, 1])
     lab = {
-        "positions_m": pos.tolist(), "energy_j": eq_on.energy_j, "radius_m": float(rho.max()),
+        "positions_m": pos.tolist(), "energy_j": float(pot_on.energy(pos)), "radius_m": float(rho.max()),
         "moment_of_inertia_kg_m2": scan["I_kg_m2"], "f_lib_mode_hz": f_lib_mode,
         "f_lib_rigid_hz": scan["f_lib_rigid_hz"] if pinned else None,
-        "alpha_forward_rad_s2": scan["alpha_forward_rad_s2"] if pinned else 0.0,
-        "alpha_backward_rad_s2": scan["alpha_backward_rad_s2"] if pinned else 0.0,
-        "barrier_k": scan["barrier_k"] if pinned else 0.0,
+        "f_lib_held_hz": hold.f_lib_hz,
+        "alpha_forward_rad_s2": hold.alpha_forward_rad_s2,
+        "alpha_backward_rad_s2": hold.alpha_backward_rad_s2,
+        "barrier_k": hold.barrier_j / K_B,
         "pinning_torque_n_m": scan["tau_pin_n_m"], "pinning_rel": scan["pinning_rel"], "modes": modes_lab,
     }
     full["lab"] = lab
     f_lib_fit_mode = _libration(cr_fit)
     fitted = {"config_source": src_fit, "strength_si": c_ach, "angle_rad": angle_fit,
               "trap_xyz_hz": [float(x) for x in f_xyz], "positions_m": cr_fit.positions_m.tolist(),
-              "f_lib_rigid_hz": m_fit["f_lib_hz"], "f_lib_mode_hz": f_lib_fit_mode,
-              "alpha_max_rad_s2": m_fit["alpha_max_rad_s2"], "config_text": fit_cfg.text}
+              "f_lib_rigid_hz": hold_fit.f_lib_rigid_hz, "f_lib_held_hz": hold_fit.f_lib_hz, "f_lib_mode_hz": f_lib_fit_mode,
+              "alpha_max_rad_s2": hold_fit.alpha_forward_rad_s2, "verdict": hold_fit.verdict, "config_text": fit_cfg.text}
     cmp_ = {"max_position_difference_m": _match(pos, cr_fit.positions_m)}
-    if pinned and m_fit["f_lib_hz"] > 0:
-        cmp_["f_lib_rigid_rel"] = scan["f_lib_rigid_hz"]["at_start"] / m_fit["f_lib_hz"] - 1.0
-        cmp_["alpha_rel"] = scan["alpha_forward_rad_s2"] / m_fit["alpha_max_rad_s2"] - 1.0
+    if pinned and hold_fit.f_lib_hz > 0:
+        cmp_["f_lib_rigid_rel"] = scan["f_lib_rigid_hz"]["at_start"] / hold_fit.f_lib_rigid_hz - 1.0
+        cmp_["f_lib_held_rel"] = hold.f_lib_hz / hold_fit.f_lib_hz - 1.0
+        cmp_["alpha_rel"] = hold.alpha_forward_rad_s2 / hold_fit.alpha_forward_rad_s2 - 1.0
         if f_lib_mode and f_lib_fit_mode:
             cmp_["f_lib_mode_rel"] = f_lib_mode / f_lib_fit_mode - 1.0
     # what the leading-multipole picture leaves out: the order-n torque of the
@@ -809,42 +760,56 @@ def design_check(layout, cfg=None, *, n_phi: int = N_PHI, n_rows: int = 128) -> 
         notes.append(f"the schedule starts at f_rot = {run_cfg.f_start_hz / 1e3:.6g} kHz; the first check above is in the "
                      f"lab frame")
     if run_cfg is not None and run_cfg.schedule is not None:
-        need = spinup_need(run_cfg.schedule)
+        need = run_cfg.schedule.acceleration_profile()
         f_max, s_max = need["f_max_hz"], need["scale_at_f_max"]
-        alpha_f, alpha_b = lab["alpha_forward_rad_s2"], lab["alpha_backward_rad_s2"]
+        mg = pin.schedule_margin(hold, need, 1.0, [n]) if pinned else {"ratio": 0.0, "t_s": None, "needed_rad_s2": 0.0,
+                                                                        "held_rad_s2": 0.0}
         if pinned and abs(f_max) >= 10.0 and s_max > 0:
             Vr = plan_voltages(plan, angle, s_max)
             pot_r = full_potential(layout, pseudo, masses, charges, Vr, f_rot_hz=f_max)
+            pot_r_off = full_potential(layout, pseudo, masses, charges, plan.static_v, f_rot_hz=f_max)
             rot = {"f_rot_hz": f_max, "t_s": need["t_f_max_s"], "scale": s_max}
             try:
                 cr_r = compute_crystal(pot_r, f_max, start=pos)
                 rot["f_lib_mode_hz"] = _libration(cr_r)
                 rot["positions_m"] = cr_r.positions_m.tolist()
                 rot["moment_of_inertia_kg_m2"] = cr_r.moment_of_inertia_kg_m2
-                scan_r = rigid_scan(layout, pseudo, cr_r.positions_m, masses, charges, plan, angle_rad=angle, scale=s_max,
-                                    n_phi=n_phi, n_rows=n_rows)
-                rot["f_lib_rigid_hz"] = scan_r["f_lib_rigid_hz"]
-                rot["alpha_forward_rad_s2"] = scan_r["alpha_forward_rad_s2"]
-                rot["alpha_backward_rad_s2"] = scan_r["alpha_backward_rad_s2"]
-                # per unit multiplier, the worse of the lab and rotating crystal
-                alpha_f = min(alpha_f, scan_r["alpha_forward_rad_s2"] / s_max)
-                alpha_b = min(alpha_b, scan_r["alpha_backward_rad_s2"] / s_max)
+                hold_r = pin.assess(pot_r, pot_r_off, [(n, c_ach * s_max)], start=cr_r.positions_m)
+                rot["verdict"] = hold_r.verdict
+                rot["f_lib_held_hz"] = hold_r.f_lib_hz
+                rot["f_lib_rigid_hz"] = hold_r.f_lib_rigid_hz
+                rot["alpha_forward_rad_s2"] = hold_r.alpha_forward_rad_s2
+                rot["alpha_backward_rad_s2"] = hold_r.alpha_backward_rad_s2
+                # the margin: the worse of the lab and the rotating crystal
+                if hold_r.held:
+                    mg_r = pin.schedule_margin(hold_r, need, s_max, [n])
+                    if mg_r["ratio"] < mg["ratio"]:
+                        mg = mg_r
+                else:
+                    verdict.append(f"at f_rot = {f_max / 1e3:.6g} kHz the pattern does not hold the crystal: {hold_r.reason}")
+                    mg = {"ratio": 0.0, "t_s": need["t_f_max_s"], "needed_rad_s2": need["alpha_max_rad_s2"],
+                          "held_rad_s2": 0.0}
                 cr_rf = compute_crystal(model_potential(fit_cfg, f_max, pin_scale=[s_max]), f_max, start=cr_r.positions_m)
                 rot["fitted_f_lib_mode_hz"] = _libration(cr_rf)
-                rot["fitted_alpha_max_rad_s2"] = pinning_margin(cr_rf, cr_rf.potential.multipoles)["alpha_max_rad_s2"]
+                rot["fitted_alpha_max_rad_s2"] = pin.assess_config(fit_cfg, f_max, scales=[s_max],
+                                                                   start=cr_rf.positions_m).alpha_forward_rad_s2
             except PhysicsError as e:
                 rot["error"] = e.expected
                 verdict.append(f"at f_rot = {f_max / 1e3:.6g} kHz: {e.expected}")
-        mg = _margin(need, alpha_f if pinned else 0.0, alpha_b if pinned else 0.0)
         T = run_cfg.initial.temperature_k
         full["schedule"] = {"alpha_needed_max_rad_s2": need["alpha_max_rad_s2"], "t_alpha_needed_max_s": need["t_alpha_max_s"],
                             "f_max_hz": f_max, "margin": mg["ratio"], "margin_t_s": mg["t_s"],
                             "margin_needed_rad_s2": mg["needed_rad_s2"], "margin_held_rad_s2": mg["held_rad_s2"],
                             "initial_temperature_k": T,
-                            "barrier_over_kT": (lab["barrier_k"] / T) if T > 0 and pinned else None}
+                            "barrier_over_kT": (lab["barrier_k"] / T) if T > 0 and pinned else None,
+                            "barrier_kT_min": pin.BARRIER_KT_MIN}
         if pinned and mg["ratio"] < 1.0:
             verdict.append(f"the spin-up needs {mg['needed_rad_s2']:.3e} rad/s^2 at t = {mg['t_s'] * 1e3:.4g} ms but the "
                            f"pinning holds only {mg['held_rad_s2']:.3e} (margin {mg['ratio']:.3g})")
+        bkt = full["schedule"]["barrier_over_kT"]
+        if bkt is not None and bkt < pin.BARRIER_KT_MIN:
+            verdict.append(f"the pinning barrier is only {bkt:.3g} k_B T_initial (below {pin.BARRIER_KT_MIN:g}): the crystal "
+                           f"hops between the pinning wells at its starting temperature")
     full["rotating"] = rot
     full["stray"] = stray_fx
     out["full"] = full
@@ -939,22 +904,28 @@ def check_text(d: dict) -> str:
     L.append("")
     L.append("crystal in the full electrode field (pseudopotential of the rf electrodes per ion + dc electrodes at the solved voltages)")
     L.append(f"  lab frame: radius {lab['radius_m'] * 1e6:.4g} um, I = {lab['moment_of_inertia_kg_m2']:.4e} kg m^2")
-    if fu["pinned"]:
-        L.append(f"  pinned: yes, by order {fu['order']} (first-order torque {fu['first_order_rel'] * 100:.6g} % of n c sum|Q| r^n)")
+    vd = fu["verdict"]
+    if vd["verdict"] == "pinned":
+        L.append(f"  pinned: yes, by order {fu['order']} (the crystal without the rotating voltages has "
+                 f"|M_{n}| = {fu['first_order_rel']:.3g} of sum|Q| r^{n})")
+    elif vd["verdict"] == "deformation":
+        L.append(f"  pinned: only through its deformation, wells of order {fu['order']} (|M_{n}| = "
+                 f"{fu['first_order_rel']:.2g} of sum|Q| r^{n} without the rotating voltages)")
     else:
         lo = fu["lowest_moment_order"]
-        L.append(f"  pinned: NO (first-order torque {fu['first_order_rel']:.2g} of n c sum|Q| r^n: the crystal's order-{n} moment "
-                 f"vanishes" + (f"; its lowest in-plane moment is order {lo})" if lo else ")"))
-    if fu["pinned"]:
+        L.append(f"  pinned: NO ({vd['reason']}" + (f"; its lowest in-plane moment is order {lo})" if lo else ")"))
+    if fu["held"]:
         L.append("                                 full field        fitted multipole    difference")
         L.append(f"  libration (normal mode)        {_khz(lab['f_lib_mode_hz']):<17s} {_khz(fi['f_lib_mode_hz']):<19s} {_pct(cm.get('f_lib_mode_rel'))}")
+        L.append(f"  libration (relaxed crystal)    {_khz(lab['f_lib_held_hz']):<17s} {_khz(fi['f_lib_held_hz']):<19s} {_pct(cm.get('f_lib_held_rel'))}")
         fr = lab["f_lib_rigid_hz"]
-        L.append(f"  libration (rigid)              {_khz(fr['at_start']):<17s} {_khz(fi['f_lib_rigid_hz']):<19s} {_pct(cm.get('f_lib_rigid_rel'))}")
+        L.append(f"  libration (rigid crystal)      {_khz(fr['at_start']):<17s} {_khz(fi['f_lib_rigid_hz']):<19s} {_pct(cm.get('f_lib_rigid_rel'))}")
         L.append(f"  largest acceleration (rad/s^2) {lab['alpha_forward_rad_s2']:<17.4e} {fi['alpha_max_rad_s2']:<19.4e} {_pct(cm.get('alpha_rel'))}")
-        L.append(f"    (full field: the worst pattern angle; rigid libration {fr['min'] / 1e3:.6g} to {fr['max'] / 1e3:.6g} kHz over a turn)")
+        L.append(f"    (relaxed crystal at the configured pattern angle; rigid libration {fr['min'] / 1e3:.6g} to "
+                 f"{fr['max'] / 1e3:.6g} kHz over a turn of the pattern)")
         L.append(f"  pinning barrier                {lab['barrier_k'] * 1e3:.4g} mK x k_B")
     L.append(f"  largest ion displacement, full vs fitted: {cm['max_position_difference_m'] * 1e9:.3g} nm")
-    if fu["pinned"]:
+    if fu["held"]:
         L.append(f"  what the fitted picture misses: order-{n} torque {_pct(cm['leading_multipole_miss'])}, crystal radius "
                  f"{_pct(cm['radius_rel'])} -> rigid libration {_pct(cm['f_lib_predicted_rel'])} expected")
     sch = fu.get("schedule")
@@ -962,25 +933,27 @@ def check_text(d: dict) -> str:
         L.append("")
         L.append(f"spin-up: needs at most {sch['alpha_needed_max_rad_s2']:.4e} rad/s^2 (2 pi df_rot/dt at t = "
                  f"{sch['t_alpha_needed_max_s'] * 1e3:.4g} ms), up to f_rot = {sch['f_max_hz'] / 1e3:.6g} kHz")
-        if fu["pinned"]:
+        if fu["held"]:
             L.append(f"  margin (held / needed, smallest over the schedule): {sch['margin']:.4g} at t = "
                      f"{sch['margin_t_s'] * 1e3:.4g} ms" if sch["margin_t_s"] is not None else "  margin: no acceleration planned")
             if sch["barrier_over_kT"] is not None:
-                L.append(f"  pinning barrier / k_B T_initial = {sch['barrier_over_kT']:.4g} (T = {sch['initial_temperature_k'] * 1e3:.4g} mK)")
+                L.append(f"  pinning barrier / k_B T_initial = {sch['barrier_over_kT']:.4g} (T = {sch['initial_temperature_k'] * 1e3:.4g} mK; "
+                         f"below {sch['barrier_kT_min']:g} is a problem)")
         rot = fu.get("rotating")
         if rot:
             if "error" in rot:
                 L.append(f"  at f_rot = {rot['f_rot_hz'] / 1e3:.6g} kHz: {rot['error']}")
             else:
                 L.append(f"  rotating frame at f_rot = {rot['f_rot_hz'] / 1e3:.6g} kHz (pinning x {rot['scale']:.3g}): libration "
-                         f"{_khz(rot['f_lib_mode_hz'])} (fitted {_khz(rot['fitted_f_lib_mode_hz'])}), largest acceleration "
+                         f"{_khz(rot['f_lib_mode_hz'])} (fitted {_khz(rot['fitted_f_lib_mode_hz'])}; relaxed crystal "
+                         f"{_khz(rot['f_lib_held_hz'])}), largest acceleration "
                          f"{rot['alpha_forward_rad_s2']:.4e} rad/s^2 (fitted {rot['fitted_alpha_max_rad_s2']:.4e})")
     st = fu["stray"]
     L.append("")
     L.append("stray multipoles' effect")
     L.append(f"  crystal centre offset from the RF null: ({', '.join(f'{x * 1e9:.3g}' for x in st['centre_offset_m'])}) nm; "
              f"out of plane: {st['out_of_plane_m'] * 1e9:.3g} nm")
-    rel, what = ("rel_to_pinning", "the pinning torque") if fu["pinned"] else ("rel_to_ref", "n c sum|Q| r^n")
+    rel, what = ("rel_to_pinning", "the pinning torque") if fu["held"] else ("rel_to_ref", "n c sum|Q| r^n")
     if st["ripple"]:
         L.append(f"  torque ripple while rotating (rotating voltages; order, frequency in the pattern's frame, ratio to {what}): "
                  + ", ".join(f"{h['m']} at {h['per_f_rot']} f_rot {h[rel]:.2g}" for h in st["ripple"][:4]))
