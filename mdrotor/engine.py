@@ -79,6 +79,8 @@ class Plan:
     noise: object = None
     notes: list = field(default_factory=list)
     holding: object = None
+    holding0: object = None
+    rotor_cdf: tuple | None = None
 
     @property
     def pin_is_multipole(self) -> np.ndarray:
@@ -173,6 +175,26 @@ def make_plan(cfg) -> Plan:
         raise e.with_source(cfg.source)
     plan.crystal0 = cr
     plan.free_rotor0 = not any(lab == "libration" for lab in cr.modes.labels) and not plan.pinned0 and n > 1
+    if len(orders) and n > 1:
+        # the pinning core at t = 0; a well shallower than BARRIER_KT_MIN k_B T
+        # is not a harmonic libration: the angle is drawn from the Boltzmann
+        # weight of the relaxed held curve instead (see initial_states)
+        from .pinning import BARRIER_KT_MIN, assess, config_terms
+
+        try:
+            h0 = assess(plan.potential(f0, 0.0, scales0), plan.potential(f0, 0.0, np.zeros(len(orders))),
+                        config_terms(cfg, scales0), start=cr.positions_m, seed=cfg.search_seed)
+        except PhysicsError as e:
+            raise e.with_source(cfg.source)
+        plan.holding0 = h0
+        kT = KB * cfg.initial.temperature_k
+        if (h0.held and kT > 0 and h0.barrier_j < BARRIER_KT_MIN * kT and h0.curve is not None
+                and "libration" in cr.modes.labels):
+            u = h0.curve.energy_j - np.min(h0.curve.energy_j)
+            wgt = np.exp(-u / kT)
+            step = TWO_PI / len(wgt)
+            edges = h0.curve.phi_rad - 0.5 * step
+            plan.rotor_cdf = (np.r_[edges, edges[-1] + step], np.r_[0.0, np.cumsum(wgt)] / np.sum(wgt))
     # the pinning term whose lag is tracked, and the order of its wells: the
     # pinning core's verdict on the t = 0 crystal with every term at its
     # largest multiplier of the schedule (a pinning that ramps up from 0 counts)
@@ -241,7 +263,15 @@ def _species_ids(cfg) -> np.ndarray:
 def initial_states(plan: Plan, seed: int, indices: np.ndarray):
     """Positions and velocities (3, N, T) of trajectories ``indices``.
 
-    See :mod:`mdrotor.sampling` for the distribution and the RNG keys.
+    See :mod:`mdrotor.sampling` for the distribution and the RNG keys. A
+    crystal that nothing holds at t = 0 gets a uniform random angle and a
+    thermal L_com (Gaussian, variance I k_B T). A crystal held in wells
+    shallower than :data:`mdrotor.pinning.BARRIER_KT_MIN` k_B T is not a
+    harmonic libration (its thermal angle spans wells, and the linear mode
+    vector would carry the crystal's deformation far out): its libration
+    mode is left unexcited and its angle drawn from the classical Boltzmann
+    weight exp(-U(phi) / k_B T) of the relaxed held curve
+    (:func:`mdrotor.pinning.held_curve`), L_com thermal as above.
     """
     from .frame import rotate_positions
     from .sampling import mode_occupations, phase_space_point, sample_normal_coordinates, trajectory_rng
@@ -260,16 +290,22 @@ def initial_states(plan: Plan, seed: int, indices: np.ndarray):
     pos = np.empty((3, n, T))
     vel = np.empty((3, n, T))
     I = cr.moment_of_inertia_kg_m2
+    thermal_rotor = plan.rotor_cdf is not None
+    k_lib = cr.modes.labels.index("libration") if thermal_rotor else -1
     for b, idx in enumerate(indices):
         rng = trajectory_rng(seed, int(idx), 0)
         qn, pn = sample_normal_coordinates(n_occ, plan.wigner, rng)
+        if thermal_rotor:  # the rotation is drawn below, not as a harmonic libration
+            qn[k_lib] = pn[k_lib] = 0.0
         zeta = phase_space_point(cr.modes, qn, pn)
         r = r0 + (zeta[: 3 * n] / sqm).reshape(n, 3)
         v = v0 + (zeta[3 * n:] / sqm).reshape(n, 3)
         if n > 1:
             r, v = _curl_rotation(r, v, r0, m, w)
-        if plan.free_rotor0:
+        if plan.free_rotor0 or thermal_rotor:
             phi = rng.uniform(0.0, TWO_PI)
+            if thermal_rotor:  # inverse CDF of the Boltzmann weight on the held curve
+                phi = float(np.interp(phi / TWO_PI, plan.rotor_cdf[1], plan.rotor_cdf[0]))
             dl = rng.standard_normal() * math.sqrt(I * KB * cfg.initial.temperature_k)
             rc = r - np.sum(m[:, None] * r, axis=0) / np.sum(m)
             v[:, 0] += -dl / I * rc[:, 1]

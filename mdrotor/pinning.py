@@ -542,7 +542,7 @@ def pinning_energy_harmonics(cfg, f_rot_hz: float = 0.0, *, max_order: int = 12,
 
 __all__ = ["MOMENT_REL", "HELD_REL", "AXIS_REL", "BARRIER_KT_MIN", "N_PHI", "VERDICTS", "moments", "moment_rel",
            "lowest_moment_order", "on_axis", "relax_at_angle", "HeldCurve", "held_curve", "Holding", "assess",
-           "assess_config", "config_terms", "pinning_energy_harmonics", "schedule_margin", "preflight"]
+           "assess_config", "config_terms", "pinning_energy_harmonics", "schedule_margin", "escape_depth", "preflight", "preflight_group"]
 
 
 
@@ -588,6 +588,40 @@ def schedule_margin(h: Holding, profile: dict, scale_ref: float, orders) -> dict
     return {"ratio": float(ratio[j]), "t_s": float(t[j]), "needed_rad_s2": float(abs(a[j])), "held_rad_s2": float(held[j])}
 
 
+def escape_depth(cfg, scales=None) -> dict | None:
+    """Depth of the trap against an unbounded pinning multipole.
+
+    An in-plane multipole of order n >= 3 is unbounded below: Re[c z^n]
+    falls as -c r^n along n directions. With the radial trap 1/2 k r^2
+    (k = m w_r^2), one ion along such a valley sees
+    U(r) = k r^2 / 2 - |Q| c r^n, a saddle at r* = (k / (n |Q| c))^(1/(n-2))
+    of height (1/2 - 1/n) k r*^2 (Coulomb repulsion from the other ions
+    lowers it further). An ion over it runs off along the valley, faster
+    and faster: a non-finite trajectory. The preflight warns when the
+    saddle is below :data:`BARRIER_KT_MIN` k_B T_initial.
+
+    Returns the lowest saddle over ions and terms at multipliers ``scales``
+    (default: each term's peak over the schedule): ``order``, ``term``,
+    ``radius_m``, ``depth_j``, ``depth_k``; None without a term of order >= 3.
+    """
+    m, q = cfg.masses_kg, cfg.charges_c
+    k = np.min(cfg.trap.omega_sq(m, q)[:, :2], axis=1) * m
+    if scales is None:
+        scales = [cfg.schedule.peak_pinning_scale(j) if cfg.schedule is not None else 1.0 for j in range(len(cfg.pinning))]
+    best = None
+    for j, (t, s) in enumerate(zip(cfg.pinning, scales)):
+        c = abs(s * t.strength)
+        if t.order < 3 or c == 0.0:
+            continue
+        r = (k / (t.order * np.abs(q) * c)) ** (1.0 / (t.order - 2))
+        depth = (0.5 - 1.0 / t.order) * k * r * r
+        i = int(np.argmin(depth))
+        if best is None or depth[i] < best["depth_j"]:
+            best = {"order": t.order, "term": j, "radius_m": float(r[i]), "depth_j": float(depth[i]),
+                    "depth_k": float(depth[i] / K_B)}
+    return best
+
+
 def preflight(plan, *, n_samples: int = 401) -> dict:
     """Check a planned run before any integration (module docstring).
 
@@ -616,9 +650,11 @@ def preflight(plan, *, n_samples: int = 401) -> dict:
     warnings_: list[str] = []
     refusal = refusal_stage = None
     start0 = plan.crystal0.positions_m
-    h0 = assess(plan.potential(plan.f0_hz, 0.0, plan.pin_scales(0.0)),
-                plan.potential(plan.f0_hz, 0.0, np.zeros(len(orders))),
-                config_terms(cfg, plan.pin_scales(0.0)), start=start0, seed=cfg.search_seed)
+    h0 = getattr(plan, "holding0", None)
+    if h0 is None:
+        h0 = assess(plan.potential(plan.f0_hz, 0.0, plan.pin_scales(0.0)),
+                    plan.potential(plan.f0_hz, 0.0, np.zeros(len(orders))),
+                    config_terms(cfg, plan.pin_scales(0.0)), start=start0, seed=cfg.search_seed)
     T = float(cfg.initial.temperature_k)
     init = {"verdict": h0.verdict, "order": h0.order or 0, "description": h0.describe(), "libration_hz": h0.f_lib_hz,
             "alpha_forward_rad_s2": h0.alpha_forward_rad_s2, "alpha_backward_rad_s2": h0.alpha_backward_rad_s2,
@@ -681,6 +717,14 @@ def preflight(plan, *, n_samples: int = 401) -> dict:
                              f"kHz/ms) there (margin {mg['ratio']:.3g}, {h.verdict}): expect slips")
         stages.append(entry)
     margins = [s["margin"] for s in stages]
+    esc = escape_depth(cfg)
+    if esc is not None:
+        init["escape_depth_k"] = esc["depth_k"]
+        init["escape_radius_m"] = esc["radius_m"]
+        if T > 0 and esc["depth_k"] < BARRIER_KT_MIN * T:
+            warnings_.append(f"the trap holds an ion against the order-{esc['order']} pinning only up to a saddle of "
+                             f"{esc['depth_k'] * 1e3:.4g} mK x k_B at r = {esc['radius_m'] * 1e6:.4g} um, below "
+                             f"{BARRIER_KT_MIN:g} k_B T_initial: hot ions run off and end non-finite")
     return {"initial": init, "stages": stages, "margin_min": float(min(margins)) if margins else float("inf"),
             "warnings": warnings_, "refusal": refusal, "refusal_stage": refusal_stage}
 
