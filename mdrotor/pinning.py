@@ -45,7 +45,7 @@ equals the libration normal mode when the other modes are much faster.
 
 Held angular acceleration: in the frame of a pinning that turns with
 angular acceleration alpha, the crystal feels the pseudo-torque -I alpha
-(I about the centre of mass) and stays in its well while I alpha is below
+(I about the trap axis, the axis of that frame) and stays in its well while I alpha is below
 the largest restoring torque between the well bottom and the barrier top:
 alpha_forward (spin-up, the crystal lags) = max_{phi < phi_0} tau / I,
 alpha_backward = max_{phi > phi_0} (-tau) / I.
@@ -222,9 +222,9 @@ class HeldCurve:
     torque_n_m : (K,) restoring torque tau = -dU/dphi (exact, from the gradient)
     energy_j : (K,) U(phi) - U(0), the torque integrated spectrally (rounding-free)
     positions_m : (K, N, 3) relaxed configurations
-    moment_of_inertia_kg_m2 : I about the centre of mass of the reference
+    moment_of_inertia_kg_m2 : I of the reference about the trap axis (the axis the pinning turns about)
     curvature_n_m : U''(0) (N m per rad), central difference of the torque
-    path_inertia_kg_m2 : sum m |dr/dphi|^2 at phi = 0
+    path_inertia_kg_m2 : sum m |dr/dphi|^2 at phi = 0 (the relaxed crystal turning about the trap axis)
     residual : largest projected gradient over the force scale (convergence)
     """
 
@@ -307,7 +307,7 @@ def held_curve(pot, r0: np.ndarray, *, n_phi: int = N_PHI, relaxed: bool = True)
     r0 = np.asarray(r0, dtype=float)
     m = pot.masses_kg
     w = frame.complex_xy(r0, m)
-    I = float(np.sum(m * np.abs(w) ** 2))
+    I = frame.moment_of_inertia(r0, m, about="axis")
     K = int(n_phi)
     phi = TWO_PI * np.arange(K) / K
     force_scale = float(np.linalg.norm(pot._effective_springs() * (r0 - frame.centre_of_mass(r0, m))))
@@ -350,8 +350,9 @@ def held_curve(pot, r0: np.ndarray, *, n_phi: int = N_PHI, relaxed: bool = True)
     rp, _ = point(hstep, frame.rotate_positions(r0, hstep))
     rm, _ = point(-hstep, frame.rotate_positions(r0, -hstep))
     curv = -(_torque(pot, rp)[0] - _torque(pot, rm)[0]) / (2 * hstep)
+    # path inertia: the crystal turns about the trap axis, so the centre of
+    # mass moves with it when it is off the axis (a mixed-species pair)
     dr = (rp - rm) / (2 * hstep)
-    dr -= frame.centre_of_mass(dr, m)  # the centre of mass does not librate
     i_path = float(np.sum(m[:, None] * dr * dr)) if relaxed else I
     return HeldCurve(phi, tau, _spectral_energy(tau), pos, I, float(curv), i_path, resid)
 
@@ -449,7 +450,7 @@ def assess(pot_on, pot_off, terms, *, start=None, seed: int = 0, n_phi: int = N_
     r_on = _equilibrium(pot_on, start, seed)
     m, q = pot_on.masses_kg, pot_on.charges_c
     f_rot = pot_on.omega_frame / TWO_PI
-    I_on = frame.moment_of_inertia(r_on, m)
+    I_on = frame.moment_of_inertia(r_on, m, about="axis")
     terms = [(int(n), float(c)) for n, c in terms]
     active = [(j, n, c) for j, (n, c) in enumerate(terms) if c != 0.0]
     orders = sorted({n for _, n, _ in active})

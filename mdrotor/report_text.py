@@ -45,7 +45,7 @@ def crystal_json(cfg, cr, holding) -> dict:
         "frame": "rotating" if cr.f_rot_hz else "lab",
         "energy_j": cr.energy_j,
         "moment_of_inertia_kg_m2": cr.moment_of_inertia_kg_m2,
-        "hbar_over_I_hz": cr.hbar_over_I_hz,
+        "hbar_over_I_hz": cr.hbar_over_I_hz if cr.moment_of_inertia_kg_m2 > 0 else None,  # one ion: no rotor
         "L_hbar": cr.L_hbar,
         "nearest_distance_m": cr.nearest_distances_m().tolist(),
         "modes": [{"freq_hz": float(f), "label": lab, "kind": k, "plane": p}
@@ -79,7 +79,8 @@ def crystal_text(cfg, cr, holding) -> str:
     lines.append("")
     I = cr.moment_of_inertia_kg_m2
     lines.append(f"moment of inertia about z   I = {I:.6e} kg m^2")
-    lines.append(f"rotational constant         hbar/(2 pi I) = {cr.hbar_over_I_hz:.6g} Hz")
+    if I > 0:
+        lines.append(f"rotational constant         hbar/(2 pi I) = {cr.hbar_over_I_hz:.6g} Hz")
     lines.append(f"angular momentum at f_rot   L = {cr.L_hbar:.6g} hbar")
     lines.append(f"potential energy            {cr.energy_j:.6e} J")
     lines.append("")

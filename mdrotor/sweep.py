@@ -280,7 +280,9 @@ def point_metrics(res, cfg=None) -> dict:
     ``slip_fraction``, ``differential_n_mean`` ...) and one
     ``mode_n_mean.<label>`` / ``mode_n_err.<label>`` per mode; every stage:
     ``stage.<name>.<metric>``; run: ``duration_s``, ``I_kg_m2`` (moment of
-    inertia), ``dt_s``, ``n_steps``, ``n_trajectories``, ``wall_s``; with the
+    inertia), ``dt_s``, ``n_steps``, ``n_trajectories``, ``wall_s``,
+    ``preflight_margin`` (the smallest held / asked angular acceleration of the
+    run's preflight, :func:`mdrotor.pinning.preflight`; inf without a spin); with the
     config: ``f_rot_peak_hz`` and ``pinning_peak.<term>`` (largest strength
     in the schedule, SI V/m^n).
     """
@@ -306,7 +308,8 @@ def point_metrics(res, cfg=None) -> dict:
     if res.schedule is not None and "stage_bounds_s" in res.schedule:
         out["duration_s"] = float(np.asarray(res.schedule["stage_bounds_s"])[-1])
     for k, name in (("moment_of_inertia_kg_m2", "I_kg_m2"), ("dt_s", "dt_s"), ("n_steps", "n_steps"),
-                    ("n_trajectories", "n_trajectories"), ("wall_s", "wall_s")):
+                    ("n_trajectories", "n_trajectories"), ("wall_s", "wall_s"),
+                    ("preflight_margin_min", "preflight_margin")):
         if k in a:
             out[name] = float(a[k])
     if cfg is not None and cfg.schedule is not None:
