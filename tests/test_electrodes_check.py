@@ -19,6 +19,7 @@ from mdrotor.electrodes.check import RFPseudoTerm
 from mdrotor.pinning import MOMENT_REL
 from mdrotor.electrodes.command import add_electrodes_parser, cli_electrodes, main
 from mdrotor.species import get_species
+from mdrotor.cli import main as cli_main
 
 EXAMPLES = {
     "string": ("configs/electrodes/ring6_string2.toml", "configs/electrodes/ring6_string2_run.toml", 2, 2),
@@ -152,7 +153,7 @@ def test_full_field_libration_agrees_with_fitted_multipole(checks, name):
     assert abs(got) <= abs(miss) / 2 + abs(0.5 * n - 1) * abs(r / r_fit - 1) + tol
 
 
-def test_mismatched_crystal_is_not_pinned(capsys):
+def test_mismatched_crystal_is_not_pinned(capsys, tmp_path):
     """Order-2 design with a 3-ion triangle: not pinned at first order.
 
     A regular N-gon's order-n moment sum_i z_i^n vanishes unless N divides n
@@ -169,6 +170,7 @@ def test_mismatched_crystal_is_not_pinned(capsys):
     assert float(full["moments_rel"]["2"]) < MOMENT_REL and full["lowest_moment_order"] == 3
     assert not d["verdict"]["ok"] and any("only through its deformation" in p for p in d["verdict"]["problems"])
     assert any("designed for 2 ions" in n for n in d["notes"])
+    _same_as_crystal(capsys, tmp_path, d)
 
 
 def test_schedule_acceleration_of_a_smoothstep():
@@ -291,3 +293,48 @@ def test_bad_command_line_exit_2(tmp_path, capsys):
         err = capsys.readouterr().err
         assert err.startswith("mdrotor: error: ") and word in err and err.count("\n") == 1, (argv, err)
     assert not list(tmp_path.glob("w.*"))
+
+
+def test_trap_mismatch_and_a_low_barrier_are_verdict_problems(capsys):
+    """The electrode check's verdict names (a) a run config whose trap differs
+    from the layout's by more than TRAP_MISMATCH_REL (a defect report: 1.0,
+    1.0, 2.5 MHz against the layout's 2.45, 2.45, 4.89 MHz gave "verdict:
+    OK"), and (b) a pinning barrier below BARRIER_KT_MIN k_B T_initial (the
+    crystal hops between wells). The barrier (11.7 mK x k_B here) against
+    T = 5 mK is 2.3 k_B T."""
+    from mdrotor.electrodes.check import TRAP_MISMATCH_REL
+    from mdrotor.pinning import BARRIER_KT_MIN
+
+    lay, run = EXAMPLES["triangle"][:2]
+    d = _run_json(capsys, [lay, "--config", run, "--set", "trap.f_radial='1.0 MHz'", "--set", "trap.f_axial='2.5 MHz'",
+                           "--set", "initial.temperature='5 mK'"])
+    probs = d["verdict"]["problems"]
+    assert not d["verdict"]["ok"]
+    assert d["rf"]["run_config_mismatch_rel"] > TRAP_MISMATCH_REL
+    assert any("differs from the layout's" in p for p in probs)
+    bkt = d["full"]["schedule"]["barrier_over_kT"]
+    assert bkt == pytest.approx(d["full"]["lab"]["barrier_k"] / 5e-3, rel=1e-12) and bkt < BARRIER_KT_MIN
+    assert any("k_B T_initial" in p for p in probs)
+
+
+def _same_as_crystal(capsys, tmp_path, d):
+    """The check's fitted picture (the run config with the layout's harmonic
+    trap and the achieved leading multipole, stored as config text) and
+    `mdrotor crystal --json` of that config are the same question: same
+    verdict, same libration of the relaxed crystal (one code path; the
+    equilibria relaxed from different starts: 1e-6). The full field agrees
+    with its fitted picture to what the fit leaves out (< 1e-3 here)."""
+    fit = tmp_path / "fitted.toml"
+    fit.write_text(d["fitted"]["config_text"])
+    rc = cli_main(["crystal", str(fit), "--json"])
+    cj = json.loads(capsys.readouterr().out)
+    assert rc == 0
+    assert cj["pinning_verdict"]["verdict"] == d["fitted"]["verdict"] == d["full"]["verdict"]["verdict"]
+    assert cj["libration_hz"] == pytest.approx(d["fitted"]["f_lib_held_hz"], rel=1e-6)
+    assert d["full"]["lab"]["f_lib_held_hz"] == pytest.approx(d["fitted"]["f_lib_held_hz"], rel=1e-3)
+
+
+def test_electrodes_and_crystal_give_one_verdict(capsys, tmp_path, checks):
+    """`electrodes` and `crystal` agree on the example designs (see _same_as_crystal)."""
+    for name in ("triangle", "square"):
+        _same_as_crystal(capsys, tmp_path, checks[name])
