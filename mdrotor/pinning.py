@@ -541,9 +541,6 @@ def pinning_energy_harmonics(cfg, f_rot_hz: float = 0.0, *, max_order: int = 12,
     return held_curve(pot, r0, n_phi=max(n_phi, 4 * max_order + 8), relaxed=relaxed).harmonics(max_order)
 
 
-__all__ = ["MOMENT_REL", "HELD_REL", "AXIS_REL", "BARRIER_KT_MIN", "N_PHI", "VERDICTS", "moments", "moment_rel",
-           "lowest_moment_order", "on_axis", "relax_at_angle", "HeldCurve", "held_curve", "Holding", "assess",
-           "assess_config", "config_terms", "pinning_energy_harmonics", "schedule_margin", "escape_depth", "preflight", "preflight_group"]
 
 
 
@@ -746,3 +743,8 @@ def preflight_group(pre: dict) -> dict:
         "libration_hz": np.array([s["libration_hz"] for s in st], dtype=float),
         "margin": np.array([s["margin"] for s in st], dtype=float),
     }
+
+
+__all__ = ["MOMENT_REL", "HELD_REL", "AXIS_REL", "BARRIER_KT_MIN", "N_PHI", "VERDICTS", "moments", "moment_rel",
+           "lowest_moment_order", "on_axis", "relax_at_angle", "HeldCurve", "held_curve", "Holding", "assess",
+           "assess_config", "config_terms", "pinning_energy_harmonics", "schedule_margin", "escape_depth", "preflight", "preflight_group"]

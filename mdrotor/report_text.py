@@ -3,12 +3,12 @@
 from __future__ import annotations
 
 import numpy as np
+from scipy.constants import k as KB
 
 from . import __version__
 from .pinning import MOMENT_REL
 
 TWO_PI = 2.0 * np.pi
-KB = 1.380649e-23  # J/K (exact, SI 2019)
 
 
 def _pin_notes(cfg, cr, holding) -> list[str]:
