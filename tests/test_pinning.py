@@ -322,3 +322,14 @@ def test_order_four_triangle_starts_finite(tmp_path):
     esc = pinning.escape_depth(cfg)
     # thermal spread at 0.5 mK of the 2 MHz modes is ~0.05 um: 1.5 x r_eq is far out
     assert np.all(radius < 1.5 * r_eq) and esc["radius_m"] > 3 * r_eq
+
+
+def test_run_force_must_be_a_boolean(tmp_path, capsys):
+    """`run.force = "yes"` is refused in one line naming the key (exit 2)."""
+    raw = _raw("40Ca+", 2, 2, "2e5 V/m^2", "1 MHz", "2.5 MHz")
+    raw["run"]["force"] = "yes"
+    path = _write(tmp_path, raw)
+    assert main(["run", str(path), "-o", str(tmp_path / "x.h5"), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "run.force" in err and "true or false" in err
+    assert not (tmp_path / "x.h5").exists()
