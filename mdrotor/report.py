@@ -105,6 +105,10 @@ def _sup(n: int) -> str:
     return str(n).translate(str.maketrans("0123456789-", "⁰¹²³⁴⁵⁶⁷⁸⁹⁻"))
 
 
+def _sub(n) -> str:
+    return str(n).translate(str.maketrans("0123456789", "₀₁₂₃₄₅₆₇₈₉"))
+
+
 def _pretty_unit(u: str | None) -> str:
     """'V/m^2' -> 'V/m²', 'us' -> 'µs' (display only)."""
     import re
@@ -145,6 +149,20 @@ def _fmt(x, digits=4) -> str:
     if x == 0 or 1e-3 <= abs(x) < 1e6:
         return f"{x:.{max(digits, 7)}g}"
     return f"{x:.{digits}g}"
+
+
+def _fraction_text(s: dict, m: str) -> str:
+    """A fraction with its interval '0.031 [0.024, 0.040]' when the summary
+    stores the bounds (``<m>_lo`` / ``<m>_hi``), else the value alone (the
+    older ``_err`` column is a standard error or a 95 % bound depending on
+    the count, and is not printed as either)."""
+    v = s.get(m)
+    if v is None:
+        return "n/a"
+    lo, hi = s.get(f"{m}_lo"), s.get(f"{m}_hi")
+    if lo is not None and hi is not None:
+        return f"{float(v):.3f} [{_fmt(lo, 2)}, {_fmt(hi, 2)}]"
+    return f"{float(v):.3f}"
 
 
 def _pm(v, e, digits=4) -> str:
@@ -297,6 +315,104 @@ def _pin_terms(config_text: str):
     return out
 
 
+def _term_label(name: str, order) -> str:
+    """A pinning term as a physicist writes it: its coefficient c_n (the
+    multipole convention Phi_n = Re[c_n (x + iy)^n e^{-in angle}]), with the
+    user's own name when the config gave one (the default name is internal)."""
+    if order is None:
+        return f"term {name}"
+    c = f"c{_sub(order)}"
+    return c if name == f"n{order}" else f"{c} ({name})"
+
+
+def _term_unit(order) -> str:
+    return f"V/m{_sup(order)}" if order else "V/mⁿ"
+
+
+def _base_terms(meta: dict) -> list:
+    return _pin_terms(str((meta or {}).get("base_config_text", "")))
+
+
+def _stage_names_of(config_text: str) -> list:
+    import tomllib
+
+    try:
+        raw = tomllib.loads(config_text)
+    except Exception:
+        return []
+    st = raw.get("stage", [])
+    return [str(x.get("name", f"stage {i}")) for i, x in enumerate(st)] if isinstance(st, list) else []
+
+
+# config keys that a sweep or optimisation varies, as a physicist names them
+_KEY_NAMES = {
+    "initial.temperature": "initial temperature", "initial.wigner": "zero-point motion (Wigner)",
+    "trap.f_radial": "radial secular frequency", "trap.f_axial": "axial secular frequency",
+    "trap.radial_split": "in-plane frequency splitting", "trap.f_drive": "RF drive frequency",
+    "trap.q": "Mathieu q", "trap.a": "Mathieu a", "trap.model": "trap model", "trap.stray_field": "stray field",
+    "crystal.ions": "number of ions", "run.trajectories": "trajectories", "run.seed": "seed",
+    "run.integrator": "integrator", "run.dt": "time step", "observe.loss_radius": "loss radius",
+    "observe.series_interval": "time-series interval",
+}
+_RAMP_PARTS = {"to": "final", "from": "initial", "shape": "ramp shape", "steepness": "ramp steepness",
+               "tau": "ramp time constant", "table": "ramp table"}
+
+
+def _key_label(key: str, meta: dict | None = None) -> str:
+    """Axis title of a swept or optimised config key (``--set`` path): the
+    quantity in words, stage names as the user wrote them (quoted), pinning
+    terms as c_n; never the dotted path itself."""
+    meta = meta or {}
+    terms = _base_terms(meta)
+    parts = key.split(".")
+
+    def term(ref):
+        for i, (name, order) in enumerate(terms):
+            if ref in (name, str(i)):
+                return _term_label(name, order)
+        return _term_label(ref, None)
+
+    if parts[0] == "stage" and len(parts) >= 3:
+        st = parts[1]
+        if st.isdigit():
+            names = _stage_names_of(str(meta.get("base_config_text", "")))
+            st = names[int(st)] if int(st) < len(names) else f"stage {st}"
+        where = f"'{st}':"
+        rest = parts[2:]
+        if rest == ["duration"]:
+            return f"{where} duration"
+        if rest[0] == "f_rot":
+            if len(rest) == 1:
+                return f"{where} final {FROT}"
+            if rest[1] == "points" and len(rest) >= 4:
+                return f"{where} {FROT if rest[3] == '1' else 'time'} at knot {rest[2]}"
+            part = _RAMP_PARTS.get(rest[1], rest[1].replace("_", " "))
+            return f"{where} {part} {FROT}" if rest[1] in ("to", "from") else f"{where} {FROT} {part}"
+        if rest[0] == "pinning":
+            sub = rest[1:]
+            who = "pinning"
+            if sub and sub[0] not in _RAMP_PARTS and sub[0] != "points":
+                who, sub = f"pinning {term(sub[0])}", sub[1:]
+            if not sub:
+                return f"{where} final {who} multiplier"
+            if sub[0] == "points" and len(sub) >= 3:
+                return f"{where} {who} {'multiplier' if sub[2] == '1' else 'time'} at knot {sub[1]}"
+            part = _RAMP_PARTS.get(sub[0], sub[0].replace("_", " "))
+            return f"{where} {part} {who} multiplier" if sub[0] in ("to", "from") else f"{where} {who} {part}"
+        return f"{where} " + " ".join(p.replace("_", " ") for p in rest)
+    if parts[0] == "pinning":
+        sub = parts[1:]
+        ref = None
+        if len(sub) >= 2:
+            ref, sub = sub[0], sub[1:]
+        t = term(ref) if ref is not None else (_term_label(*terms[0]) if len(terms) == 1 else "term")
+        what = {"strength": "", "angle": " angle", "order": " order"}.get(sub[0] if sub else "", " " + " ".join(sub))
+        return f"pinning {t}{what}".rstrip()
+    if key in _KEY_NAMES:
+        return _KEY_NAMES[key]
+    return " ".join(p.replace("_", " ") for p in parts)
+
+
 # ---------------------------------------------------------------------------
 # run figures
 # ---------------------------------------------------------------------------
@@ -326,7 +442,7 @@ def schedule_figure(result):
         pin = pin[:, None]
     terms = _pin_terms(str(res.attrs.get("config_text", "")))
     if len(terms) != pin.shape[1]:
-        terms = [(f"term {j + 1}", None) for j in range(pin.shape[1])]
+        terms = [(f"{j + 1}", None) for j in range(pin.shape[1])]
     bounds, names = _stage_bounds(res)
     ts, tu = _time_unit(t[-1] if len(t) else 1.0)
     fs, fu = _freq_unit(np.nanmax(np.abs(f)) if len(f) else 0.0)
@@ -336,21 +452,22 @@ def schedule_figure(result):
         axs = fig.subplots(n, 1, sharex=True, squeeze=False)[:, 0]
         ax = axs[0]
         _shade_stages(ax, bounds, names, ts)
-        ax.plot(t * ts, f * fs, color=ps.INK, lw=1.4, label="f_rot")
+        ax.plot(t * ts, f * fs, color=ps.INK, lw=1.4, label="rotation frequency")
         ax.set_ylabel(f"rotation {FROT} ({fu})")
-        ax.set_title("spin-up schedule", pad=14)
+        ax.set_title("schedule", pad=14)
         for j in range(pin.shape[1]):
             ax = axs[j + 1]
             _shade_stages(ax, bounds, names, ts, label=False)
             name, order = terms[j]
-            unit = f"V/m{_sup(order)}" if order else "V/mⁿ"
-            ax.plot(t * ts, pin[:, j], **{**ps.style(j + 1), "marker": None}, label=f"pinning {name}")
-            ax.set_ylabel(f"pinning {name} ({unit})")
+            lab = f"pinning {_term_label(name, order)}"
+            ax.plot(t * ts, pin[:, j], **{**ps.style(j + 1), "marker": None}, label=lab)
+            ax.set_ylabel(f"{lab} ({_term_unit(order)})")
             ax.ticklabel_format(axis="y", style="sci", scilimits=(0, 0), useMathText=True)
             ax.set_ylim(bottom=min(0.0, float(np.nanmin(pin[:, j])) * 1.05))
         for ax in axs:
             ax.set_xlim(t[0] * ts, t[-1] * ts)
         axs[-1].set_xlabel(f"time ({tu})")
+        ps.finish(fig)
     return fig
 
 
@@ -455,6 +572,7 @@ def L_histogram_figure(result, stage: str | None = None, bins: int | None = None
         az.set_xlabel(f"L (ħ), zoom ±{half}")
         az.legend(loc="upper center", fontsize=6, ncol=2, handlelength=1.2, columnspacing=0.8)
         ax.xaxis.set_major_formatter(ScalarFormatter(useOffset=False))
+        ps.finish(fig)
     return fig
 
 
@@ -496,7 +614,80 @@ def L_stages_figure(result, bins: int | None = None):
             ax.xaxis.get_major_locator().set_params(nbins=4)
         for ax in axs[n:]:
             ax.set_visible(False)
+        ps.finish(fig)
     return fig
+
+
+# ---------------------------------------------------------------------------
+# the frame the modes are measured in
+# ---------------------------------------------------------------------------
+def _frame_of(res, obs) -> tuple[str, float]:
+    """``("lab", 0.0)`` or ``("rotating", f_hz)``: the frame of an
+    observation's modes, as the result states it (attributes ``frame`` and
+    ``frame_f_rot_hz`` of its ``modes`` group), else derived from the
+    schedule by :func:`_frame_from_schedule`."""
+    for src in (obs.__dict__, obs.modes, obs.summary):
+        fr = src.get("frame")
+        if fr is not None:
+            fr = fr.decode() if isinstance(fr, bytes) else str(fr)
+            f = float(src.get("frame_f_rot_hz", 0.0) or 0.0)
+            return ("lab", 0.0) if fr == "lab" else ("rotating", f)
+    return _frame_from_schedule(res, obs)
+
+
+# -- stand-in until every result states its mode frame ----------------------
+# Results written before the mode frame was stored (attributes ``frame`` and
+# ``frame_f_rot_hz`` on the modes groups) get it derived here, following the
+# rule of mdrotor.observables.mode_frame. Remove this helper once no such file
+# is to be read (the results module then owns the frame alone).
+def _frame_from_schedule(res, obs) -> tuple[str, float]:
+    """Frame of an observation without stored frame attributes: while the
+    pinning is on, the pinning's frame at the schedule's f_rot(t) (the lab
+    below :data:`mdrotor.statics.SLOW_ROTATION_HZ`); when free, the crystal's
+    own rotation, here the ensemble's mean f_rot (the lab when below
+    :data:`mdrotor.observables.W_GRID_HZ`, where mode_frame measures free
+    crystals in the lab)."""
+    from .observables import W_GRID_HZ
+    from .statics import SLOW_ROTATION_HZ
+
+    pinned, f_pin = _pinning_at(res, obs.t_s)
+    if pinned is None:  # no sampled schedule: a pinned crystal has a libration mode
+        pinned = "libration" in list(obs.modes.get("label", []))
+    if pinned:
+        f = f_pin if f_pin is not None else float(obs.summary.get("f_rot_mean_hz", 0.0))
+        return ("lab", 0.0) if abs(f) < SLOW_ROTATION_HZ else ("rotating", f)
+    f = float(obs.summary.get("f_rot_mean_hz", 0.0))
+    return ("lab", 0.0) if not np.isfinite(f) or abs(f) < W_GRID_HZ else ("rotating", f)
+
+
+def _pinning_at(res, t_s: float):
+    """(pinned or None, f_rot of the schedule or None) at time t_s from the
+    sampled ``/schedule``. Between two samples the pinning counts as on only
+    when both are non-zero (a ramp to zero ends exactly at a stage end)."""
+    sc = res.schedule
+    if not sc or "t_s" not in sc:
+        return None, None
+    t = np.asarray(sc["t_s"], dtype=float)
+    f = float(np.interp(t_s, t, np.asarray(sc["f_rot_hz"], dtype=float))) if "f_rot_hz" in sc else None
+    if "pinning_strength_si" not in sc:
+        return False, f
+    pin = np.abs(np.atleast_2d(np.asarray(sc["pinning_strength_si"], dtype=float).reshape(len(t), -1)))
+    j = int(np.clip(np.searchsorted(t, t_s), 0, len(t) - 1))
+    if math.isclose(t[j], t_s, rel_tol=1e-12, abs_tol=1e-15):
+        on = np.any(pin[j] > 0)
+    else:
+        on = np.any(np.minimum(pin[max(j - 1, 0)], pin[j]) > 0)
+    return bool(on), f
+# -- end of the stand-in ------------------------------------------------------
+
+
+def _frame_text(frame: tuple[str, float]) -> str:
+    """'lab frame' or 'rotating frame, 199.3 kHz'."""
+    kind, f = frame
+    if kind == "lab":
+        return "lab frame"
+    fs, fu = _freq_unit(f)
+    return f"rotating frame, {_fmt(f * fs, 4)} {fu}"
 
 
 def _series_labels(res, n_cols: int, series) -> list:
@@ -509,6 +700,14 @@ def _series_labels(res, n_cols: int, series) -> list:
     rows = []
     e = np.asarray(series["mode_n_mean"], dtype=float)
     stages = list(series.get("stage", [""] * len(e)))
+    stored = series.get("mode_labels")
+    if stored is not None and len(stored) == len(e):  # each row's own labels, as the run wrote them
+        for i, txt in enumerate(stored):
+            txt = txt.decode() if isinstance(txt, bytes) else str(txt)
+            labs = [x for x in txt.split(",") if x] if txt else []
+            labs = labs[:n_cols] + [f"mode {j}" for j in range(len(labs), int(np.sum(np.isfinite(e[i]))))]
+            rows.append(labs + [None] * (n_cols - len(labs)))
+        return rows
     for i in range(len(e)):
         k = int(np.sum(np.isfinite(e[i])))
         own = obs_by_stage.get(stages[i])
@@ -569,28 +768,77 @@ def series_figure(result):
         ax.legend(loc="upper left")
         if pinned:
             _lag_panel(ps, axs[1], se, x, res)
-        ax = axs[-1]
-        e = np.atleast_2d(np.asarray(se["mode_n_mean"], float))
-        labs = _series_labels(res, e.shape[1], se)
-        order = []
-        for row in labs:
-            for lab in row:
-                if lab is not None and lab not in order:
-                    order.append(lab)
-        for i, lab in enumerate(order):
-            y = np.array([e[r, row.index(lab)] if lab in row else np.nan for r, row in enumerate(labs)])
-            st = ps.style(i)
-            ax.plot(x, y, color=st["color"], ls=st["linestyle"], marker=st["marker"], ms=2.5, markevery=max(1, len(x) // 12),
-                    label=lab)
-        fin = e[np.isfinite(e)]
-        if fin.size and np.all(fin > 0):  # log scale only when every mean is positive
-            ax.set_yscale("log")
-        ax.set_ylabel("mean phonons ⟨n⟩ (quanta)")
-        ax.set_title("mode energies")
-        ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0))
+        _modes_panel(ps, axs[-1], res, se, x)
         axs[-1].set_xlabel(f"time ({tu})")
         axs[-1].set_xlim(bounds[0] * ts, bounds[-1] * ts)
+        ps.finish(fig)
     return fig
+
+
+MAX_CURVES = 10  # mode curves drawn one by one in a panel; more are shown as one band
+
+
+def _modes_panel(ps, ax, res, se, x):
+    """Mean phonons of every mode versus time. Up to MAX_CURVES modes each
+    get their own (colour, marker, line); with more, the MAX_CURVES - 1
+    hottest modes (largest mean over the run) are drawn one by one and the
+    others as one grey band from their lowest to their highest mean."""
+    e = np.atleast_2d(np.asarray(se["mode_n_mean"], float))
+    labs = _series_labels(res, e.shape[1], se)
+    order = []
+    for row in labs:
+        for lab in row:
+            if lab is not None and lab not in order:
+                order.append(lab)
+    curves = {lab: np.array([e[r, row.index(lab)] if lab in row else np.nan for r, row in enumerate(labs)])
+              for lab in order}
+    shown = order
+    rest = []
+    if len(order) > MAX_CURVES:
+        heat = {lab: (np.nanmean(y) if np.any(np.isfinite(y)) else -np.inf) for lab, y in curves.items()}
+        top = sorted(order, key=lambda lab: -heat[lab])[:MAX_CURVES - 1]
+        shown = [lab for lab in order if lab in top]
+        rest = [lab for lab in order if lab not in top]
+    every = max(1, len(x) // 12)
+    for i, lab in enumerate(shown):
+        st = ps.style(i)
+        ax.plot(x, curves[lab], color=st["color"], ls=st["linestyle"], marker=st["marker"], ms=2.5, markevery=every,
+                label=lab)
+    if rest:
+        r = np.vstack([curves[lab] for lab in rest])
+        with np.errstate(all="ignore"):
+            lo, hi = np.nanmin(np.where(np.isfinite(r), r, np.inf), axis=0), np.nanmax(np.where(np.isfinite(r), r, -np.inf), axis=0)
+        ok = np.isfinite(lo) & np.isfinite(hi)
+        ax.fill_between(x, np.where(ok, lo, np.nan), np.where(ok, hi, np.nan), color="#c8c8c8", lw=0, zorder=1.5,
+                        label=f"{len(rest)} other modes (lowest to highest)")
+    fin = e[np.isfinite(e)]
+    if fin.size and np.all(fin > 0):  # log scale only when every mean is positive
+        ax.set_yscale("log")
+    ax.set_ylabel("mean phonons ⟨n⟩ (quanta)")
+    ax.set_title("mode energies")
+    ax.set_title(_wrap(_series_frame_note(res, se), 72), loc="right", fontsize=6.5, fontweight="normal")
+    ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0), ncol=1)
+
+
+def _series_frame_note(res, se) -> str:
+    """The frames of the time series' mode energies, in words: the pinning's
+    frame while pinned, each free stage's own (from its end observation)."""
+    t = np.asarray(se["t_s"], dtype=float)
+    stages = list(se.get("stage", [""] * len(t)))
+    parts = []
+    pinned_rows = [(_pinning_at(res, float(tt))[0], st) for tt, st in zip(t, stages)]
+    if any(p for p, _ in pinned_rows):
+        from .statics import SLOW_ROTATION_HZ
+
+        parts.append(f"pinned: the pinning's rotating frame (lab frame below {SLOW_ROTATION_HZ:g} Hz)")
+    for name in dict.fromkeys(st for (p, st) in pinned_rows if p is False):
+        obs = res.stages.get(name)
+        if obs is not None:
+            parts.append(f"'{name}': {_frame_text(_frame_of(res, obs))}")
+    if not parts:
+        fr = {_frame_text(_frame_of(res, o)) for o in res.stages.values()}
+        parts = sorted(fr)
+    return "; ".join(parts)
 
 
 def phonons_figure(result, stage: str | None = None):
@@ -610,25 +858,40 @@ def phonons_figure(result, stage: str | None = None):
     groups = [g for g in groups if g[0] in kinds]
     if not groups:
         raise MissingData("/modes", "no modes in the observation", _src(path))
+    frame = _frame_text(_frame_of(res, obs))
+    counts = [max(1, kinds.count(g[0])) for g in groups]
+    stacked = sum(counts) > 16  # many modes: one full-width row per group
     with ps.context():
-        fig = ps.new_figure(ps.FULL_W, 2.9)
-        ratios = [max(1, kinds.count(g[0])) for g in groups]
-        axs = fig.subplots(1, len(groups), gridspec_kw={"width_ratios": ratios}, squeeze=False)[0]
+        if stacked:
+            fig = ps.new_figure(ps.FULL_W, 0.8 + 2.6 * len(groups))
+            axs = fig.subplots(len(groups), 1, squeeze=False)[:, 0]
+        else:
+            fig = ps.new_figure(ps.FULL_W, 3.1)
+            axs = fig.subplots(1, len(groups), gridspec_kw={"width_ratios": counts}, squeeze=False)[0]
         fs, fu = 1e-3, "kHz"
         for ax, (kind, title, tot, marker, ec, fc) in zip(axs, groups):
             idx = [i for i, k in enumerate(kinds) if k == kind]
             xx = np.arange(len(idx))
-            ax.errorbar(xx, nm[idx], yerr=ne[idx], fmt=marker, mec=ec, mfc=fc, color=ps.INK, ms=5, capsize=2.5, lw=0.9)
-            ax.set_xticks(xx, [f"{labels[i]}\n{freq[i] * fs:.5g}" for i in idx], fontsize=6.5)
+            ax.errorbar(xx, nm[idx], yerr=ne[idx], fmt=marker, mec=ec, mfc=fc, color=ps.INK, ms=5 if len(idx) <= 30 else 3.5,
+                        capsize=2.5 if len(idx) <= 30 else 1.2, lw=0.9)
+            # two lines (label, frequency) while they fit side by side; ps.finish turns or thins them
+            two = not stacked and ps.FULL_W / ps.CM / sum(counts) >= 1.6  # cm of width per mode
+            sep = "\n" if two else " "
+            ax.set_xticks(xx, [f"{labels[i]}{sep}{freq[i] * fs:.5g}" for i in idx], fontsize=6.5)
             ax.set_xlim(-0.6, len(idx) - 0.4)
             top = float(np.nanmax(nm[idx] + np.nan_to_num(ne[idx]))) if len(idx) else 1.0
             ax.set_ylim(0, 1.2 * top if top > 0 else 1.0)
             ax.set_title(f"{title}\ntotal {_pm(s.get(tot + '_mean'), s.get(tot + '_err'), 4)} quanta")
-            ax.set_xlabel(f"mode (label, frequency in {fu})")
-        axs[0].set_ylabel("mean phonon number ⟨n⟩ (quanta)")
+            if stacked:
+                ax.set_ylabel("⟨n⟩ (quanta)")
+        fig.supxlabel(f"mode: label and frequency ({fu}) in the {frame}", fontsize=8)
+        if not stacked:
+            axs[0].set_ylabel("mean phonon number ⟨n⟩ (quanta)")
         where = "end" if stage is None else f"end of '{obs.name}'"
         fig.suptitle(f"phonons at the {where} (t = {obs.t_s * _time_unit(obs.t_s)[0]:.4g} {_time_unit(obs.t_s)[1]}), "
-                     f"{int(s.get('n_ok', 0))} trajectories", fontsize=8, x=0.01, ha="left")
+                     f"{int(s.get('n_ok', 0))} trajectories; modes and frequencies in the {frame}", fontsize=8, x=0.01,
+                     ha="left")
+        ps.finish(fig)
     return fig
 
 
@@ -717,6 +980,7 @@ def spectrum_figure(result, rotor: dict | None = None, k: int | None = None):
             note += f"\ndashed: ΔL not a multiple of {mod} leaves the allowed ladder L ≡ {d['allowed_L_residue']} (mod {mod})"
         ax.set_title("predicted rotational lines", loc="left")
         ax.text(0.0, -0.25, note, transform=ax.transAxes, fontsize=6.5, va="top", ha="left")
+        ps.finish(fig)
     return fig
 
 
@@ -775,6 +1039,7 @@ def coherence_figure(result, rotor: dict | None = None, diffusion_hbar2_per_s: f
         ax.text(1.0, 1.02, f"D = {D:.4g} ħ²/s ({d['diffusion_source']})", transform=ax.transAxes, ha="right", va="bottom",
                 fontsize=7)
         ax.legend(loc="lower left")
+        ps.finish(fig)
     return fig
 
 
@@ -869,12 +1134,50 @@ def _table(src):
     return t, meta
 
 
-class _AxisView:
-    """How a sweep axis is drawn: numeric (in the unit of its texts) or categorical."""
+def _declared_log(meta: dict) -> set:
+    """Keys whose axis the sweep or optimisation file declares logarithmic:
+    ``scale = "log"`` with bounds, or a range with ``spacing = "log"``."""
+    import tomllib
 
-    def __init__(self, key: str, texts: list, si: np.ndarray):
+    text = meta.get("sweep_text") or meta.get("optimize_text")
+    if not text:
+        return set()
+    try:
+        raw = tomllib.loads(str(text))
+    except Exception:
+        return set()
+    out = set()
+    for a in list(raw.get("axis", [])) + list(raw.get("parameter", [])):
+        if not isinstance(a, dict) or "key" not in a:
+            continue
+        rng = a.get("range")
+        if a.get("scale") == "log" or (isinstance(rng, dict) and rng.get("spacing") == "log"):
+            out.add(str(a["key"]))
+    return out
+
+
+def _geometric(levels: np.ndarray) -> bool:
+    """True for three or more positive levels spaced more evenly in their
+    logarithm than in their value (0.5, 1, 2, 4 ms; 1, 3, 10, 30 mK), with
+    the log steps even to 25 % (a 1-2-5 series passes)."""
+    v = np.unique(levels[np.isfinite(levels)])
+    if v.size < 3 or np.any(v <= 0):
+        return False
+    dl, dv = np.diff(np.log(v)), np.diff(v)
+    cv_log = float(np.std(dl) / np.mean(dl))
+    cv_lin = float(np.std(dv) / np.mean(dv))
+    return cv_log < 0.25 and cv_log < 0.5 * cv_lin
+
+
+class _AxisView:
+    """How a sweep axis is drawn: numeric (in the unit of its texts, on a
+    log scale when the file says so or the values are log-spaced) or
+    categorical."""
+
+    def __init__(self, key: str, texts: list, si: np.ndarray, meta: dict | None = None):
         from .sweep import convert, quantity
 
+        meta = meta or {}
         self.key = key
         self.texts = [str(x) for x in texts]
         si = np.asarray(si, dtype=float)
@@ -898,62 +1201,91 @@ class _AxisView:
         self.levels = uniq
         self.pos = np.array([uniq.index(t) for t in self.texts])
         v = self.values[np.isfinite(self.values)]
-        self.log = self.numeric and v.size > 2 and np.all(v > 0) and v.max() / v.min() > 20
+        declared = key in _declared_log(meta)
+        self.log = bool(self.numeric and v.size and np.all(v > 0) and (declared or _geometric(v)))
+        self.name = _key_label(key, meta)
 
     @property
     def label(self) -> str:
         if not self.numeric:
-            return self.key
-        return f"{self.key} ({_pretty_unit(self.unit) if self.unit else 'number'})"
+            return self.name
+        return f"{self.name} ({_pretty_unit(self.unit) if self.unit else 'number'})"
+
+    def level_value(self, i: int) -> float:
+        return float(self.values[self.texts.index(self.levels[i])])
 
     def level_text(self, i: int) -> str:
         """The i-th level as a tick label (numeric: its value in the axis unit)."""
         if not self.numeric:
             return self.levels[i]
-        return _fmt(self.values[self.texts.index(self.levels[i])], 6)
+        return _fmt(self.level_value(i), 6)
+
+    def edges(self) -> np.ndarray:
+        """Cell edges around the levels (numeric): midpoints, geometric on a
+        log axis; half a step beyond the outer levels."""
+        c = np.array([self.level_value(i) for i in range(len(self.levels))])
+        if c.size == 1:
+            return np.array([c[0] / 1.25, c[0] * 1.25]) if self.log else np.array([c[0] - 0.5, c[0] + 0.5])
+        u = np.log(c) if self.log else c
+        mid = 0.5 * (u[1:] + u[:-1])
+        e = np.concatenate([[u[0] - (mid[0] - u[0])], mid, [u[-1] + (u[-1] - mid[-1])]])
+        return np.exp(e) if self.log else e
+
+
+_METRIC_NAMES = {
+    "L_mean_hbar": ("mean ⟨L⟩", 1.0, "ħ"), "L_std_hbar": (f"spread {SIG}", 1.0, "ħ"),
+    "L_com_mean_hbar": ("mean L about the centre of mass", 1.0, "ħ"),
+    "differential_n_mean": ("differential phonons", 1.0, "quanta"), "com_n_mean": ("COM phonons", 1.0, "quanta"),
+    "slip_fraction": ("slipped", 1.0, "fraction"), "loss_fraction": ("lost an ion", 1.0, "fraction"),
+    "reorder_fraction": ("reordered", 1.0, "fraction"), "nonfinite_fraction": ("non-finite", 1.0, "fraction"),
+    "n_ok": ("trajectories kept", 1.0, "count"), "n_trajectories": ("trajectories", 1.0, "count"),
+    "n_steps": ("steps", 1.0, "count"), "I_kg_m2": ("moment of inertia", 1.0, "kg m²"),
+    "objective": ("objective", 1.0, "as defined"), "penalty": ("penalty", 1.0, "objective units"),
+    "feasible": ("feasible", 1.0, "1 = yes"), "duration_s": ("schedule duration", 1e6, "µs"),
+    "dt_s": ("time step", 1e9, "ns"), "wall_s": ("wall-clock time", 1.0, "s"),
+    "f_rot_mean_hz": (f"rotation {FROT}", 1e-3, "kHz"), "f_rot_peak_hz": (f"peak {FROT}", 1e-3, "kHz"),
+}
 
 
 def _metric_label(name: str, meta: dict | None = None):
-    """(label, scale, unit) of a metric for an axis."""
-    prefix = ""
+    """(label, scale, unit) of a metric for an axis: the quantity in words
+    with its unit, never the column name."""
+    suffix = ""
     base = name
     if name.startswith("stage.") and name.count(".") >= 2:
         _, st, base = name.split(".", 2)
-        prefix = f"[{st}] "
-    known = {
-        "L_mean_hbar": ("mean ⟨L⟩", 1.0, "ħ"), "L_std_hbar": (f"spread {SIG}", 1.0, "ħ"),
-        "differential_n_mean": ("differential phonons", 1.0, "quanta"), "com_n_mean": ("COM phonons", 1.0, "quanta"),
-        "slip_fraction": ("slipped", 1.0, "fraction"), "loss_fraction": ("lost an ion", 1.0, "fraction"),
-        "reorder_fraction": ("reordered", 1.0, "fraction"), "nonfinite_fraction": ("non-finite", 1.0, "fraction"),
-        "n_ok": ("trajectories kept", 1.0, "count"), "n_trajectories": ("trajectories", 1.0, "count"),
-        "n_steps": ("steps", 1.0, "count"), "I_kg_m2": ("moment of inertia", 1.0, "kg m²"),
-        "objective": ("objective", 1.0, "as defined"), "penalty": ("penalty", 1.0, "objective units"),
-        "feasible": ("feasible", 1.0, "1 = yes"),
-    }
-    if base in known:
-        lab, sc, u = known[base]
+        suffix = f"\nat the end of '{st}'"
+    if base in _METRIC_NAMES:
+        lab, sc, u = _METRIC_NAMES[base]
     elif base.startswith("mode_n_mean."):
         lab, sc, u = f"⟨n⟩ {base.split('.', 1)[1]}", 1.0, "quanta"
     elif base.startswith("pinning_peak."):
         term = base.split(".", 1)[1]
-        order = dict(_pin_terms(str((meta or {}).get("base_config_text", "")))).get(term)
-        lab, sc, u = f"peak pinning {term}", 1.0, f"V/m{_sup(order)}" if order else "V/mⁿ"
+        order = dict(_base_terms(meta)).get(term)
+        lab, sc, u = f"peak pinning {_term_label(term, order)}", 1.0, _term_unit(order)
     elif base.endswith("_hz"):
-        lab, u = base[:-3], "Hz"
-        sc, u = _freq_unit(1e4 if base.startswith("f_rot") else 1.0)
-        if base == "f_rot_mean_hz":
-            lab = f"rotation {FROT}"
-        elif base == "f_rot_peak_hz":
-            lab = f"peak {FROT}"
+        sc, u = _freq_unit(1e4)
+        lab = base[:-3].replace("_", " ")
     elif base.endswith("_hbar"):
-        lab, sc, u = base[:-5], 1.0, "ħ"
+        lab, sc, u = base[:-5].replace("_", " "), 1.0, "ħ"
+    elif base.endswith("_rad"):
+        lab, sc, u = base[:-4].replace("_", " "), 1.0, "rad"
     elif base.endswith("_s"):
-        lab, sc, u = base[:-2], 1.0, "s"
-        if base in ("duration_s", "dt_s"):
-            sc, u = (1e6, "µs") if base == "duration_s" else (1e9, "ns")
+        lab, sc, u = base[:-2].replace("_", " "), 1.0, "s"
     else:
-        lab, sc, u = base, 1.0, "as stored"
-    return f"{prefix}{lab} ({u})", sc, u
+        lab, sc, u = base.replace("_", " "), 1.0, "as stored"
+    return f"{lab} ({u}){suffix}", sc, u
+
+
+def _metric_name(name: str, meta: dict | None = None) -> str:
+    """The metric's label on one line (for footnotes and titles)."""
+    return _metric_label(name, meta)[0].replace("\n", " ")
+
+
+def _interval_names(m: str, cols) -> tuple:
+    """(lo, hi) column names of a fraction's interval bounds, when stored."""
+    lo, hi = f"{m}_lo", f"{m}_hi"
+    return (lo, hi) if lo in cols and hi in cols else (None, None)
 
 
 def _pick_metrics(t: dict, meta: dict, metrics) -> tuple[list, list]:
@@ -973,7 +1305,8 @@ def _pick_metrics(t: dict, meta: dict, metrics) -> tuple[list, list]:
         from .optimize import err_name
 
         errs = {err_name(m, cols) for m in cols}
-        names = [m for m in cols if m not in errs and m not in BOOKKEEPING]
+        bounds = {b for m in cols for b in _interval_names(m, cols) if b}
+        names = [m for m in cols if m not in errs and m not in bounds and m not in BOOKKEEPING]
     else:
         names = [m.strip() for m in (metrics.split(",") if isinstance(metrics, str) else metrics) if m.strip()]
         bad = [m for m in names if m not in cols]
@@ -994,15 +1327,23 @@ def _pick_metrics(t: dict, meta: dict, metrics) -> tuple[list, list]:
 
 
 def _errors(t, m, rows):
+    """Error bars of a metric: (2, n) distances to a fraction's interval
+    bounds when the file stores them (``<metric>_lo`` / ``_hi``), else its
+    standard error; a fraction's bar never reaches below 0 or above 1."""
     from .optimize import err_name
 
+    v = np.asarray(t["metrics"][m], float)[rows]
+    lo, hi = _interval_names(m, t["metrics"])
+    if lo is not None:
+        a = np.asarray(t["metrics"][lo], float)[rows]
+        b = np.asarray(t["metrics"][hi], float)[rows]
+        return np.vstack([np.clip(v - a, 0.0, None), np.clip(b - v, 0.0, None)])
     en = err_name(m, t["metrics"])
     if en is None:
         return None
     e = np.asarray(t["metrics"][en], float)[rows]
-    v = np.asarray(t["metrics"][m], float)[rows]
-    if m.endswith("_fraction"):  # a fraction is bounded by 0: no error bar below it (rule-of-three bars at p = 0)
-        return np.vstack([np.minimum(e, v), e])
+    if m.endswith("_fraction"):  # bounded by 0 and 1: no error bar beyond them
+        return np.vstack([np.minimum(e, v), np.minimum(e, 1.0 - v)])
     return e
 
 
@@ -1037,12 +1378,19 @@ def sweep_figures(source, metrics=None, axes=None, fixed: dict | None = None, pe
     """Figures of a sweep's (or optimisation's) metrics over its axes.
 
     * one varying axis (or a ``zip`` sweep): each metric versus the axis,
-      markers with standard-error bars, joined by lines;
+      markers with error bars, joined by lines;
     * a grid with two or more varying axes: a heat map per metric over two
       axes (``axes``, default the first two), the others fixed at ``fixed``
       (default: their first value), values written in the cells;
     * scattered points (``sample`` sweeps, optimisations): each metric
       versus each axis, one row of panels per metric.
+
+    A numeric axis is drawn on a log scale when the file declares it so
+    (``scale = "log"``, ``spacing = "log"``) or its values are log-spaced;
+    heat-map cells then span the geometric midpoints between values. Axis
+    titles name the quantity (stage names as written, pinning terms as
+    c_n), not the config path. Error bars: the interval bounds of fractions
+    when the file has them, else standard errors.
 
     Parameters
     ----------
@@ -1073,19 +1421,22 @@ def sweep_figures(source, metrics=None, axes=None, fixed: dict | None = None, pe
     rows = np.flatnonzero(np.asarray(t["complete"], bool) & ~np.asarray(t["failed"], bool))
     if rows.size == 0:
         raise MissingData("/summary", "no finished points yet", meta.get("path"))
-    views = {k: _AxisView(k, t["axes"][k]["text"], t["axes"][k]["si"]) for k in keys}
+    views = {k: _AxisView(k, t["axes"][k]["text"], t["axes"][k]["si"], meta) for k in keys}
     names, zero = _pick_metrics(t, meta, metrics)
     if not names:
         raise MissingData("/summary", "no metric to draw (every default metric is zero)", meta.get("path"))
     combine = meta.get("combine", "optimize" if meta.get("kind") == "optimize" else "grid")
     varying = [k for k in keys if len(views[k].levels) > 1]
-    foot = f"identically zero (not drawn): {', '.join(zero)}" if zero else ""
+    foot = f"zero at every point (not drawn): {'; '.join(_metric_name(m, meta) for m in zero)}" if zero else ""
     kind_title = "optimisation" if meta.get("kind") == "optimize" else "sweep"
     n_done = f"{rows.size} of {len(t['index'])} points finished"
     if combine == "zip" or (combine == "grid" and len(varying) <= 1):
         key = next((k for k in (varying or keys) if views[k].numeric), (varying or keys)[0])
-        return _line_pages(ps, t, meta, views[key], [views[k] for k in keys if k != key] if combine == "zip" else [],
-                           names, rows, per_page, f"{kind_title}: metrics versus {key} ({n_done})", foot)
+        others = [views[k] for k in keys if k != key] if combine == "zip" else []
+        title = f"{kind_title}: metrics versus {views[key].name} ({n_done})"
+        if others:
+            title += "\n" + "; ".join(f"{o.name} varies with it" for o in others) + " (second row of tick labels)"
+        return _line_pages(ps, t, meta, views[key], others, names, rows, per_page, title, foot)
     if combine == "grid":
         if axes:
             pair = [a.strip() for a in (axes.split(",") if isinstance(axes, str) else axes)]
@@ -1099,24 +1450,62 @@ def sweep_figures(source, metrics=None, axes=None, fixed: dict | None = None, pe
         for k in pair:
             fx.pop(k, None)
         return _heat_pages(ps, t, meta, views, pair, fx, names, rows, per_page,
-                           f"{kind_title}: metrics over {pair[0]} and {pair[1]} ({n_done})", foot)
+                           f"{kind_title}: metrics over {views[pair[0]].name} and {views[pair[1]].name} ({n_done})", foot)
     return _scatter_pages(ps, t, meta, [views[k] for k in keys], names, rows, max(1, per_page // 2),
                           f"{kind_title}: metrics versus each parameter ({n_done})", foot)
 
 
 def _footnote(fig, text):
     if text:
-        fig.supxlabel(text, x=0.01, ha="left", fontsize=6.5, color="#555555")
+        fig.supxlabel(text, x=0.01, ha="left", fontsize=6.5, color="#555555", wrap=True)
 
 
-def _set_axis(ax, view, which="x"):
+def _sci(v: float) -> str:
+    """A tick value: plain between 1e-3 and 1e4, else 5×10⁴."""
+    if v == 0 or 1e-3 <= abs(v) < 1e4:
+        return _fmt(v, 3)
+    e = int(math.floor(math.log10(abs(v))))
+    m = float(f"{v / 10 ** e:.3g}")
+    return f"10{_sup(e)}" if m == 1 else f"{_fmt(m, 3)}×10{_sup(e)}"
+
+
+def _log_ticks(axis):
+    """Labelled ticks at 1, 2 and 5 times the powers of ten on a log axis
+    (a sweep over less than a decade still gets labels), unlabelled minor
+    ticks between."""
+    from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+    axis.set_major_locator(LogLocator(base=10.0, subs=(1.0, 2.0, 5.0)))
+    axis.set_major_formatter(FuncFormatter(lambda v, _pos: _sci(v)))
+    axis.set_minor_locator(LogLocator(base=10.0, subs=tuple(range(2, 10))))
+    axis.set_minor_formatter(NullFormatter())
+
+
+def _set_axis(ax, view, which="x", others=()):
+    """Scale, ticks and title of a sweep axis. ``others``: zipped axes whose
+    values are written under the ticks (one line each)."""
+    setter = ax.set_xscale if which == "x" else ax.set_yscale
     if view.numeric:
         if view.log:
-            (ax.set_xscale if which == "x" else ax.set_yscale)("log")
+            setter("log")
+            _log_ticks(ax.xaxis if which == "x" else ax.yaxis)
+        if others:
+            from matplotlib.ticker import NullLocator
+
+            ticks = [view.level_value(i) for i in range(len(view.levels))]
+            texts = []
+            for i, lv in enumerate(view.levels):
+                j = view.texts.index(lv)
+                texts.append("\n".join([view.level_text(i)] + [o.level_text(int(o.pos[j])) for o in others]))
+            (ax.set_xticks if which == "x" else ax.set_yticks)(ticks, texts)
+            (ax.xaxis if which == "x" else ax.yaxis).set_minor_locator(NullLocator())
     else:
         ticks = list(range(len(view.levels)))
-        (ax.set_xticks if which == "x" else ax.set_yticks)(ticks, view.levels, rotation=20 if which == "x" else 0)
-    (ax.set_xlabel if which == "x" else ax.set_ylabel)(view.label)
+        (ax.set_xticks if which == "x" else ax.set_yticks)(ticks, view.levels)
+    label = view.label
+    if others:
+        label += "\n" + "\n".join(o.label for o in others)
+    (ax.set_xlabel if which == "x" else ax.set_ylabel)(label)
 
 
 def _line_pages(ps, t, meta, view, others, names, rows, per_page, title, foot):
@@ -1126,7 +1515,7 @@ def _line_pages(ps, t, meta, view, others, names, rows, per_page, title, foot):
         ncol = 2 if len(chunk) > 1 else 1
         nrow = math.ceil(len(chunk) / ncol)
         with ps.context():
-            fig = ps.new_figure(ps.FULL_W, 0.5 + 2.1 * nrow)
+            fig = ps.new_figure(ps.FULL_W, 0.7 + (2.1 + 0.25 * len(others)) * nrow)
             axs = np.atleast_1d(fig.subplots(nrow, ncol, squeeze=False)).ravel()
             for ax, m in zip(axs, chunk):
                 lab, sc, _ = _metric_label(m, meta)
@@ -1138,21 +1527,50 @@ def _line_pages(ps, t, meta, view, others, names, rows, per_page, title, foot):
                 ax.errorbar(x[o], y[o], yerr=None if e is None else (e[..., o] if e.ndim == 2 else e[o]), fmt="o-",
                             color=ps.INK, mfc="white", ms=4, lw=1.0, capsize=2)
                 ax.set_ylabel(lab)
-                _set_axis(ax, view, "x")
-                if others:
-                    ax.set_title("with " + ", ".join(o_.key for o_ in others) + " varying together", fontsize=6.5)
+                _set_axis(ax, view, "x", others)
             for ax in axs[len(chunk):]:
                 ax.set_visible(False)
             fig.suptitle(title + (f", page {p0 // per_page + 1}" if len(names) > per_page else ""), fontsize=8, x=0.01, ha="left")
             _footnote(fig, foot)
+            ps.finish(fig)
         figs.append(fig)
     return figs
+
+
+def _cell_axis(ax, view, which):
+    """Heat-map axis: numeric levels at their values (cells between the
+    midpoints, log scale when the axis is log), categories at 0, 1, 2 ..."""
+    from matplotlib.ticker import NullLocator
+
+    n = len(view.levels)
+    if view.numeric:
+        edges = view.edges()
+        centres = np.array([view.level_value(i) for i in range(n)])
+    else:
+        edges = np.arange(n + 1) - 0.5
+        centres = np.arange(n, dtype=float)
+    if view.numeric and view.log:
+        (ax.set_xscale if which == "x" else ax.set_yscale)("log")
+    (ax.set_xticks if which == "x" else ax.set_yticks)(centres, [view.level_text(i) for i in range(n)])
+    (ax.xaxis if which == "x" else ax.yaxis).set_minor_locator(NullLocator())
+    (ax.set_xlim if which == "x" else ax.set_ylim)(edges[0], edges[-1])
+    (ax.set_xlabel if which == "x" else ax.set_ylabel)(view.label if which == "x" else _wrap(view.label, 30))
+    return edges, centres
+
+
+def _cell_text(ps, Z, E, LO, HI, iy, ix, small):
+    s = _fmt(Z[iy, ix], 3)
+    if np.isfinite(LO[iy, ix]) and small:
+        s += f"\n[{_fmt(LO[iy, ix], 2)}, {_fmt(HI[iy, ix], 2)}]"
+    elif np.isfinite(E[iy, ix]) and small:
+        s += f"\n±{_fmt(E[iy, ix], 2)}"
+    return s
 
 
 def _heat_pages(ps, t, meta, views, pair, fixed, names, rows, per_page, title, foot):
     vx, vy = views[pair[0]], views[pair[1]]
     sel = [r for r in rows if all(views[k].pos[r] == i for k, i in fixed.items())]
-    slice_txt = ", ".join(f"{k} = {_pretty_unit(views[k].levels[i]) if views[k].numeric else views[k].levels[i]}"
+    slice_txt = ", ".join(f"{views[k].name} = {_pretty_unit(views[k].levels[i]) if views[k].numeric else views[k].levels[i]}"
                           for k, i in fixed.items())
     figs = []
     cm = ps.cmap()
@@ -1161,45 +1579,44 @@ def _heat_pages(ps, t, meta, views, pair, fixed, names, rows, per_page, title, f
         ncol = 2 if len(chunk) > 1 else 1
         nrow = math.ceil(len(chunk) / ncol)
         with ps.context():
-            fig = ps.new_figure(ps.FULL_W, 0.6 + 2.5 * nrow)
+            fig = ps.new_figure(ps.FULL_W, 0.7 + 2.6 * nrow)
             axs = np.atleast_1d(fig.subplots(nrow, ncol, squeeze=False)).ravel()
             for ax, m in zip(axs, chunk):
                 lab, sc, _ = _metric_label(m, meta)
                 Z = np.full((len(vy.levels), len(vx.levels)), np.nan)
-                E = np.full_like(Z, np.nan)
+                E, LO, HI = np.full_like(Z, np.nan), np.full_like(Z, np.nan), np.full_like(Z, np.nan)
+                lo_n, hi_n = _interval_names(m, t["metrics"])
                 e = _errors(t, m, np.asarray(sel, int)) if sel else None
                 if e is not None and np.ndim(e) == 2:
-                    e = e[1]
+                    e = None
                 for j, r in enumerate(sel):
                     Z[vy.pos[r], vx.pos[r]] = float(t["metrics"][m][r]) * sc
                     if e is not None:
                         E[vy.pos[r], vx.pos[r]] = float(e[j]) * sc
-                mesh = ax.pcolormesh(np.arange(len(vx.levels) + 1) - 0.5, np.arange(len(vy.levels) + 1) - 0.5,
-                                     np.ma.masked_invalid(Z), cmap=cm, shading="flat")
+                    if lo_n is not None:
+                        LO[vy.pos[r], vx.pos[r]] = float(t["metrics"][lo_n][r]) * sc
+                        HI[vy.pos[r], vx.pos[r]] = float(t["metrics"][hi_n][r]) * sc
+                ex, cx = _cell_axis(ax, vx, "x")
+                ey, cy = _cell_axis(ax, vy, "y")
+                mesh = ax.pcolormesh(ex, ey, np.ma.masked_invalid(Z), cmap=cm, shading="flat")
                 ax.grid(False)
                 fig.colorbar(mesh, ax=ax, label=lab, fraction=0.07, pad=0.02)
                 if Z.size <= 48:
                     for iy in range(Z.shape[0]):
                         for ix in range(Z.shape[1]):
                             if not np.isfinite(Z[iy, ix]):
-                                ax.text(ix, iy, "no data", ha="center", va="center", fontsize=6, color="#777777")
+                                ax.text(cx[ix], cy[iy], "no data", ha="center", va="center", fontsize=6, color="#777777")
                                 continue
                             lum = ps.luminance(cm(mesh.norm(Z[iy, ix])))
-                            s = _fmt(Z[iy, ix], 3)
-                            if np.isfinite(E[iy, ix]) and Z.size <= 24:
-                                s += f"\n±{_fmt(E[iy, ix], 2)}"
-                            ax.text(ix, iy, s, ha="center", va="center", fontsize=6, color="white" if lum < 0.45 else "black")
-                ax.set_xticks(range(len(vx.levels)), [vx.level_text(i) for i in range(len(vx.levels))],
-                              rotation=0 if vx.numeric else 20)
-                ax.set_yticks(range(len(vy.levels)), [vy.level_text(i) for i in range(len(vy.levels))])
-                ax.set_xlabel(vx.key + (f" ({_pretty_unit(vx.unit)})" if vx.numeric and vx.unit else ""))
-                ax.set_ylabel(vy.key + (f" ({_pretty_unit(vy.unit)})" if vy.numeric and vy.unit else ""))
+                            ax.text(cx[ix], cy[iy], _cell_text(ps, Z, E, LO, HI, iy, ix, Z.size <= 24), ha="center",
+                                    va="center", fontsize=6, color="white" if lum < 0.45 else "black")
                 ax.spines[["top", "right"]].set_visible(True)
             for ax in axs[len(chunk):]:
                 ax.set_visible(False)
             sup = title + (f"\nat {slice_txt}" if slice_txt else "")
             fig.suptitle(sup + (f", page {p0 // per_page + 1}" if len(names) > per_page else ""), fontsize=8, x=0.01, ha="left")
             _footnote(fig, foot)
+            ps.finish(fig)
         figs.append(fig)
     return figs
 
@@ -1207,10 +1624,11 @@ def _heat_pages(ps, t, meta, views, pair, fixed, names, rows, per_page, title, f
 def _scatter_pages(ps, t, meta, views, names, rows, rows_per_page, title, foot):
     figs = []
     best = meta.get("best_index")
+    has_best = best is not None and int(best) in set(int(r) for r in rows)
     for p0 in range(0, len(names), rows_per_page):
         chunk = names[p0:p0 + rows_per_page]
         with ps.context():
-            fig = ps.new_figure(ps.FULL_W, 0.5 + 1.9 * len(chunk))
+            fig = ps.new_figure(ps.FULL_W, 0.7 + 2.0 * len(chunk))
             axs = fig.subplots(len(chunk), len(views), squeeze=False, sharey="row")
             for i, m in enumerate(chunk):
                 lab, sc, _ = _metric_label(m, meta)
@@ -1220,18 +1638,24 @@ def _scatter_pages(ps, t, meta, views, names, rows, rows_per_page, title, foot):
                 for j, v in enumerate(views):
                     ax = axs[i, j]
                     x = v.values[rows] if v.numeric else v.pos[rows].astype(float)
-                    ax.errorbar(x, y, yerr=e, fmt="o", color=ps.INK, mfc="white", ms=3.5, lw=0.8, capsize=1.5)
-                    if best is not None and int(best) in set(int(r) for r in rows):
+                    ax.errorbar(x, y, yerr=e, fmt="o", color=ps.INK, mfc="white", ms=3.5, lw=0.8, capsize=1.5,
+                                label="evaluated point" if meta.get("kind") == "optimize" else "sweep point")
+                    if has_best:
                         b = int(np.flatnonzero(rows == int(best))[0])
-                        ax.plot([x[b]], [y[b]], marker="*", ms=11, color=ps.ACCENT, ls="none", label="best")
+                        ax.plot([x[b]], [y[b]], marker="*", ms=11, color=ps.ACCENT, ls="none", label="best point")
                     _set_axis(ax, v, "x")
                     if j == 0:
                         ax.set_ylabel(lab)
-            if best is not None:
-                axs[0, 0].legend(loc="best")
+                fin = y[np.isfinite(y)]
+                if m == "objective" and fin.size and np.all(fin > 0) and fin.max() / fin.min() > 100:
+                    axs[i, 0].set_yscale("log")  # as in the history (rows share y)
+            if has_best:  # one legend for the page, outside the panels
+                h, lb = axs[0, 0].get_legend_handles_labels()
+                fig.legend(h, lb, loc="outside upper right", ncol=2, fontsize=6.5)
             fig.suptitle(title + (f", page {p0 // rows_per_page + 1}" if len(names) > rows_per_page else ""), fontsize=8,
                          x=0.01, ha="left")
             _footnote(fig, foot)
+            ps.finish(fig)
         figs.append(fig)
     return figs
 
@@ -1241,7 +1665,8 @@ def optimize_figure(source):
     (feasible: filled circles; infeasible: crosses), the best so far, the
     best point (star) and the confirmation run (with its standard error from
     the metrics' errors, in quadrature); below, each parameter per
-    evaluation in its own unit with its bounds."""
+    evaluation in its own unit with its bounds (log scale when the file
+    declares it). The legend stands above the panels, clear of the points."""
     ps = _mpl()
     t, meta = _table(source)
     if meta.get("kind") != "optimize" or "objective" not in t["metrics"]:
@@ -1251,10 +1676,10 @@ def optimize_figure(source):
     obj = np.asarray(t["metrics"]["objective"], float)
     feas = np.asarray(t["metrics"].get("feasible", np.ones_like(obj)), float) > 0.5
     keys = list(t["axes"])
-    views = {k: _AxisView(k, t["axes"][k]["text"], t["axes"][k]["si"]) for k in keys}
+    views = {k: _AxisView(k, t["axes"][k]["text"], t["axes"][k]["si"], meta) for k in keys}
     best = meta.get("best_index")
     with ps.context():
-        fig = ps.new_figure(ps.FULL_W, 2.6 + 1.1 * len(keys))
+        fig = ps.new_figure(ps.FULL_W, 3.0 + 1.15 * len(keys))
         axs = fig.subplots(1 + len(keys), 1, sharex=True, squeeze=False,
                            gridspec_kw={"height_ratios": [2.2] + [1.0] * len(keys)})[:, 0]
         ax = axs[0]
@@ -1281,9 +1706,12 @@ def optimize_figure(source):
         v = obj[ok]
         if v.size and np.all(v > 0) and v.max() / v.min() > 100:
             ax.set_yscale("log")
+        ax.margins(x=0.03, y=0.08)
         ax.set_ylabel("objective (as defined)")
-        ax.set_title(f"optimisation ({meta.get('method', '?')}): {int(np.sum(done))} evaluations")
-        ax.legend(loc="upper right", fontsize=6.5)
+        fig.suptitle(f"optimisation ({meta.get('method', '?')}): {int(np.sum(done))} evaluations", fontsize=8.5,
+                     fontweight="bold", x=0.01, ha="left")
+        h, lb = ax.get_legend_handles_labels()
+        fig.legend(h, lb, loc="outside right upper", fontsize=6.5)  # beside the panels: never on a point
         for ax, k in zip(axs[1:], keys):
             vw = views[k]
             y = vw.values if vw.numeric else vw.pos.astype(float)
@@ -1301,12 +1729,24 @@ def optimize_figure(source):
                         pass
             if vw.log:
                 ax.set_yscale("log")
-            ax.set_ylabel(f"{k.rsplit('.', 1)[-1] if len(k) > 22 else k}\n({_pretty_unit(vw.unit) if vw.unit else 'number'})",
-                          fontsize=6.5)
+                _log_ticks(ax.yaxis)
+            if not vw.numeric:
+                ax.set_yticks(range(len(vw.levels)), vw.levels)
+            ax.set_ylabel(_wrap(vw.name, 18) + f"\n({_pretty_unit(vw.unit) if vw.unit else 'number'})", fontsize=6.5)
         axs[-1].set_xlabel("evaluation number")
+        from matplotlib.ticker import MaxNLocator
+
+        axs[-1].xaxis.set_major_locator(MaxNLocator(integer=True))
         if meta.get("message"):
             _footnote(fig, f"optimiser: {meta['message']}")
+        ps.finish(fig)
     return fig
+
+
+def _wrap(text: str, width: int) -> str:
+    import textwrap
+
+    return "\n".join(textwrap.wrap(text, width)) or text
 
 
 def _confirm_error(meta, cm):
@@ -1402,7 +1842,8 @@ class _Doc:
 
 def _save(fig, folder: Path, name: str, fmt: str, dpi: int) -> Path:
     p = folder / f"{name}.{fmt}"
-    fig.savefig(p, format=fmt, dpi=dpi)
+    with _mpl().context():  # the style's savefig settings (tight box, fonts kept as text)
+        fig.savefig(p, format=fmt, dpi=dpi)
     return p
 
 
@@ -1494,9 +1935,11 @@ def _report_run(src, out, fmt, dpi, doc, written, skipped, diffusion, k, prefix=
     rows = [["final L (mean)", f"{_pm(s['L_mean_hbar'], s['L_mean_err_hbar'], 6)} ħ"],
             ["final L spread", f"{_pm(s['L_std_hbar'], s['L_std_err_hbar'])} ħ"],
             ["rotation f_rot", f"{_pm(s['f_rot_mean_hz'] / 1e3, s['f_rot_mean_err_hz'] / 1e3, 7)} kHz"],
-            ["slipped / lost / reordered", f"{s['slip_fraction']:.3f} / {s['loss_fraction']:.3f} / {s['reorder_fraction']:.3f}"],
+            ["slipped / lost / reordered", " / ".join(_fraction_text(s, m) for m in
+                                                      ("slip_fraction", "loss_fraction", "reorder_fraction"))],
             ["differential phonons", _pm(s["differential_n_mean"], s["differential_n_err"])],
-            ["COM phonons", _pm(s["com_n_mean"], s["com_n_err"])]]
+            ["COM phonons", _pm(s["com_n_mean"], s["com_n_err"])],
+            ["modes measured in the", _frame_text(_frame_of(res, res.final))]]
     if rot:
         rows += [["allowed L", f"{rot['allowed_L_residue']} mod {rot['allowed_L_mod']} ({rot['statistics']})"],
                  ["ħ/(2πI)", f"{rot['hbar_over_I_hz']:.5g} Hz"],
