@@ -349,29 +349,69 @@ def _legend_step(ax, renderer, state: dict) -> bool:
     return False
 
 
+def wrap_text(text: str, width: int) -> str:
+    """Wrap to ``width`` visible characters a line; a mathtext piece
+    ($f_\\mathrm{rot}$) counts as the letters it shows and is never split."""
+    import re
+    import textwrap
+
+    pieces = re.findall(r"\$[^$]*\$", text)
+    for i, p in enumerate(pieces):
+        shown = max(1, len(re.sub(r"\\[a-zA-Z]+|[{}_^$ ]", "", p)))
+        text = text.replace(p, chr(0xE000 + i) * shown, 1)
+    out = "\n".join(textwrap.wrap(text, width, break_long_words=False)) or text
+    for i, p in enumerate(pieces):
+        out = re.sub(chr(0xE000 + i) + "+", lambda _m, p=p: p, out, count=1)
+    return out
+
+
+def _narrower(t) -> bool:
+    """Re-wrap a text to 80 % of its longest line (at least 10 characters)."""
+    import re
+
+    lines = t.get_text().split("\n")
+    shown = [len(re.sub(r"\$[^$]*\$", lambda m: "x" * max(1, len(re.sub(r"\\[a-zA-Z]+|[{}_^$ ]", "", m.group(0)))), x))
+             for x in lines]
+    width = int(max(shown) * 0.8)
+    if width < 10:
+        return False
+    new = wrap_text(" ".join(t.get_text().split()), width)
+    if new == t.get_text():
+        return False
+    t.set_text(new)
+    return True
+
+
+def _label_step(fig, renderer) -> bool:
+    """Re-wrap axis titles of neighbouring panels that run into each other
+    (side-by-side panels with long x titles)."""
+    labels = [ax.xaxis.label for ax in _panels(fig) if ax.xaxis.label.get_text()]
+    labels += [ax.yaxis.label for ax in _panels(fig) if ax.yaxis.label.get_text()]
+    boxes = [t.get_window_extent(renderer) for t in labels]
+    changed = False
+    for i in range(len(labels)):
+        for j in range(i + 1, len(labels)):
+            if boxes_overlap([boxes[i], boxes[j]]):
+                changed |= _narrower(labels[i]) | _narrower(labels[j])
+    return changed
+
+
 def _title_step(ax, renderer) -> bool:
     """Re-wrap a panel's right-hand title to fewer characters a line while
     it runs into the left-hand one."""
-    import textwrap
-
     left, right = ax._left_title, ax._right_title
     if not (left.get_text() and right.get_text()):
         return False
     if not boxes_overlap([left.get_window_extent(renderer), right.get_window_extent(renderer)]):
         return False
-    text = " ".join(right.get_text().split())
-    longest = max(len(line) for line in right.get_text().split("\n"))
-    width = int(longest * 0.8)
-    if width < 12:
-        return False
-    right.set_text("\n".join(textwrap.wrap(text, width)))
-    return True
+    return _narrower(right)
 
 
 def finish(fig, max_rounds: int = 24):
     """The layout checks every figure goes through before it is returned:
     markers inside their panels, tick labels clear of each other, legends
-    off the data, a panel's two titles apart. Each round lays the figure out once and lets every check
+    off the data, a panel's two titles apart, axis titles of neighbouring
+    panels apart. Each round lays the figure out once and lets every check
     take one step on every panel; it ends when none asks for another."""
     state: dict = {}
     for _ in range(max_rounds):
@@ -383,6 +423,7 @@ def finish(fig, max_rounds: int = 24):
             changed |= _tick_step(ax, "y", r, state)
             changed |= _legend_step(ax, r, state)
             changed |= _title_step(ax, r)
+        changed |= _label_step(fig, r)
         if not changed:
             break
     return fig

@@ -814,6 +814,7 @@ def _modes_panel(ps, ax, res, se, x):
     fin = e[np.isfinite(e)]
     if fin.size and np.all(fin > 0):  # log scale only when every mean is positive
         ax.set_yscale("log")
+        _log_ticks(ax.yaxis)
     ax.set_ylabel("mean phonons ⟨n⟩ (quanta)")
     ax.set_title("mode energies")
     ax.set_title(_wrap(_series_frame_note(res, se), 72), loc="right", fontsize=6.5, fontweight="normal")
@@ -887,7 +888,7 @@ def phonons_figure(result, stage: str | None = None):
         fig.supxlabel(f"mode: label and frequency ({fu}) in the {frame}", fontsize=8)
         if not stacked:
             axs[0].set_ylabel("mean phonon number ⟨n⟩ (quanta)")
-        where = "end" if stage is None else f"end of '{obs.name}'"
+        where = "end" if stage is None else ("start" if obs.name == "initial" else f"end of '{obs.name}'")
         fig.suptitle(f"phonons at the {where} (t = {obs.t_s * _time_unit(obs.t_s)[0]:.4g} {_time_unit(obs.t_s)[1]}), "
                      f"{int(s.get('n_ok', 0))} trajectories; modes and frequencies in the {frame}", fontsize=8, x=0.01,
                      ha="left")
@@ -1649,11 +1650,8 @@ def _scatter_pages(ps, t, meta, views, names, rows, rows_per_page, title, foot):
                 fin = y[np.isfinite(y)]
                 if m == "objective" and fin.size and np.all(fin > 0) and fin.max() / fin.min() > 100:
                     axs[i, 0].set_yscale("log")  # as in the history (rows share y)
-            if has_best:  # one legend for the page, outside the panels
-                h, lb = axs[0, 0].get_legend_handles_labels()
-                fig.legend(h, lb, loc="outside upper right", ncol=2, fontsize=6.5)
-            fig.suptitle(title + (f", page {p0 // rows_per_page + 1}" if len(names) > rows_per_page else ""), fontsize=8,
-                         x=0.01, ha="left")
+            page = f", page {p0 // rows_per_page + 1}" if len(names) > rows_per_page else ""
+            fig.suptitle(title + page + ("\nstar: the best point" if has_best else ""), fontsize=8, x=0.01, ha="left")
             _footnote(fig, foot)
             ps.finish(fig)
         figs.append(fig)
@@ -1744,9 +1742,9 @@ def optimize_figure(source):
 
 
 def _wrap(text: str, width: int) -> str:
-    import textwrap
+    from .plotstyle import wrap_text
 
-    return "\n".join(textwrap.wrap(text, width)) or text
+    return wrap_text(text, width)
 
 
 def _confirm_error(meta, cm):
