@@ -278,7 +278,28 @@ def _stage_bounds(res):
     return np.array([0.0] + [res.stages[n].t_s for n in names]), names
 
 
+def _spread(ax, centres, texts, fontsize):
+    """Horizontal positions (axes fraction) for labels wanted at ``centres``
+    (axes fraction, increasing) that keep them from running into each
+    other, in the same order, inside the panel. Widths are estimated from
+    the longest line (0.6 em a character) on the panel's share of the page;
+    the layout checks confirm the result."""
+    axes_w_in = 0.85 * ax.figure.get_figwidth()
+    widths = [(0.6 * fontsize / 72.0 * max(len(x) for x in t.split("\n")) + 0.08) / axes_w_in for t in texts]
+    pos = list(centres)
+    for i in range(1, len(pos)):  # push right past the left neighbour ...
+        pos[i] = max(pos[i], pos[i - 1] + 0.5 * (widths[i - 1] + widths[i]))
+    if pos:  # ... then back inside the right edge, and past the right neighbour
+        pos[-1] = min(pos[-1], 1.0 - 0.5 * widths[-1])
+        for i in range(len(pos) - 2, -1, -1):
+            pos[i] = min(pos[i], pos[i + 1] - 0.5 * (widths[i] + widths[i + 1]))
+    return pos
+
+
 def _shade_stages(ax, bounds_s, names, scale, label=True):
+    """Stages as alternating bands; with ``label`` their names (as the config
+    writes them) above the panel, spread apart where stages are too narrow
+    for their names and joined to their stage by a thin line."""
     from .plotstyle import STAGE_FILL
 
     for i, name in enumerate(names):
@@ -286,11 +307,20 @@ def _shade_stages(ax, bounds_s, names, scale, label=True):
         ax.axvspan(a, b, color=STAGE_FILL[i % 2], zorder=0, lw=0)
         if i:
             ax.axvline(a, color="#a8a8a8", lw=0.6, zorder=0.5)
-        if label:
-            total = (bounds_s[-1] - bounds_s[0]) * scale or 1.0
-            narrow = (b - a) / total < 0.08
-            ax.text((a + b) / 2, 1.02, name, transform=ax.get_xaxis_transform(), ha="center", va="bottom",
-                    fontsize=6.5 if narrow else 7.5, rotation=60 if narrow else 0, style="italic", clip_on=False)
+    if not label or not names:
+        return
+    total = float(bounds_s[-1] - bounds_s[0]) or 1.0
+    centres = [(0.5 * (bounds_s[i] + bounds_s[i + 1]) - bounds_s[0]) / total for i in range(len(names))]
+    fs = 7.5
+    pos = _spread(ax, centres, [str(n) for n in names], fs)
+    for name, c, p in zip(names, centres, pos):
+        if abs(p - c) < 1e-3:
+            ax.text(c, 1.02, name, transform=ax.transAxes, ha="center", va="bottom", fontsize=fs, style="italic",
+                    clip_on=False)
+        else:
+            ax.annotate(name, xy=(c, 0.95), xycoords="axes fraction", xytext=(p, 1.02), textcoords="axes fraction",
+                        ha="center", va="bottom", fontsize=fs, style="italic", annotation_clip=False,
+                        arrowprops={"arrowstyle": "-", "color": "#6a6a6a", "lw": 0.6, "shrinkA": 0, "shrinkB": 0})
 
 
 def _pin_terms(config_text: str):
@@ -960,6 +990,9 @@ def spectrum_figure(result, rotor: dict | None = None, k: int | None = None):
         pad = max(0.12 * span, 4 * float(np.max(wid)))
         lo, hi = float(np.min(cen)) - pad, float(np.max(cen)) + pad
         x = np.linspace(lo, hi, 3000)
+        texts = [f"ΔL = {dl}\n{c * fs:.7g} {fu}\nσ = {_fmt(w * fs, 3)} {fu}" for c, w, dl in zip(cen, wid, dls)]
+        at = [(c - lo) / (hi - lo) for c in cen]
+        pos = _spread(ax, at, texts, 6.5)
         for i, (c, w, dl) in enumerate(zip(cen, wid, dls)):
             on = dl % mod == 0
             col = ps.INK if on else ps.MUTED
@@ -968,8 +1001,12 @@ def spectrum_figure(result, rotor: dict | None = None, k: int | None = None):
                 ax.plot(x * fs, np.exp(-0.5 * ((x - c) / w) ** 2), color=col, ls=lsty, lw=1.0)
             ax.vlines(c * fs, 0, 1.0, color=col, ls=lsty, lw=1.6)
             ax.errorbar([c * fs], [0.5], xerr=[w * fs], fmt="none", ecolor=col, capsize=3, lw=1.0)
-            ax.text(c * fs, 1.04, f"ΔL = {dl}\n{c * fs:.7g} {fu}\nσ = {_fmt(w * fs, 3)} {fu}", ha="center", va="bottom",
-                    fontsize=6.5, color=col)
+            if abs(pos[i] - at[i]) < 1e-3:
+                ax.text(c * fs, 1.04, texts[i], ha="center", va="bottom", fontsize=6.5, color=col)
+            else:  # moved aside to stay clear of a neighbour: a thin line to its stick
+                ax.annotate(texts[i], xy=(c * fs, 1.0), xytext=(pos[i], 1.04),
+                            textcoords=("axes fraction", "data"), ha="center", va="bottom", fontsize=6.5, color=col,
+                            arrowprops={"arrowstyle": "-", "color": col, "lw": 0.6, "shrinkA": 0, "shrinkB": 0})
         ax.set_xlim(lo * fs, hi * fs)
         ax.set_ylim(0, 1.55)
         ax.set_yticks([0, 0.5, 1.0])

@@ -17,6 +17,7 @@ import re
 import numpy as np
 import pytest
 from matplotlib.colors import to_rgba
+from matplotlib.text import Text
 
 import mdrotor
 from mdrotor import plotstyle, report
@@ -107,6 +108,18 @@ def assert_headings_clear(fig, r=None):
             assert not _overlap(items[i][1], items[j][1]), f"{items[i][0]} overlaps {items[j][0]}"
 
 
+def assert_panel_texts_apart(fig, r=None):
+    """Texts written on a panel (stage names, line labels, notes) do not
+    run into each other."""
+    r = r or _drawn(fig)
+    for ax in _panels(fig):
+        texts = [t for t in ax.texts if t.get_visible() and t.get_text().strip()]
+        boxes = [Text.get_window_extent(t, r) for t in texts]  # the text alone (an annotation's leader line aside)
+        for i in range(len(boxes)):
+            for j in range(i + 1, len(boxes)):
+                assert not _overlap(boxes[i], boxes[j]), f"{texts[i].get_text()!r} overlaps {texts[j].get_text()!r}"
+
+
 def _data_px(ax):
     pts = []
     for ln in ax.get_lines():
@@ -167,6 +180,7 @@ def assert_readable(fig):
     assert_no_internal_names(fig)
     assert_tick_labels_clear(fig, r)
     assert_headings_clear(fig, r)
+    assert_panel_texts_apart(fig, r)
     assert_legends_off_data(fig, r)
     assert_markers_inside(fig, r)
 
@@ -211,6 +225,21 @@ def test_every_run_figure_is_readable(run):
             assert_readable(fig)
         except AssertionError as e:
             raise AssertionError(f"{name}: {e}") from None
+
+
+def test_narrow_stages_keep_their_names_apart(run):
+    """Three short stages between two long ones: the names spread out in
+    stage order, each tied to its stage."""
+    res = mdrotor.load(run)
+    t_end = res.schedule["stage_bounds_s"][-1]
+    res.schedule = dict(res.schedule, stage_bounds_s=np.array([0, 0.5, 0.505, 0.51, 0.515, 1.0]) * t_end,
+                        stage_names=["spin-up", "hold-a", "hold-b", "kick", "free rotation"])
+    fig = report.schedule_figure(res)
+    assert_readable(fig)
+    top = fig.axes[0]
+    r = _drawn(fig)
+    names = {t.get_text(): t.get_window_extent(r).x0 for t in top.texts}
+    assert list(dict(sorted(names.items(), key=lambda kv: kv[1]))) == ["spin-up", "hold-a", "hold-b", "kick", "free rotation"]
 
 
 def test_series_styles_distinct(tmp_path, configs_dir):
