@@ -1315,6 +1315,11 @@ def _metric_label(name: str, meta: dict | None = None):
     return f"{lab} ({u}){suffix}", sc, u
 
 
+def _plain(text: str) -> str:
+    """Figure text for a Markdown / HTML page: the mathtext symbols as plain characters."""
+    return text.replace(SIG, "σ_L").replace(FROT, "f_rot")
+
+
 def _metric_name(name: str, meta: dict | None = None) -> str:
     """The metric's label on one line (for footnotes and titles)."""
     return _metric_label(name, meta)[0].replace("\n", " ")
@@ -2051,7 +2056,7 @@ def _report_sweep(src, kind, out, fmt, dpi, doc, written, skipped, metrics, axes
     _emit(figs, out, fmt, dpi, doc, written, captions=caps)
     # table of the main metrics per point (first 40 rows)
     names = [m for m in ("objective", "L_mean_hbar", "L_std_hbar", "slip_fraction", "differential_n_mean") if m in t["metrics"]]
-    hdr = ["#"] + list(t["axes"]) + names
+    hdr = ["#"] + [_plain(_key_label(k, meta)) for k in t["axes"]] + [_plain(_metric_name(m, meta)) for m in names]
     body = []
     for i in np.flatnonzero(done)[:40]:
         body.append([str(int(t["index"][i]))] + [ax["text"][i] for ax in t["axes"].values()]
