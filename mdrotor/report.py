@@ -1601,7 +1601,7 @@ def _cell_axis(ax, view, which):
     return edges, centres
 
 
-def _cell_text(ps, Z, E, LO, HI, iy, ix, small):
+def _cell_text(Z, E, LO, HI, iy, ix, small):
     s = _fmt(Z[iy, ix], 3)
     if np.isfinite(LO[iy, ix]) and small:
         s += f"\n[{_fmt(LO[iy, ix], 2)}, {_fmt(HI[iy, ix], 2)}]"
@@ -1651,7 +1651,7 @@ def _heat_pages(ps, t, meta, views, pair, fixed, names, rows, per_page, title, f
                                 ax.text(cx[ix], cy[iy], "no data", ha="center", va="center", fontsize=6, color="#777777")
                                 continue
                             lum = ps.luminance(cm(mesh.norm(Z[iy, ix])))
-                            ax.text(cx[ix], cy[iy], _cell_text(ps, Z, E, LO, HI, iy, ix, Z.size <= 24), ha="center",
+                            ax.text(cx[ix], cy[iy], _cell_text(Z, E, LO, HI, iy, ix, Z.size <= 24), ha="center",
                                     va="center", fontsize=6, color="white" if lum < 0.45 else "black")
                 ax.spines[["top", "right"]].set_visible(True)
             for ax in axs[len(chunk):]:

@@ -11,7 +11,6 @@ half a pixel of slack covers matplotlib's rounding of extents to the pixel
 grid and nothing more (common practice, no source).
 """
 
-import math
 import re
 
 import numpy as np
