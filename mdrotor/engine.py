@@ -246,7 +246,7 @@ def make_plan(cfg) -> Plan:
 
         model = model_from_config(cfg)
         plan.noise = None if model.is_empty else model
-    if plan.rf and f0 == 0.0:
+    if plan.rf:
         plan.rf_orbit = rf_orbit(plan)
     return plan
 
@@ -292,6 +292,7 @@ def initial_states(plan: Plan, seed: int, indices: np.ndarray):
     I = cr.moment_of_inertia_kg_m2
     thermal_rotor = plan.rotor_cdf is not None
     k_lib = cr.modes.labels.index("libration") if thermal_rotor else -1
+    spin = np.zeros(T)  # a drawn orientation (free or thermal rotor); the RF orbit is turned with it
     for b, idx in enumerate(indices):
         rng = trajectory_rng(seed, int(idx), 0)
         qn, pn = sample_normal_coordinates(n_occ, plan.wigner, rng)
@@ -311,89 +312,194 @@ def initial_states(plan: Plan, seed: int, indices: np.ndarray):
             v[:, 0] += -dl / I * rc[:, 1]
             v[:, 1] += dl / I * rc[:, 0]
             r, v = rotate_positions(r, phi), rotate_positions(v, phi)
+            spin[b] = phi
         pos[:, :, b] = r.T
         vel[:, :, b] = v.T
     if plan.rf:
-        _add_micromotion(plan, pos, vel, plan.rf_phases(seed, indices))
+        _add_micromotion(plan, pos, vel, plan.rf_phases(seed, indices), spin)
     return pos, vel
 
 
-def _add_micromotion(plan: Plan, pos, vel, phases) -> None:
+def _add_micromotion(plan: Plan, pos, vel, phases, spin=None) -> None:
     """Put the sampled secular states on the RF orbit at t = 0.
 
-    The equilibrium crystal is replaced by its periodic orbit under the full
-    RF force (found numerically, :func:`rf_orbit`, so the Coulomb coupling of
-    the micromotion and the integrator's own discretisation are included),
-    taken at each trajectory's RF phase. The thermal deviation U from the
-    equilibrium gets the lowest-order micromotion, u = U (1 - (q/2)
-    cos(W t + phase)), u' = U' (1 - (q/2) cos) + U (q/2) W sin (Leibfried et
-    al., Rev. Mod. Phys. 75, 281 (2003)). A crystal that rotates at t = 0 gets
-    the lowest-order micromotion on the whole state.
+    The equilibrium crystal, at rest or rotating at f_rot(0), is replaced by
+    its periodic orbit under the full RF force (found numerically,
+    :func:`rf_orbit`, so the Coulomb coupling of the micromotion and the
+    integrator's own discretisation are included), taken at each
+    trajectory's RF phase (and turned by ``spin`` (T,), the orientation
+    drawn for a free or thermal rotor). The rigid rotation is part of that orbit:
+    it is not scaled by the micromotion.
+
+    The thermal deviation from the equilibrium, in the frame co-rotating at
+    w = 2 pi f_rot(0) (position U, velocity U' relative to the frame), gets
+    the micromotion of the Mathieu solution to first order in q and in
+    beta = 2 w_k / W::
+
+        u  = U (1 - (q/2) cos psi) + (q / W) sin(psi) U'
+        u' = U' (1 + (q/2) cos psi) + (q/2) W sin(psi) U,     psi = W t + phase
+
+    (from the first sidebands of the Floquet solution, C_{+-2} / C_0 =
+    q / (a - (beta +- 2)^2) = -(q/4)(1 -+ beta) + O(q^2, beta^2); Leibfried et
+    al., Rev. Mod. Phys. 75, 281 (2003), eqs. 8-10; March, J. Mass Spectrom.
+    32, 351 (1997)). The often quoted u' = U' (1 - (q/2) cos psi) + ... is
+    the derivative of the lowest-order form and is wrong at first order in q
+    for the secular velocity: it would change L_z of a rotating state by
+    (1 -+ q/2)^2 with the RF phase, although an axially symmetric RF force
+    conserves L_z. In-plane the RF force is the same in the co-rotating
+    frame, so the same form holds there; lab velocities add w z x u.
     """
     W = TWO_PI * plan.f_drive_hz
+    w = TWO_PI * plan.f0_hz
     qh = 0.5 * plan.cfg.trap.q_per_ion(plan.masses, plan.charges).T[:, :, None]  # (3, N, 1)
     c, s = np.cos(phases)[None, None, :], np.sin(phases)[None, None, :]
-    if plan.rf_orbit is None:
-        u0 = pos.copy()
-        pos *= 1.0 - qh * c
-        vel *= 1.0 - qh * c
-        vel += u0 * qh * W * s
-        return
     orbit_p, orbit_v = plan.rf_orbit
     k = np.rint(phases / (TWO_PI / RF_STEPS_PER_PERIOD)).astype(int) % RF_STEPS_PER_PERIOD
-    r0 = plan.crystal0.positions_m.T[:, :, None]
+    op = orbit_p[k].transpose(1, 2, 0)
+    ov = orbit_v[k].transpose(1, 2, 0)
+    r0 = np.broadcast_to(plan.crystal0.positions_m.T[:, :, None], pos.shape)
+    if spin is not None and np.any(spin != 0.0):
+        from .frame import rotate_states
+
+        op, ov, r0 = rotate_states(op, spin), rotate_states(ov, spin), rotate_states(r0, spin)
     du = pos - r0
-    pos[:] = orbit_p[k].transpose(1, 2, 0) + du * (1.0 - qh * c)
-    vel[:] = orbit_v[k].transpose(1, 2, 0) + vel * (1.0 - qh * c) + du * qh * W * s
+    dv = vel - _spin_velocity(w, pos)          # velocity relative to the co-rotating frame
+    p_new = op + du * (1.0 - qh * c) + (2.0 * qh / W) * s * dv
+    u_new = (ov - _spin_velocity(w, op)) + dv * (1.0 + qh * c) + du * qh * W * s
+    pos[:] = p_new
+    vel[:] = u_new + _spin_velocity(w, p_new)
+
+
+def _spin_velocity(w: float, p: np.ndarray) -> np.ndarray:
+    """w z x r for positions p (3, ...): the velocity of rigid rotation at w (rad/s)."""
+    out = np.zeros_like(p)
+    out[0] = -w * p[1]
+    out[1] = w * p[0]
+    return out
+
+
+def _orbit_model(plan: Plan):
+    """Kernel model for the RF-orbit search, and a note when it is not the run's.
+
+    A crystal rotating at t = 0 has a periodic orbit only in the frame
+    co-rotating with the pinning, and only if the trap is symmetric about
+    its axis in the plane (then the RF force and the co-rotating pinning are
+    both periodic with T_RF there). An in-plane anisotropy (a_x != a_y or
+    q_x != q_y) or an in-plane stray field rotates against that frame: there
+    is no periodic orbit. The orbit is then searched in the trap averaged
+    over the rotation (the mean of the x and y terms, the in-plane stray
+    field left out), the same approximation as the rotating-frame statics
+    (:func:`mdrotor.statics.model_potential`); the run integrates the full
+    trap from t = 0.
+    """
+    model = plan.kernel_model()
+    if plan.f0_hz == 0.0:
+        return model, None
+    w2, rf2, stray, qm, kq_i, kq_j = model
+    if np.array_equal(w2[:, 0], w2[:, 1]) and np.array_equal(rf2[:, 0], rf2[:, 1]) and not np.any(stray[:, :2]):
+        return model, None
+    w2a, rf2a, straya = w2.copy(), rf2.copy(), stray.copy()
+    w2a[:, :2] = w2[:, :2].mean(axis=1, keepdims=True)
+    rf2a[:, :2] = rf2[:, :2].mean(axis=1, keepdims=True)
+    straya[:, :2] = 0.0
+    why = [w for w, bad in (("RF q_x != q_y", not np.array_equal(rf2[:, 0], rf2[:, 1])),
+                            ("static a_x != a_y", not np.array_equal(w2[:, 0], w2[:, 1])),
+                            ("an in-plane stray field", bool(np.any(stray[:, :2])))) if bad]
+    note = (f"the trap is not symmetric about its axis in the plane ({', '.join(why)}), so the crystal rotating "
+            "at t = 0 has no periodic RF orbit: it starts on the periodic orbit of the trap averaged over the "
+            "rotation (mean of the x and y terms, in-plane stray field left out, as in the rotating-frame "
+            "statics); the full trap acts from t = 0")
+    return (w2a, rf2a, straya, qm, kq_i, kq_j), note
 
 
 def rf_orbit(plan: Plan, *, tol: float = 1e-12, max_iter: int = 12):
     """The periodic orbit of the equilibrium crystal under the full RF force.
 
+    At rest (f_rot(0) = 0) the orbit is periodic in the lab. A crystal
+    rotating at w = 2 pi f_rot(0), with the pinning co-rotating, has an orbit
+    that is periodic with T_RF in the frame co-rotating with the pinning
+    (where an in-plane isotropic RF force and the co-rotating pinning are
+    both T_RF-periodic): seen from the lab it comes back turned by w T_RF.
     Newton's method on the one-period map P (integrated with the run's own
-    stepper at dt = T_RF / RF_STEPS_PER_PERIOD, potential frozen at t = 0):
-    solve P(z) = z for the phase-space point z at RF phase 0, with the
+    stepper at dt = T_RF / RF_STEPS_PER_PERIOD, the pinning strength frozen
+    at its t = 0 value and its angle turning at w): solve
+    P(z) = R(w T_RF) z for the phase-space point z at RF phase 0, R the
+    rotation about the axis acting on positions and velocities, with the
     Jacobian from finite differences, all perturbed copies integrated as one
-    batch of trajectories. Returns the orbit's positions and velocities at
-    the RF_STEPS_PER_PERIOD step phases, each (K, 3, N).
+    batch of trajectories (least squares: a free crystal's orientation is a
+    continuous family). For an in-plane anisotropic trap see
+    :func:`_orbit_model` (a note is added to the plan).
+
+    Returns the orbit's positions and velocities (lab frame) at the
+    RF_STEPS_PER_PERIOD step phases, each (K, 3, N), turned back by -w t_k
+    to the orientation the pinning has at t = 0: the state a trajectory
+    starting at t = 0 with RF phase W t_k takes.
     """
     n = len(plan.masses)
     dim = 6 * n
     W = TWO_PI * plan.f_drive_hz
-    dt = (TWO_PI / W) / RF_STEPS_PER_PERIOD
+    w = TWO_PI * plan.f0_hz
+    period = TWO_PI / W
+    dt = period / RF_STEPS_PER_PERIOD
     qh = 0.5 * plan.cfg.trap.q_per_ion(plan.masses, plan.charges)  # (N, 3)
+    model, note = _orbit_model(plan)
+    if note:
+        plan.notes.append(note)
     r0 = plan.crystal0.positions_m
-    z = np.concatenate([(r0 * (1.0 - qh)).ravel(), np.zeros(3 * n)])  # lowest order at phase 0
-    scale = np.concatenate([np.full(3 * n, np.max(np.abs(r0)) + 1e-6), np.full(3 * n, W * (np.max(np.abs(r0)) + 1e-6))])
-    stepper = _Stepper(plan, dim + 1, dim + 1, np.zeros(dim + 1))
+    p_start = r0 * (1.0 - qh)                       # lowest order at phase 0
+    v_start = _spin_velocity(w, p_start.T).T
+    z = np.concatenate([p_start.ravel(), v_start.ravel()])
+    size = np.max(np.abs(r0)) + 1e-6
+    scale = np.concatenate([np.full(3 * n, size), np.full(3 * n, W * size)])
+    stepper = _Stepper(plan, dim + 1, dim + 1, np.zeros(dim + 1), model=model)
     eps = 1e-7
+    turn = _turn_matrix(n, w * period)
 
     def one_period(states):
         p = np.ascontiguousarray(states[:, : 3 * n].reshape(-1, n, 3).transpose(2, 1, 0))
         v = np.ascontiguousarray(states[:, 3 * n:].reshape(-1, n, 3).transpose(2, 1, 0))
-        stepper.advance(p, v, 0, 0.0, dt, RF_STEPS_PER_PERIOD, frozen=True)
+        stepper.advance(p, v, 0, 0.0, dt, RF_STEPS_PER_PERIOD, frozen=True, spin=w)
         return np.concatenate([p.transpose(2, 1, 0).reshape(-1, 3 * n), v.transpose(2, 1, 0).reshape(-1, 3 * n)], axis=1)
 
+    best = (np.inf, z)
     for _ in range(max_iter):
         batch = np.repeat(z[None, :], dim + 1, axis=0)
         batch[1:] += np.diag(eps * scale)
         out = one_period(batch)
-        res = out[0] - z
-        if np.max(np.abs(res) / scale) < tol:
+        res = out[0] - turn @ z
+        err = float(np.max(np.abs(res) / scale))
+        if err < best[0]:
+            best = (err, z)
+        if err < tol:
             break
-        jac = (out[1:] - out[0]).T / (eps * scale)[None, :]
-        step = np.linalg.lstsq(jac - np.eye(dim), -res, rcond=1e-10)[0]
-        z = z + step
-    # sample the orbit at every step phase
+        # in units of `scale` (positions and velocities mixed in SI span 16 decades)
+        jac = (out[1:] - out[0]).T / (eps * scale)[:, None]
+        step = np.linalg.lstsq(jac - turn, -res / scale, rcond=1e-10)[0]
+        z = z + step * scale
+    err, z = best
+    if err > 1e-8:
+        plan.notes.append(f"the RF orbit at t = 0 was found only to a relative residual {err:.2g} per RF period "
+                          "(the field is not periodic in the frame co-rotating with the pinning)")
+    # sample the orbit at every step phase, turned back to the t = 0 orientation
     p = np.ascontiguousarray(z[: 3 * n].reshape(1, n, 3).transpose(2, 1, 0))
     v = np.ascontiguousarray(z[3 * n:].reshape(1, n, 3).transpose(2, 1, 0))
-    stepper1 = _Stepper(plan, 1, 1, np.zeros(1))
+    stepper1 = _Stepper(plan, 1, 1, np.zeros(1), model=model)
     op, ov = [], []
+    from .frame import rotate_states
+
     for j in range(RF_STEPS_PER_PERIOD):
-        op.append(p[:, :, 0].copy())
-        ov.append(v[:, :, 0].copy())
-        stepper1.advance(p, v, 0, j * dt, dt, 1, frozen=True)
+        back = -w * j * dt
+        op.append(rotate_states(p, back)[:, :, 0])
+        ov.append(rotate_states(v, back)[:, :, 0])
+        stepper1.advance(p, v, 0, j * dt, dt, 1, frozen=True, spin=w)
     return np.array(op), np.array(ov)
+
+
+def _turn_matrix(n: int, angle: float) -> np.ndarray:
+    """R(angle) about z acting on a phase-space point (positions, velocities; 6N)."""
+    c, s = math.cos(angle), math.sin(angle)
+    blk = np.array([[c, -s, 0.0], [s, c, 0.0], [0.0, 0.0, 1.0]])
+    return np.kron(np.eye(2 * n), blk)
 
 
 def _curl_rotation(r, v, r0, m, w):
@@ -490,8 +596,9 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
 class _Stepper:
     """Builds the kernel's per-block arrays and observes (secular state in RF runs)."""
 
-    def __init__(self, plan: Plan, n_traj: int, chunk: int, rf_phases, noise_state=None):
+    def __init__(self, plan: Plan, n_traj: int, chunk: int, rf_phases, noise_state=None, model=None):
         self.plan = plan
+        self.model = plan.kernel_model() if model is None else model
         self.noise_state = noise_state
         # each trajectory's key for the white kicks drawn in the kernel (stream 3)
         self.white_keys = (np.array([np.random.SeedSequence(noise_state.seed, spawn_key=(int(i), 3)).generate_state(1, np.uint64)[0]
@@ -505,9 +612,10 @@ class _Stepper:
         self.ph_c, self.ph_s = np.cos(ph), np.sin(ph)
 
     def advance(self, pos, vel, stage: int, t_start: float, dt: float, n: int, lag_u=None, frozen: bool = False,
-                noise_step0: int | None = None) -> None:
+                noise_step0: int | None = None, spin: float = 0.0) -> None:
         """Advance ``n`` steps from ``t_start``; ``frozen``: the schedule held
-        at t = 0 (the RF drive still runs from phase W t_start). Noise acts
+        at t = 0 (the RF drive still runs from phase W t_start), except the
+        pinning angle, which turns at ``spin`` (rad/s) from 0. Noise acts
         only when ``noise_step0`` (the block's first step within the stage)
         is given: measurement windows run without it."""
         from .kernels import advance
@@ -521,7 +629,8 @@ class _Stepper:
         te = np.concatenate([[ts[0]], (ts[:-1, None] + dt * sub[None, :]).ravel()])
         if t_start + dt * n <= end * (1 + 1e-12):
             te = np.minimum(te, end)
-        c_re, c_im = _pin_coefficients(plan, np.zeros_like(te) if frozen else te)
+        t_sched, theta = (np.zeros_like(te), spin * te) if frozen else (te, None)
+        c_re, c_im = _pin_coefficients(plan, t_sched, theta)
         if plan.lag_n > 0:
             track = (np.abs(sched.pinning_scale(ts, plan.lag_term)) >= plan.lag_threshold).astype(np.uint8)
         else:
@@ -547,8 +656,8 @@ class _Stepper:
             w_field, w_g = model.white_sd(dt, name)
             step = int(sum(plan.stage_steps[:stage])) + int(noise_step0)
             noise = (field, orders, g_re, g_im, w_field, w_g, self.white_keys, step)
-        poly = _poly_coefficients(plan, np.zeros_like(te) if frozen else te)
-        advance(pos, vel, dt, n, plan.fracs, plan.kernel_model(), drive, (plan.pin_orders, c_re, c_im), poly, lag, noise,
+        poly = _poly_coefficients(plan, t_sched, theta)
+        advance(pos, vel, dt, n, plan.fracs, self.model, drive, (plan.pin_orders, c_re, c_im), poly, lag, noise,
                 self.chunk)
 
     def observe(self, pos, vel, stage: int, t: float, dt: float) -> dict:
@@ -584,25 +693,27 @@ class _Stepper:
         return out
 
 
-def _pin_coefficients(plan: Plan, te: np.ndarray):
-    """C_p(t) = s_p(t) c_p exp(-i n_p (angle_p + theta(t))) at times te."""
+def _pin_coefficients(plan: Plan, te: np.ndarray, theta: np.ndarray | None = None):
+    """C_p(t) = s_p(t) c_p exp(-i n_p (angle_p + theta(t))) at times te
+    (``theta``: pinning angles to use instead of the schedule's)."""
     P = len(plan.pin_orders)
     if P == 0:
         z = np.zeros((len(te), 0))
         return z, z.copy()
-    theta = plan.schedule.theta_rad(te)
+    theta = plan.schedule.theta_rad(te) if theta is None else theta
     scales = plan.pin_scales(te)  # (E, P)
     ph = -plan.pin_orders[None, :] * (plan.pin_angle[None, :] + theta[:, None])
     amp = scales * plan.pin_strength[None, :] * plan.pin_is_multipole[None, :]
     return np.ascontiguousarray(amp * np.cos(ph)), np.ascontiguousarray(amp * np.sin(ph))
 
 
-def _poly_coefficients(plan: Plan, te: np.ndarray) -> tuple:
-    """The layout pinning terms' polynomial coefficients at times te: (exps, (E, J))."""
+def _poly_coefficients(plan: Plan, te: np.ndarray, theta: np.ndarray | None = None) -> tuple:
+    """The layout pinning terms' polynomial coefficients at times te: (exps, (E, J))
+    (``theta``: pinning angles to use instead of the schedule's)."""
     terms = [(p, t) for p, t in enumerate(plan.cfg.pinning) if t.layout is not None]
     if not terms:
         return NO_POLY[0], np.zeros((len(te), 0))
-    theta = plan.schedule.theta_rad(te)
+    theta = plan.schedule.theta_rad(te) if theta is None else theta
     scales = plan.pin_scales(te)
     coef = 0.0
     for p, t in terms:
