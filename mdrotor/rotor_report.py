@@ -100,6 +100,8 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
     holding = pinning.assess_config(cfg, f, scales=scales, start=cr.positions_m) if cfg.pinning else None
     # D: given > fitted from the run > analytic from the config's noise
     analytic = None
+    from .noise import fit_resolved
+
     if cfg.noise:
         from .noise import model_from_config
 
@@ -109,7 +111,7 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
             analytic = model.rotor_diffusion(cr.positions_m, cr.masses_kg, cr.charges_c, f, stage)["total"].D_hbar2_per_s
     if diffusion_hbar2_per_s is not None:
         D, d_src = float(diffusion_hbar2_per_s), "given"
-    elif fitted is not None and fitted[0] > 0:
+    elif fitted is not None and fit_resolved(*fitted):  # an unresolved fit says only D < bound
         D, d_src = fitted[0], "fitted from the run"
     elif analytic is not None:
         D, d_src = float(analytic), "analytic from the noise spectrum"

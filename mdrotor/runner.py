@@ -250,16 +250,33 @@ def summary_text(res, path=None) -> str:
         lines.append("")
         lines.append(f"noise rates over stage '{nz['stage']}' ({nz['t0_s'] * 1e3:.4g} to {nz['t1_s'] * 1e3:.4g} ms, {nz['n_trajectories']} trajectories"
                      f"{', pinned' if nz['pinned'] else ', free rotation'}):")
+        orders = np.atleast_1d(nz.get("D_analytic_orders", [])).astype(int)
+        d_inf = np.atleast_1d(nz.get("D_analytic_hbar2_per_s", []))
+        d_win = np.atleast_1d(nz.get("D_window_hbar2_per_s", np.full(len(orders), np.nan)))
+        zero = np.atleast_1d(nz.get("D_analytic_zero_by_symmetry", np.zeros(len(orders), dtype=bool))).astype(bool)
+        win_total = float(np.sum(d_win[~zero])) if "D_window_total_hbar2_per_s" in nz else None
         if "D_fit_hbar2_per_s" in nz:
-            lines.append(f"  L diffusion D: fitted {nz['D_fit_hbar2_per_s']:.4g} +- {nz['D_fit_err_hbar2_per_s']:.2g} hbar^2/s, "
-                         f"analytic {nz['D_analytic_total_hbar2_per_s']:.4g} hbar^2/s (rigid crystal at {nz['f_rot_hz'] / 1e3:.4g} kHz)")
-        for o, d in zip(np.atleast_1d(nz.get("D_analytic_orders", [])), np.atleast_1d(nz.get("D_analytic_hbar2_per_s", []))):
-            lines.append(f"    order {int(o)}{' (uniform field)' if int(o) == 1 else ''}: {d:.4g} hbar^2/s")
+            line = (f"  L diffusion D (hbar^2/s): fitted "
+                    f"{_fitted_rate(nz['D_fit_hbar2_per_s'], nz['D_fit_err_hbar2_per_s'], nz.get('D_fit_resolved'))}")
+            if win_total is not None:
+                line += f"; expected over this window {win_total:.4g}"
+                if "D_fit_z" in nz:
+                    line += f" (z = {nz['D_fit_z']:.2f})"
+            line += f"; infinite time {float(np.sum(d_inf[~zero])):.4g} (rigid crystal at {nz['f_rot_hz'] / 1e3:.4g} kHz)"
+            lines.append(line)
+        for o, d, dw, z0 in zip(orders, d_inf, d_win, zero):
+            name = f"    order {o}{' (uniform field)' if o == 1 else ''}: "
+            if z0:
+                lines.append(name + "0 (zero by symmetry: the crystal has no such moment)")
+            else:
+                lines.append(name + f"{d:.4g} hbar^2/s" + (f" (over this window {dw:.4g})" if np.isfinite(dw) else ""))
         if "turchette_quanta_per_s" in nz:
             tq = np.atleast_1d(nz["turchette_quanta_per_s"])
             lines.append(f"  COM heating (Turchette) x, y, z: {tq[0]:.4g}, {tq[1]:.4g}, {tq[2]:.4g} quanta/s (lab-frame COM modes)")
-        for lab, r, e in zip(nz["heating_labels"], np.atleast_1d(nz["heating_fit_quanta_per_s"]), np.atleast_1d(nz["heating_fit_err_quanta_per_s"])):
-            lines.append(f"  heating {lab:<16s} fitted {r:11.4g} +- {e:.2g} quanta/s")
+        res_h = np.atleast_1d(nz.get("heating_fit_resolved", [None] * len(nz["heating_labels"])))
+        for lab, r, e, ok in zip(nz["heating_labels"], np.atleast_1d(nz["heating_fit_quanta_per_s"]),
+                                 np.atleast_1d(nz["heating_fit_err_quanta_per_s"]), res_h):
+            lines.append(f"  heating {lab:<16s} fitted {_fitted_rate(r, e, ok)} quanta/s")
     mm = res.extra.get("micromotion")
     if mm:
         lines.append("")
@@ -271,6 +288,19 @@ def summary_text(res, path=None) -> str:
                      f"(lowest order {mm['ke_lowest_order_j'] / KB * 1e3:.4g} mK k_B)")
         lines.append("  phonons and L are measured on the secular motion (two RF-period averages; see README)")
     return "\n".join(lines)
+
+
+def _fitted_rate(value, err, resolved=None) -> str:
+    """A fitted rate with its error, or "not resolved (< bound at 2 sigma)"
+    (:func:`mdrotor.noise.fit_resolved`, :func:`mdrotor.noise.fit_upper_bound`)."""
+    from .noise import RESOLVED_SIGMA, fit_resolved, fit_upper_bound
+
+    value, err = float(value), float(err)
+    if resolved is None:
+        resolved = fit_resolved(value, err)
+    if not resolved:
+        return f"not resolved (< {fit_upper_bound(value, err):.2g} at {RESOLVED_SIGMA:g} sigma)"
+    return f"{value:.4g} +- {err:.2g}"
 
 
 def cli_run(args) -> int:

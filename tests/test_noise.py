@@ -448,3 +448,83 @@ def test_psd_for_diffusion_inverts_diffusion_constant():
     assert nz.psd_for_diffusion(d.D_hbar2_per_s, 3, M) == pytest.approx(2.5e7, rel=1e-12)
     with pytest.raises(InputError):
         nz.diffusion_constant(0, M, 1.0)
+
+
+# ---------------------------------------------------------------------------
+# D over a finite fit window
+# ---------------------------------------------------------------------------
+def test_window_diffusion_closed_form_lorentzian_on_resonance():
+    # Derived in the module docstring ("Over a finite window"): a Lorentzian
+    # of half width gamma / 2 pi centred on n f_rot, torques from the window's
+    # start: D_T / D = 1 - (1 - e^{-gamma T}) / (gamma T), from the
+    # demodulated torque autocorrelation e^{-gamma u} (the variance of the
+    # integral of a stationary process: A. Papoulis, Probability, Random
+    # Variables and Stochastic Processes, 3rd ed. (1991), ch. 10, from memory). 5 kHz over
+    # 1 ms: 0.968. The counter-rotating half (at 2 n f_rot = 800 kHz) and the
+    # Lorentzian's mirror term are (5 / 800)^2 = 4e-5 of the peak: tolerance 1e-4.
+    xy, q, m = _ring(2, 3e-6), np.full(2, QE), np.full(2, 40 * atomic_mass)
+    model = nz.parse_noise({"multipole": {"order": 2, "psd": {"kind": "lorentzian", "level": "1e-3 V^2/m^4/Hz",
+                                                              "f_center": "400 kHz", "width": "5 kHz"}}})
+    d_inf = model.rotor_diffusion(xy, m, q, 200e3)[2].D_si
+    d_win = model.rotor_diffusion_window(xy, m, q, 200e3, 1e-3)[2].D_si
+    gT = 2 * np.pi * 5e3 * 1e-3
+    expect = 1 - (1 - math.exp(-gT)) / gT
+    assert expect == pytest.approx(0.968, abs=5e-4)
+    assert d_win / d_inf == pytest.approx(expect, abs=1e-4)
+    # a long window, or torques that acted long before it, give back D
+    # (the correction is 1 / (gamma T) = 3e-5 at 1 s, e^{-gamma lead} at lead = 3 ms)
+    assert model.rotor_diffusion_window(xy, m, q, 200e3, 1.0)[2].D_si / d_inf == pytest.approx(1.0, abs=1e-4)
+    assert model.rotor_diffusion_window(xy, m, q, 200e3, 1e-3, lead_s=3e-3)[2].D_si / d_inf == pytest.approx(1.0, abs=1e-4)
+    # white noise has no window correction (delta-correlated torque)
+    white = nz.parse_noise({"multipole": {"order": 2, "psd": {"kind": "white", "level": "1e-3 V^2/m^4/Hz"}}})
+    assert white.rotor_diffusion_window(xy, m, q, 200e3, 1e-5)[2].D_si == pytest.approx(
+        white.rotor_diffusion(xy, m, q, 200e3)[2].D_si, rel=1e-12)
+
+
+@pytest.mark.parametrize("lead_windows", [0, 1])
+def test_window_diffusion_matches_torque_monte_carlo(lead_windows):
+    # (var L(t0 + T) - var L(t0)) / (2 T) for a rigid pair under synthesised
+    # quadrupole noise (Lorentzian of half width 20 kHz on 2 f_rot = 200 kHz
+    # plus a white floor), torques from t0 - lead: Monte-Carlo of the torque
+    # integral (20000 trajectories) against rotor_diffusion_window. T = 10 us
+    # = 1.3 / gamma, so the window value is 0.44 of the infinite-time D
+    # without lead and 0.84 with lead = T. Tolerance: 4 Monte-Carlo standard
+    # errors (computed from the samples, ~1 %), and the infinite-time D must
+    # be more than 10 of them away (the test tells the two apart). Step
+    # averaging: sinc^2(n f_rot dt) = 0.9987 (dt = 0.1 us), below the errors.
+    xy, q, m = _ring(2, 3e-6), np.full(2, QE), np.full(2, 40 * atomic_mass)
+    model = nz.parse_noise({"multipole": {"order": 2, "psd": [
+        {"kind": "lorentzian", "level": "1e-2 V^2/m^4/Hz", "f_center": "200 kHz", "width": "20 kHz"},
+        {"kind": "white", "level": "1e-4 V^2/m^4/Hz"}]}})
+    f_rot, dt, win, n_traj = 100e3, 1e-7, 100, 20000
+    dl = _torque_windows(model, xy, q, 2, f_rot, dt, win, n_traj, 2, seed=7).reshape(2, n_traj)
+    T = win * dt
+    if lead_windows:
+        l0, l1 = dl[0], dl[0] + dl[1]
+    else:
+        l0, l1 = np.zeros(n_traj), dl[1]
+    y = (l1 - l1.mean()) ** 2 - (l0 - l0.mean()) ** 2       # per-trajectory variance growth
+    mc, se = y.mean() / (2 * T), y.std(ddof=1) / math.sqrt(n_traj) / (2 * T)
+    d_win = model.rotor_diffusion_window(xy, m, q, f_rot, T, lead_s=lead_windows * T)[2].D_si
+    d_inf = model.rotor_diffusion(xy, m, q, f_rot, generated=True)[2].D_si
+    assert abs(mc - d_win) < 4 * se
+    assert abs(d_inf - d_win) > 10 * se
+
+
+def test_resolved_rule_and_moments_zero_by_symmetry():
+    # A fitted rate is resolved when positive and at least 2 standard errors
+    # (common practice, no source); otherwise its 2-sigma upper bound is
+    # max(value, 0) + 2 err. Moments: a regular N-gon of identical ions has
+    # M_n = 0 unless N divides n; identical ions have no dipole about their
+    # centre of mass; a mixed pair has one (common practice, no source).
+    assert nz.fit_resolved(2.0, 1.0) and not nz.fit_resolved(1.99, 1.0)
+    assert not nz.fit_resolved(-5.0, 1.0) and not nz.fit_resolved(float("nan"), 1.0)
+    assert nz.fit_upper_bound(-5.0, 1.0) == 2.0 and nz.fit_upper_bound(1.0, 1.0) == 3.0
+    tri, m3 = _ring(3, 5e-6), np.full(3, 9 * atomic_mass)
+    q3 = np.full(3, QE)
+    assert [nz.moment_vanishes(tri, m3, q3, n) for n in (1, 2, 3, 4, 6)] == [True, True, False, True, False]
+    pair = np.array([[-3e-6, 0.0], [3e-6, 0.0]])
+    assert nz.moment_vanishes(pair, np.full(2, 40 * atomic_mass), np.full(2, QE), 1)
+    assert not nz.moment_vanishes(pair, np.array([40.0, 9.0]) * atomic_mass, np.full(2, QE), 1)
+    assert nz.moment_vanishes(pair, np.full(2, 40 * atomic_mass), np.full(2, QE), 3)
+    assert not nz.moment_vanishes(pair, np.full(2, 40 * atomic_mass), np.full(2, QE), 2)

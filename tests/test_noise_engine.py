@@ -161,3 +161,103 @@ def test_noise_runs_independent_of_chunks_and_order():
     for k, v in a.final.arrays.items():
         assert np.array_equal(v, b.final.arrays[k], equal_nan=True), k
     assert np.std(a.final.arrays["L_com_hbar"]) > 0  # the noise did something
+
+
+def test_fitted_D_compared_over_its_own_window():
+    """A Lorentzian (half width 20 kHz) on 2 f_rot, switched on at the start
+    of a 10 us free stage: the fitted D is the variance growth over that
+    window, whose expectation is 0.44 of the infinite-time D (derived in
+    mdrotor.noise, "Over a finite window"; checked against a Monte-Carlo of
+    the torque in test_noise.py). The run compares the fit with the window
+    value (|z| < 3) and would be far off against the infinite-time one
+    (2000 trajectories from rest: the variance has a 3 % standard error).
+    Weak noise, as the rigid-rotor derivation assumes: sigma_L ~ 50 hbar of
+    L ~ 7000 hbar moves 2 f_rot by ~2 kHz, well inside the 20 kHz width."""
+    d = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2}, "trap": {"f_radial": "1.2 MHz", "f_axial": "2.9 MHz"},
+         "rotation": {"f_start": "150 kHz"},
+         "stage": [{"name": "quiet", "duration": "1 us"}, {"name": "free", "duration": "10 us"}],
+         "initial": {"temperature": "0 K", "wigner": False}, "run": {"trajectories": 2000, "seed": 23},
+         "noise": {"multipole": {"order": 2, "stages": ["free"],
+                                 "psd": {"kind": "lorentzian", "level": "0.8 V^2/m^4/Hz", "f_center": "300 kHz",
+                                         "width": "20 kHz"}}}}
+    res = mdrotor.run(mdrotor.load_config(d))
+    nz = res.extra["noise"]
+    assert nz["stage"] == "free" and nz["D_window_lead_s"] == 0.0
+    fit, err = nz["D_fit_hbar2_per_s"], nz["D_fit_err_hbar2_per_s"]
+    win, inf = nz["D_window_total_hbar2_per_s"], nz["D_analytic_total_hbar2_per_s"]
+    assert 0.4 < win / inf < 0.5
+    assert nz["D_fit_resolved"]
+    assert abs(nz["D_fit_z"]) < 3 and nz["D_fit_z"] == pytest.approx((fit - win) / err)
+    assert abs(fit - inf) > 5 * err
+    text = mdrotor.runner.summary_text(res)
+    assert f"expected over this window {win:.4g}" in text and f"infinite time {inf:.4g}" in text
+
+
+def test_unresolved_rates_and_zero_by_symmetry_are_labelled(tmp_path):
+    """A regular triangle of identical ions under uniform-field and weak
+    quadrupole noise: the field exerts no torque on identical ions and a
+    triangle has no quadrupole moment (a regular N-gon has M_n = 0 unless N
+    divides n; common practice, no source), so both analytic D are 0 by
+    symmetry and print 0. The fitted D is zero within noise, and so is the
+    differential modes' heating (a uniform field heats only the COM: M.
+    Brownnutt et al., Rev. Mod. Phys. 87, 1419 (2015); the quadrupole noise,
+    which does drive the triangle's deformation modes, is 1e4 times too weak
+    to show in 20 us): they print "not resolved (< X at 2 sigma)", the COM
+    modes their fitted rates, and the raw numbers and flags stay in the file."""
+    S = 1e-9
+    c = cfg(3, {"field": {"psd": {"kind": "white", "level": f"{S} V^2/m^2/Hz"}},
+                "multipole": {"order": 2, "psd": {"kind": "white", "level": "1e-2 V^2/m^4/Hz"}}},
+            trap={"f_radial": "1.0 MHz", "f_axial": "3.0 MHz"}, f_start="100 kHz", duration="20 us",
+            trajectories=300, temperature="0.05 mK")
+    res = mdrotor.run(c)
+    nz = res.extra["noise"]
+    assert list(nz["D_analytic_orders"]) == [1, 2]
+    assert list(nz["D_analytic_zero_by_symmetry"]) == [True, True]
+    assert not nz["D_fit_resolved"]
+    text = mdrotor.runner.summary_text(res)
+    assert "order 1 (uniform field): 0 (zero by symmetry" in text and "order 2: 0 (zero by symmetry" in text
+    bound = nz["D_fit_bound_hbar2_per_s"]
+    assert bound == pytest.approx(max(nz["D_fit_hbar2_per_s"], 0) + 2 * nz["D_fit_err_hbar2_per_s"])
+    assert f"fitted not resolved (< {bound:.2g} at 2 sigma)" in text
+    labels = list(nz["heating_labels"])
+    flags = dict(zip(labels, nz["heating_fit_resolved"]))
+    kinds = dict(zip(res.final.modes["label"], res.final.modes["kind"]))
+    assert not any(flags[lab] for lab in labels if kinds[lab] == "differential")
+    assert all(flags[lab] for lab in labels if kinds[lab] == "com")   # the COM is heated (Turchette)
+    for lab in labels:
+        line = next(ln for ln in text.splitlines() if ln.strip().startswith(f"heating {lab} "))
+        assert ("not resolved (<" in line) != bool(flags[lab]), line
+    # the file keeps the raw numbers and the flags
+    res.save(tmp_path / "r.h5")
+    back = mdrotor.load(tmp_path / "r.h5").extra["noise"]
+    assert back["D_fit_hbar2_per_s"] == nz["D_fit_hbar2_per_s"] and not back["D_fit_resolved"]
+    assert np.array_equal(back["heating_fit_resolved"], nz["heating_fit_resolved"])
+    assert np.array_equal(back["D_analytic_hbar2_per_s"], nz["D_analytic_hbar2_per_s"])
+
+
+def test_window_lead_counts_earlier_free_noisy_stages():
+    """The torques count from when the noise came on at the fitted stage's
+    level on the unpinned crystal: a free stage with the same noise before
+    the fitted one adds its duration to the lead; a pinned stage or a stage
+    without the noise stops it (rotor_diffusion_window's lead_s)."""
+    from mdrotor.engine import make_plan
+    from mdrotor.noise import _torque_lead
+
+    base = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2}, "trap": {"f_radial": "1.2 MHz", "f_axial": "2.9 MHz"},
+            "rotation": {"f_start": "150 kHz"}, "initial": {"temperature": "0 K", "wigner": False},
+            "run": {"trajectories": 1, "seed": 1},
+            "stage": [{"name": "a", "duration": "2 us"}, {"name": "b", "duration": "3 us"}, {"name": "c", "duration": "5 us"}],
+            "noise": {"multipole": {"order": 2, "psd": {"kind": "white", "level": "1 V^2/m^4/Hz"}}}}
+    plan = make_plan(mdrotor.load_config(base))
+    assert _torque_lead(plan, plan.noise, 2) == pytest.approx(5e-6)
+    base["noise"]["multipole"]["stages"] = ["b", "c"]
+    plan = make_plan(mdrotor.load_config(base))
+    assert _torque_lead(plan, plan.noise, 2) == pytest.approx(3e-6)
+    base["noise"]["multipole"]["stages"] = {"a": 1.0, "b": 0.5}
+    plan = make_plan(mdrotor.load_config(base))
+    assert _torque_lead(plan, plan.noise, 2) == 0.0
+    base["noise"]["multipole"].pop("stages")
+    base["pinning"] = {"order": 2, "strength": "2e5 V/m^2"}
+    base["stage"][1]["pinning"] = {"to": 0.0, "shape": "cosine"}
+    plan = make_plan(mdrotor.load_config(base))
+    assert _torque_lead(plan, plan.noise, 2) == 0.0
