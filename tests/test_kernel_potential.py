@@ -12,8 +12,12 @@ Tolerance: both sides evaluate the same closed forms in double precision
 (rounding ~1e-16 per operation, at most a few tens of operations per term);
 at random positions the terms do not cancel by more than a factor ~1e3, so
 the largest difference over the ions is asserted below 1e-10 of the largest
-acceleration. A wrong sign, factor, convention or charge-to-mass scaling
-gives a difference of order one.
+acceleration: for the whole force, and for each term alone (the kernel with
+only that term's arrays non-zero, the statics term from a one-ion copy of the
+potential), to its own size, so that a weak term is checked as sharply as a
+strong one. A wrong sign, factor, convention or charge-to-mass scaling gives
+a difference of order one (a 1e-9 relative error in the multipole gradient
+already fails).
 """
 
 from dataclasses import replace
