@@ -1477,13 +1477,6 @@ def tone_torque(order: int, moment_c_mn, amplitude: float, component: str = "re"
 # ---------------------------------------------------------------------------
 #: A fitted rate is resolved when it exceeds this many standard errors.
 RESOLVED_SIGMA = 2.0
-#: An order-n moment about the centre of mass vanishes (by the crystal's
-#: symmetry) when |M_n| <= MOMENT_REL sum_i |Q_i| |z_i - z_c|^n: the
-#: vanishing moments of a regular N-gon, or the dipole of identical ions,
-#: come out at rounding (~1e-10 and below), a present one at ~1.
-#: Provisional: the pinning core owns this rule (one relative threshold);
-#: switch to it when it lands.
-MOMENT_REL = 1e-6
 
 
 def fit_resolved(value: float, err: float) -> bool:
@@ -1500,16 +1493,12 @@ def fit_upper_bound(value: float, err: float) -> float:
 
 def moment_vanishes(positions_m, masses_kg, charges_c, order: int) -> bool:
     """True when the crystal's order-n moment about the centre of mass is zero
-    by symmetry (relative threshold :data:`MOMENT_REL`); order 1 is the
-    dipole (zero for ions of one charge-to-mass ratio)."""
-    from .multipole import moment
+    by symmetry: not present by the pinning core's rule
+    (:func:`mdrotor.pinning.moment_rel` against :data:`mdrotor.pinning.MOMENT_REL`);
+    order 1 is the dipole (zero for ions of one charge-to-mass ratio)."""
+    from .pinning import MOMENT_REL, moment_rel
 
-    xy = np.asarray(positions_m, dtype=float)[:, :2]
-    m = np.asarray(masses_kg, dtype=float)
-    q = np.asarray(charges_c, dtype=float)
-    d = xy - np.sum(m[:, None] * xy, axis=0) / np.sum(m)
-    ref = float(np.sum(np.abs(q) * np.hypot(d[:, 0], d[:, 1]) ** order))
-    return ref == 0.0 or abs(moment(d, q, order)) <= MOMENT_REL * ref
+    return moment_rel(positions_m, masses_kg, charges_c, order) <= MOMENT_REL
 
 
 def _torque_lead(plan, model, k: int) -> float:
