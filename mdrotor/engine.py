@@ -565,32 +565,52 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
     stages, series = {}, []
     t = 0.0
     bounds = sched.boundaries_s
-    last_series = 0.0
     for k, st in enumerate(sched.stages):
         n_left = plan.stage_steps[k]
         dt = plan.stage_dt[k]
         step0 = 0
-        blk = BLOCK_STEPS
-        if plan.series_interval_s:
-            blk = max(1, min(BLOCK_STEPS, int(round(plan.series_interval_s / dt))))
+        every = series_steps(plan, k) if plan.series_interval_s else 0  # series point every `every` steps
         while n_left > 0:
-            nb = min(blk, n_left)
+            nb = min(BLOCK_STEPS, n_left, every - step0 % every if every else BLOCK_STEPS)
             stepper.advance(pos, vel, k, bounds[k] + dt * step0, dt, nb, noise_step0=step0)
             n_left -= nb
             step0 += nb
             t = bounds[k] + dt * step0
             if progress is not None:
                 progress.update(nb * T)
-            if plan.series_interval_s and t - last_series >= plan.series_interval_s - 0.5 * dt and n_left > 0:
+            if every and step0 % every == 0 and n_left > 0:
                 series.append(_series_point(stepper.observe(pos, vel, k, t, dt), t, st.name))
-                last_series = t
         t = bounds[k + 1]
         if observe_stages or k == len(sched.stages) - 1:
             stages[st.name] = stepper.observe(pos, vel, k, t, dt)
         if plan.series_interval_s:
             series.append(_series_point(stages[st.name], t, st.name))
-            last_series = t
     return RawRun(plan, initial, stages, series, time.perf_counter() - t0, T)
+
+
+def series_steps(plan: Plan, k: int) -> int:
+    """Steps between time-series points in stage k: ``observe.series_interval``
+    rounded to a whole number of the stage's steps (at least one). Each stage
+    also ends with a point, so the last interval of a stage can be shorter."""
+    return max(1, int(round(plan.series_interval_s / plan.stage_dt[k])))
+
+
+def warm_up(plan: Plan, pos: np.ndarray, vel: np.ndarray, rf_phases=None, noise_state=None) -> float:
+    """Compile (or load from numba's cache) the kernels a run calls, by one
+    step of the first trajectory on a copy; returns the seconds it took, so
+    that a run's speed can be reported without them. ``noise_state``: the
+    first trajectory's alone (it is advanced)."""
+    from .kernels import lag_phases
+
+    t0 = time.perf_counter()
+    p = np.ascontiguousarray(pos[:, :, :1])
+    v = np.ascontiguousarray(vel[:, :, :1])
+    ph = None if rf_phases is None else np.asarray(rf_phases)[:1]
+    if plan.lag_n > 0:
+        lag_phases(p, plan.masses, plan.charges, plan.lag_n)
+    stepper = _Stepper(plan, 1, 1, ph, noise_state)
+    stepper.advance(p, v, 0, 0.0, plan.stage_dt[0], 1, noise_step0=0 if noise_state is not None else None)
+    return time.perf_counter() - t0
 
 
 class _Stepper:
@@ -722,7 +742,9 @@ def _poly_coefficients(plan: Plan, te: np.ndarray, theta: np.ndarray | None = No
 
 
 def _series_point(obs: dict, t: float, stage: str) -> dict:
-    ok = (obs["status"] & (2 | 8)) == 0
+    from .observables import usable
+
+    ok = usable(obs["status"])
     L = obs["L_hbar"][ok]
     lag = obs["lag_rad"][ok]
     e = obs["mode_n"][ok]

@@ -1548,7 +1548,8 @@ def run_rates(plan, raw) -> dict:
     torques counted from ``D_window_lead_s`` before the window), which the
     fit's z-score ``D_fit_z`` is taken against.
     """
-    from .stats import OK_MASK, mean_sem, std_se
+    from .observables import usable
+    from .stats import mean_sem, std_se
 
     model = plan.noise
     sched = plan.schedule
@@ -1563,7 +1564,7 @@ def run_rates(plan, raw) -> dict:
     if before is None or not before:
         return {}
     t0, t1 = float(sched.boundaries_s[k]), float(sched.boundaries_s[k + 1])
-    ok = ((after["status"] & OK_MASK) == 0) & ((before["status"] & OK_MASK) == 0)
+    ok = usable(after["status"]) & usable(before["status"])
     n = int(np.sum(ok))
     out = {"stage": stage, "t0_s": t0, "t1_s": t1, "n_trajectories": n, "pinned": bool(plan.pinned_at(t1))}
     l0, l1 = before["L_com_hbar"][ok], after["L_com_hbar"][ok]

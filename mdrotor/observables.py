@@ -26,11 +26,15 @@ At an observation time every trajectory gets:
   <= 1 kHz, at most 32 nodes) and interpolated linearly, modes taken from
   the nearest node (their frequencies change by ~1e-4 relative per kHz).
 
-Status bits: 1 slipped, 2 lost ion, 4 reordered, 8 non-finite (0: ok).
+Status flags (:class:`Status`, the one owner of the bits): 1 slipped, 2 lost
+ion, 4 reordered, 8 non-finite (0: ok). Trajectories with a lost ion or a
+non-finite value are left out of every statistic of L, the rotation rate,
+the lag and the phonons (:func:`usable`).
 """
 
 from __future__ import annotations
 
+import enum
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -40,7 +44,31 @@ from .frame import alignment_angle, angular_momentum, rotate_positions, rotate_s
 
 HBAR = sc.hbar
 TWO_PI = 2.0 * np.pi
-STATUS_BITS = {"slipped": 1, "lost": 2, "reordered": 4, "nonfinite": 8}
+
+
+class Status(enum.IntFlag):
+    """Per-trajectory status flags, stored as the integer ``status`` arrays."""
+
+    OK = 0
+    SLIPPED = 1
+    LOST = 2
+    REORDERED = 4
+    NONFINITE = 8
+
+    @classmethod
+    def describe(cls) -> str:
+        """The bits in words, as stored in result files."""
+        return "1 slipped, 2 lost ion, 4 reordered, 8 non-finite"
+
+
+# trajectories with these flags are left out of the statistics of L, the rate, the lag and the phonons
+EXCLUDED = Status.LOST | Status.NONFINITE
+
+
+def usable(status) -> np.ndarray:
+    """Mask of the trajectories that enter the statistics: finite and bound
+    (no ion lost). ``status``: the integer status array."""
+    return (np.asarray(status) & int(EXCLUDED)) == 0
 W_GRID_HZ = 1000.0
 
 
@@ -235,11 +263,16 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     out["reordered"] = reordered
     out["mode_n"] = mode_n
     status = np.zeros(n_traj, dtype=np.int64)
-    status |= np.where(out["slips"] != 0, STATUS_BITS["slipped"], 0)
-    status |= np.where(lost, STATUS_BITS["lost"], 0)
-    status |= np.where(reordered, STATUS_BITS["reordered"], 0)
-    status |= np.where(nonfinite, STATUS_BITS["nonfinite"], 0)
+    status |= np.where(out["slips"] != 0, int(Status.SLIPPED), 0)
+    status |= np.where(lost, int(Status.LOST), 0)
+    status |= np.where(reordered, int(Status.REORDERED), 0)
+    status |= np.where(nonfinite, int(Status.NONFINITE), 0)
     out["status"] = status
-    out["_modes"] = frame.modes[len(frame.modes) // 2]
+    mid = len(frame.modes) // 2
+    out["_modes"] = frame.modes[mid]
+    # the frame of the listed modes: the pinning's (or the middle node of the
+    # trajectories' own rates when free), or the lab frame when nothing rotates
+    f_listed = float(frame.f_hz[mid])
+    out["_frame"] = ("rotating", f_listed) if f_listed != 0.0 else ("lab", 0.0)
     return out
 

@@ -223,9 +223,9 @@ def _obs(res, stage):
 
 
 def _ok_L(obs) -> np.ndarray:
-    from .stats import OK_MASK
+    from .observables import usable
 
-    ok = (np.asarray(obs.arrays["status"]) & OK_MASK) == 0
+    ok = usable(obs.arrays["status"])
     L = np.asarray(obs.arrays["L_hbar"], dtype=float)[ok]
     return L[np.isfinite(L)]
 

@@ -18,6 +18,11 @@ class Observation:
     reordered, 8 non-finite), ``lag_rad`` (T,), ``slips`` (T,).
     ``modes``: ``freq_hz``, ``label``, ``kind``, ``plane`` of the modes the
     phonon numbers refer to. ``summary``: see :func:`mdrotor.stats.summarize`.
+    ``frame``: the frame of those mode frequencies, ``"lab"`` or
+    ``"rotating"`` (at ``frame_f_rot_hz``; while pinned the pinning's frame,
+    when free the rate of the listed modes, each trajectory being measured
+    in the frame of its own rate); ``None`` in files written before it was
+    stored.
     """
 
     name: str
@@ -25,6 +30,18 @@ class Observation:
     arrays: dict
     modes: dict
     summary: dict
+    frame: str | None = None
+    frame_f_rot_hz: float = 0.0
+
+    def frame_text(self) -> str:
+        """The frame of the mode table in words, e.g. "rotating frame, 199.3 kHz"."""
+        from .numfmt import plain
+
+        if self.frame == "rotating":
+            return f"rotating frame, {plain(self.frame_f_rot_hz / 1e3, 6)} kHz"
+        if self.frame == "lab":
+            return "lab frame"
+        return "frame not recorded"
 
 
 @dataclass
@@ -61,4 +78,5 @@ def observation_from_raw(name: str, t_s: float, obs: dict) -> Observation:
     arrays = {k: np.asarray(obs[k]) for k in ARRAYS}
     meta = {"freq_hz": np.asarray(modes.freq_hz), "label": list(modes.labels), "kind": list(modes.kinds),
             "plane": list(modes.planes)}
-    return Observation(name, t_s, arrays, meta, summarize(obs, meta["kind"]))
+    frame, f_frame = obs.get("_frame", (None, 0.0))
+    return Observation(name, t_s, arrays, meta, summarize(obs, meta["kind"]), frame, float(f_frame))

@@ -12,8 +12,12 @@ import numpy as np
 from scipy.constants import k as KB
 
 from . import __version__
+from .numfmt import clean
+from .observables import Status
 
 TWO_PI = 2.0 * np.pi
+EXIT_NO_STATISTICS = 3
+NO_STATISTICS = "none: no trajectory is finite and bound at the end"
 
 
 def run(cfg, *, trajectories: int | None = None, seed: int | None = None, threads: int | None = None,
@@ -33,6 +37,12 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
     Returns
     -------
     mdrotor.result.Result
+
+    Raises
+    ------
+    mdrotor.errors.InputError
+        Before any work, when the run's per-trajectory arrays would not fit
+        in the memory available (:func:`resource_estimate`).
     """
     from .engine import initial_states, integrate, make_plan
     from .result import Result, observation_from_raw
@@ -40,6 +50,8 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
     opts = cfg.run
     n_traj = int(trajectories if trajectories is not None else opts.trajectories)
     seed = int(seed if seed is not None else opts.seed)
+    traj_key = ("--trajectories", "command line") if trajectories is not None else ("run.trajectories", cfg.source)
+    check_memory(cfg, n_traj, *traj_key)
     threads = threads if threads is not None else opts.threads
     _set_threads(threads)
     chunk = int(chunk if chunk is not None else opts.chunk)
@@ -50,6 +62,7 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
     idx = np.arange(n_traj) if order is None else np.asarray(order)
     pos, vel = initial_states(plan, seed, idx)
     phases = plan.rf_phases(seed, idx) if plan.rf else None
+    compile_s = _warm_up(plan, pos, vel, seed, idx, phases)
     noise_state = plan.noise.new_state(seed, idx) if plan.noise is not None else None
     bar = None
     if progress:
@@ -87,17 +100,27 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         "stage_dt_s": np.array(plan.stage_dt),
         "f_fast_hz": plan.f_fast_hz,
         "wall_s": raw.wall_s,
-        "traj_steps_per_s": plan.n_steps * n_traj / raw.wall_s if raw.wall_s > 0 else float("nan"),
+        "compile_s": compile_s,
         "threads": _get_threads(),
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "species": [s.name for s in cfg.species],
         "moment_of_inertia_kg_m2": plan.crystal0.moment_of_inertia_kg_m2,
         "lag_order": plan.lag_n,
-        "status_bits": "1 slipped, 2 lost ion, 4 reordered, 8 non-finite",
+        "status_bits": Status.describe(),
         "notes": "; ".join(plan.notes),
         "preflight_margin_min": pre["margin_min"],
         "preflight_warnings": "\n".join(pre["warnings"]),
     }
+    # the file is marked when no statistics could be made (the CLI exits 3)
+    attrs["statistics"] = "ok" if stages[sched.stages[-1].name].summary["n_ok"] > 0 else NO_STATISTICS
+    if raw.wall_s > 0:
+        attrs["traj_steps_per_s"] = plan.n_steps * n_traj / raw.wall_s
+    if plan.series_interval_s:
+        from .engine import series_steps
+
+        attrs["series_interval_requested_s"] = clean(plan.series_interval_s)
+        attrs["series_interval_steps"] = np.array([series_steps(plan, k) for k in range(len(sched.stages))], dtype=np.int64)
+        attrs["series_interval_s"] = attrs["series_interval_steps"] * np.array(plan.stage_dt)
     grid = np.linspace(0.0, sched.duration_s, 1001)
     schedule = {"t_s": grid, "f_rot_hz": sched.f_rot_hz(grid), "theta_rad": sched.theta_rad(grid),
                 "stage_bounds_s": bounds, "stage_names": [s.name for s in sched.stages]}
@@ -134,6 +157,110 @@ def _preflight(plan) -> dict:
     return pre
 
 
+def _warm_up(plan, pos, vel, seed, idx, phases) -> float:
+    """Seconds to compile (or load from the cache) the run's kernels, spent
+    on one step of a copy of the first trajectory before the timed loop."""
+    from .engine import warm_up
+
+    if pos.shape[2] == 0:
+        return 0.0
+    ns = plan.noise.new_state(seed, idx[:1]) if plan.noise is not None else None
+    return warm_up(plan, pos, vel, phases, ns)
+
+
+# bytes per trajectory of what a run holds in memory, per item (see resource_estimate)
+_F8 = 8
+
+
+def resource_estimate(cfg, n_traj: int) -> dict:
+    """Memory and file size of a run of ``n_traj`` trajectories (bytes).
+
+    Counted per trajectory, N ions and M <= 3 N modes, S stages:
+    the state (positions and velocities, 6 N doubles); every observation kept
+    (t = 0 and each stage end: L, L_com, f_rot, lag, slips, status and M
+    phonon numbers, plus three flags); the temporary arrays of one
+    observation (about 40 N doubles, 60 N in the RF model, where the state is
+    also filtered over two RF periods); with coloured noise, one block of
+    noise samples (``engine.BLOCK_STEPS`` steps of the field and of each
+    multipole order, several copies while it is generated). The file holds
+    the observations at t = 0, at every stage end and again under /final.
+    Measured peaks (tracemalloc, README) stay below this estimate.
+    """
+    from .engine import BLOCK_STEPS
+
+    n = len(cfg.masses_kg)
+    m = 3 * n
+    s = len(cfg.schedule.stages) if cfg.schedule is not None else 1
+    per_obs = _F8 * (6 + m) + 3
+    temp = _F8 * (60 if cfg.trap.model == "rf" else 40) * n
+    noise = 0
+    if cfg.noise:
+        from .noise import model_from_config
+
+        model = model_from_config(cfg)
+        if not model.is_empty and model.has_colored:
+            noise = 3 * _F8 * BLOCK_STEPS * (3 + 2 * len(model.orders))
+    mem = _F8 * 6 * n + (s + 1) * per_obs + temp + noise
+    disk = (s + 2) * _F8 * (6 + m)
+    return {"memory_per_trajectory_bytes": mem, "file_per_trajectory_bytes": disk,
+            "memory_bytes": mem * n_traj, "file_bytes": disk * n_traj}
+
+
+def _available_memory_bytes() -> int | None:
+    """Memory this process may still take: MemAvailable of /proc/meminfo
+    (Linux), else the physical memory; None when neither is known."""
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    try:
+        import os
+
+        return int(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES"))
+    except (ValueError, OSError, AttributeError):
+        return None
+
+
+def _gb(b: float) -> str:
+    return f"{b / 1e9:.3g} GB"
+
+
+def check_memory(cfg, n_traj: int, key: str = "run.trajectories", source: str | None = None) -> None:
+    """Refuse, before any work, a trajectory count whose arrays would not fit
+    in the available memory (:func:`resource_estimate`)."""
+    from .errors import InputError
+
+    if n_traj < 1:
+        raise InputError(key, f"expected a positive number of trajectories, got {n_traj}", source or cfg.source)
+    est = resource_estimate(cfg, n_traj)
+    avail = _available_memory_bytes()
+    if avail is not None and est["memory_bytes"] > avail:
+        fit = max(1, int(avail // est["memory_per_trajectory_bytes"]))
+        raise InputError(key, f"{n_traj} trajectories need about {_gb(est['memory_bytes'])} of memory "
+                              f"({est['memory_per_trajectory_bytes'] / 1e3:.3g} kB each), {_gb(avail)} is available; "
+                              f"expected at most about {fit} trajectories per run (split the work with a sweep "
+                              f"over run.seed, or more machines)", source or cfg.source)
+
+
+def check_disk(cfg, n_traj: int, out, key: str = "-o", source: str = "command line") -> None:
+    """Refuse, before any work, a result file larger than the free space of its folder."""
+    import shutil
+
+    from .errors import InputError
+
+    need = resource_estimate(cfg, n_traj)["file_bytes"]
+    try:
+        free = shutil.disk_usage(Path(out).parent).free
+    except OSError:
+        return
+    if need > free:
+        raise InputError(key, f"the result file of {n_traj} trajectories needs about {_gb(need)}, the folder "
+                              f"{str(Path(out).parent)!r} has {_gb(free)} free; expected a folder with room for it", source)
+
+
 def micromotion_report(plan, raw) -> dict:
     """Intrinsic micromotion of the rotating crystal at the end of the run.
 
@@ -146,10 +273,11 @@ def micromotion_report(plan, raw) -> dict:
     RF-period average of the kinetic energy minus that of the secular
     velocity, averaged over trajectories.
     """
+    from .observables import usable
     from .stats import mean_sem
 
     fin = list(raw.stages.values())[-1]
-    ok = (fin["status"] & (2 | 8)) == 0
+    ok = usable(fin["status"])
     f_end = float(np.mean(fin["f_rot_hz"][ok])) if np.any(ok) else 0.0
     t_end = plan.schedule.duration_s
     cr = plan.crystal_at(t_end, f_end)
@@ -192,17 +320,68 @@ def _get_threads() -> int:
 # ---------------------------------------------------------------------------
 # command line
 # ---------------------------------------------------------------------------
+def jsonable(v):
+    """A value ready for json.dumps: arrays as lists, numpy scalars as
+    Python numbers, non-finite floats as null (JSON has no NaN)."""
+    if isinstance(v, dict):
+        return {str(k): jsonable(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [jsonable(x) for x in v]
+    if isinstance(v, np.ndarray):
+        return jsonable(v.tolist())
+    if isinstance(v, (np.bool_, bool)):
+        return bool(v)
+    if isinstance(v, (np.integer, int)):
+        return int(v)
+    if isinstance(v, (np.floating, float)):
+        return float(v) if np.isfinite(v) else None
+    if isinstance(v, bytes):
+        return v.decode()
+    return v
+
+
+def _modes_list(obs) -> list:
+    s = obs.summary
+    means = s.get("mode_n_mean")
+    errs = s.get("mode_n_err")
+    out = []
+    for k, (lab, kind, f) in enumerate(zip(obs.modes["label"], obs.modes["kind"], obs.modes["freq_hz"])):
+        d = {"label": lab, "kind": kind, "freq_hz": float(f)}
+        if means is not None and np.isfinite(means[k]):
+            d["n_mean"] = float(means[k])
+        if errs is not None and np.isfinite(errs[k]):
+            d["n_err"] = float(errs[k])
+        out.append(d)
+    return out
+
+
+def _obs_dict(obs) -> dict:
+    """Scalar summary of an observation, its modes and their frame."""
+    d = {k: v for k, v in obs.summary.items() if not isinstance(v, np.ndarray)}
+    d["t_s"] = obs.t_s
+    d["modes_frame"] = obs.frame
+    d["modes_frame_f_rot_hz"] = obs.frame_f_rot_hz
+    d["modes"] = _modes_list(obs)
+    return d
+
+
 def summary_dict(res) -> dict:
-    """JSON-ready summary of a Result."""
-    s = res.summary
+    """JSON-ready summary of a Result: the final summary (only numbers that
+    could be computed; ``n_ok`` of ``n_trajectories`` used), the fraction
+    intervals' kind, the final modes with their frame, every stage, the run's
+    provenance and speed (compilation apart), the noise rates and the RF
+    micromotion when the run has them."""
+    from .stats import FRACTION_INTERVAL
+
     fin = res.final
-    out = {k: (float(v) if isinstance(v, (float, np.floating)) else v) for k, v in s.items() if not isinstance(v, np.ndarray)}
-    out["modes"] = [{"label": lab, "kind": k, "freq_hz": float(f), "n_mean": float(n), "n_err": float(e)}
-                    for lab, k, f, n, e in zip(fin.modes["label"], fin.modes["kind"], fin.modes["freq_hz"], s["mode_n_mean"], s["mode_n_err"])]
-    for k in ("dt_s", "n_steps", "n_trajectories", "wall_s", "traj_steps_per_s", "integrator", "threads"):
-        v = res.attrs[k]
-        out[k] = v.item() if hasattr(v, "item") else v
-    out["seed"] = int(res.attrs["seed"])
+    out = _obs_dict(fin)
+    out["fraction_interval"] = FRACTION_INTERVAL
+    a = res.attrs
+    for k in ("dt_s", "n_steps", "n_trajectories", "wall_s", "compile_s", "traj_steps_per_s", "integrator", "threads",
+              "statistics", "series_interval_requested_s", "series_interval_s", "notes"):
+        if k in a:
+            out[k] = a[k]
+    out["seed"] = int(a["seed"])
     pre = res.extra.get("preflight")
     if pre is not None:
         init = pre.get("initial") or {k[len("initial."):]: v for k, v in pre.items() if k.startswith("initial.")}
@@ -210,82 +389,97 @@ def summary_dict(res) -> dict:
                             "warnings": [w for w in str(pre.get("warnings", "")).split("\n") if w],
                             "stages": [{"stage": s, "verdict": v, "margin": float(mg)} for s, v, mg in
                                        zip(pre.get("stage", []), pre.get("verdict", []), np.atleast_1d(pre.get("margin", [])))]}
-    out["stages"] = {name: {"L_mean_hbar": o.summary["L_mean_hbar"], "L_std_hbar": o.summary["L_std_hbar"],
-                            "slip_fraction": o.summary["slip_fraction"], "differential_n_mean": o.summary["differential_n_mean"]}
-                     for name, o in res.stages.items()}
-    return out
+    out["stages"] = {name: _obs_dict(o) for name, o in res.stages.items()}
+    for name in ("noise", "micromotion"):
+        if res.extra.get(name):
+            out[name] = res.extra[name]
+    return jsonable(out)
+
+
+def _fractions_text(s: dict) -> str:
+    from .numfmt import interval
+
+    parts = []
+    for name, word in (("slip", "slipped"), ("loss", "lost"), ("reorder", "reordered"), ("nonfinite", "non-finite")):
+        if f"{name}_fraction" in s:
+            parts.append(f"{word} {interval(s[f'{name}_fraction'], s[f'{name}_fraction_lo'], s[f'{name}_fraction_hi'])}")
+    return ", ".join(parts)
+
+
+def mode_table(obs, indent: str = "  ") -> list:
+    """Text lines of an observation's mode table, its frame in the heading."""
+    from .numfmt import MISSING, value_err
+
+    s = obs.summary
+    means, errs = s.get("mode_n_mean"), s.get("mode_n_err")
+    lines = [f"{indent}modes ({obs.frame_text()}):",
+             f"{indent}mode  label              kind          freq (kHz)   mean phonons"]
+    for k, (lab, kind, f) in enumerate(zip(obs.modes["label"], obs.modes["kind"], obs.modes["freq_hz"])):
+        n = value_err(means[k], errs[k] if errs is not None else None) if means is not None else MISSING
+        lines.append(f"{indent}{k:4d}  {lab:<18s} {kind:<13s} {f / 1e3:10.4f}   {n}")
+    return lines
 
 
 def summary_text(res, path=None) -> str:
+    from .numfmt import MISSING, plain, value_err
+
     s = res.summary
     a = res.attrs
     fin = res.final
     lines = []
     if path:
         lines.append(f"result: {path}")
-    lines.append(f"{a['n_trajectories']} trajectories x {a['n_steps']} steps (dt = {a['dt_s'] * 1e9:.4g} ns, {a['integrator']}), "
-                 f"seed {int(a['seed'])}, wall {a['wall_s']:.3g} s, {a['traj_steps_per_s']:.3e} trajectory-steps/s on {a['threads']} thread(s)")
+    speed = (f", {plain(a['traj_steps_per_s'], 3)} trajectory-steps/s" if "traj_steps_per_s" in a else "")
+    comp = f" (+ {plain(a['compile_s'], 3)} s kernel compilation or cache loading, not in the speed)" if "compile_s" in a else ""
+    lines.append(f"{a['n_trajectories']} trajectories x {a['n_steps']} steps (dt = {plain(a['dt_s'] * 1e9, 4)} ns, {a['integrator']}), "
+                 f"seed {int(a['seed'])}, wall {plain(a['wall_s'], 3)} s{comp}{speed} on {a['threads']} thread(s)")
+    if "series_interval_s" in a:
+        used = ", ".join(f"{plain(x * 1e6, 6)} us" for x in np.atleast_1d(a["series_interval_s"]))
+        lines.append(f"time series every {plain(a['series_interval_requested_s'] * 1e6, 6)} us asked, rounded to whole steps: {used} (per stage)")
     pre = res.extra.get("preflight") or {}
     for w in [w for w in str(pre.get("warnings", "")).split("\n") if w]:
         lines.append(f"WARNING (preflight): {w}")
+    lines.append("statistics of L, f_rot and phonons over the finite, bound trajectories; fractions of all trajectories "
+                 "with Wilson 68 % intervals [lo, hi]")
     lines.append("")
-    lines.append("  stage            t_end (ms)    L mean (hbar)          L spread (hbar)     slipped    diff. phonons")
+    lines.append(f"  {'stage':<15s} {'t_end (ms)':>10s}  {'used':>11s}   {'L mean (hbar)':<20s} {'L spread (hbar)':<18s} "
+                 f"{'slipped':<22s} diff. phonons")
     for name, o in res.stages.items():
         ss = o.summary
-        lines.append(f"  {name:<15s} {o.t_s * 1e3:10.4g}   {ss['L_mean_hbar']:12.6g} +- {ss['L_mean_err_hbar']:<8.3g} "
-                     f"{ss['L_std_hbar']:10.4g} +- {ss['L_std_err_hbar']:<8.2g} {ss['slip_fraction']:7.3f}   "
-                     f"{ss['differential_n_mean']:9.4g} +- {ss['differential_n_err']:.2g}")
+        used = f"{ss['n_ok']}/{ss['n_trajectories']}"
+        slip = _fractions_text({k: v for k, v in ss.items() if k.startswith("slip_")}).replace("slipped ", "") or MISSING
+        lines.append(f"  {name:<15s} {plain(o.t_s * 1e3, 4):>10s}  {used:>11s}   "
+                     f"{value_err(ss.get('L_mean_hbar'), ss.get('L_mean_err_hbar')):<20s} "
+                     f"{value_err(ss.get('L_std_hbar'), ss.get('L_std_err_hbar')):<18s} {slip:<22s} "
+                     f"{value_err(ss.get('differential_n_mean'), ss.get('differential_n_err'))}")
     lines.append("")
-    lines.append(f"final ({fin.name}): L = {s['L_mean_hbar']:.6g} +- {s['L_mean_err_hbar']:.3g} hbar, spread {s['L_std_hbar']:.4g} +- {s['L_std_err_hbar']:.2g} hbar, "
-                 f"f_rot = {s['f_rot_mean_hz'] / 1e3:.6g} kHz")
-    lines.append(f"  slipped {s['slip_fraction']:.3f} +- {s['slip_fraction_err']:.3f}, lost {s['loss_fraction']:.3f} +- {s['loss_fraction_err']:.3f}, "
-                 f"reordered {s['reorder_fraction']:.3f}, non-finite {s['nonfinite_fraction']:.3f}")
-    lines.append("")
-    lines.append("  mode  label              kind          freq (kHz)   mean phonons")
-    for k, (lab, kind, f) in enumerate(zip(fin.modes["label"], fin.modes["kind"], fin.modes["freq_hz"])):
-        lines.append(f"  {k:4d}  {lab:<18s} {kind:<13s} {f / 1e3:10.4f}   {s['mode_n_mean'][k]:10.4g} +- {s['mode_n_err'][k]:.2g}")
-    lines.append(f"  differential total {s['differential_n_mean']:.4g} +- {s['differential_n_err']:.2g}, COM total {s['com_n_mean']:.4g} +- {s['com_n_err']:.2g}")
+    if s["n_ok"] == 0:
+        lines.append(f"final ({fin.name}): no statistics: none of the {s['n_trajectories']} trajectories is finite and bound "
+                     f"at the end (the result file is written and marked: attribute statistics)")
+        lines.append(f"  {_fractions_text(s)}")
+    else:
+        f_rot = value_err(s["f_rot_mean_hz"] / 1e3, s.get("f_rot_mean_err_hz", float("nan")) / 1e3) if "f_rot_mean_hz" in s else MISSING
+        lines.append(f"final ({fin.name}), {s['n_ok']} of {s['n_trajectories']} trajectories finite and bound: "
+                     f"L = {value_err(s.get('L_mean_hbar'), s.get('L_mean_err_hbar'))} hbar, "
+                     f"spread {value_err(s.get('L_std_hbar'), s.get('L_std_err_hbar'))} hbar, f_rot = {f_rot} kHz")
+        lines.append(f"  {_fractions_text(s)}")
+        lines.append("")
+        lines += mode_table(fin)
+        lines.append(f"  differential total {value_err(s.get('differential_n_mean'), s.get('differential_n_err'))}, "
+                     f"COM total {value_err(s.get('com_n_mean'), s.get('com_n_err'))}")
     nz = res.extra.get("noise")
     if nz:
-        lines.append("")
-        lines.append(f"noise rates over stage '{nz['stage']}' ({nz['t0_s'] * 1e3:.4g} to {nz['t1_s'] * 1e3:.4g} ms, {nz['n_trajectories']} trajectories"
-                     f"{', pinned' if nz['pinned'] else ', free rotation'}):")
-        orders = np.atleast_1d(nz.get("D_analytic_orders", [])).astype(int)
-        d_inf = np.atleast_1d(nz.get("D_analytic_hbar2_per_s", []))
-        d_win = np.atleast_1d(nz.get("D_window_hbar2_per_s", np.full(len(orders), np.nan)))
-        zero = np.atleast_1d(nz.get("D_analytic_zero_by_symmetry", np.zeros(len(orders), dtype=bool))).astype(bool)
-        win_total = float(np.sum(d_win[~zero])) if "D_window_total_hbar2_per_s" in nz else None
-        if "D_fit_hbar2_per_s" in nz:
-            line = (f"  L diffusion D (hbar^2/s): fitted "
-                    f"{_fitted_rate(nz['D_fit_hbar2_per_s'], nz['D_fit_err_hbar2_per_s'], nz.get('D_fit_resolved'))}")
-            if win_total is not None:
-                line += f"; expected over this window {win_total:.4g}"
-                if "D_fit_z" in nz:
-                    line += f" (z = {nz['D_fit_z']:.2f})"
-            line += f"; infinite time {float(np.sum(d_inf[~zero])):.4g} (rigid crystal at {nz['f_rot_hz'] / 1e3:.4g} kHz)"
-            lines.append(line)
-        for o, d, dw, z0 in zip(orders, d_inf, d_win, zero):
-            name = f"    order {o}{' (uniform field)' if o == 1 else ''}: "
-            if z0:
-                lines.append(name + "0 (zero by symmetry: the crystal has no such moment)")
-            else:
-                lines.append(name + f"{d:.4g} hbar^2/s" + (f" (over this window {dw:.4g})" if np.isfinite(dw) else ""))
-        if "turchette_quanta_per_s" in nz:
-            tq = np.atleast_1d(nz["turchette_quanta_per_s"])
-            lines.append(f"  COM heating (Turchette) x, y, z: {tq[0]:.4g}, {tq[1]:.4g}, {tq[2]:.4g} quanta/s (lab-frame COM modes)")
-        res_h = np.atleast_1d(nz.get("heating_fit_resolved", [None] * len(nz["heating_labels"])))
-        for lab, r, e, ok in zip(nz["heating_labels"], np.atleast_1d(nz["heating_fit_quanta_per_s"]),
-                                 np.atleast_1d(nz["heating_fit_err_quanta_per_s"]), res_h):
-            lines.append(f"  heating {lab:<16s} fitted {_fitted_rate(r, e, ok)} quanta/s")
+        lines += _noise_text(nz)
     mm = res.extra.get("micromotion")
     if mm:
         lines.append("")
-        lines.append(f"RF micromotion at the end (crystal rotating at {mm['f_rot_hz'] / 1e3:.4g} kHz), amplitude per ion:")
+        lines.append(f"RF micromotion at the end (crystal rotating at {plain(mm['f_rot_hz'] / 1e3, 4)} kHz), amplitude per ion:")
         for i, (ar, az, rad) in enumerate(zip(np.atleast_1d(mm["amplitude_radial_m"]), np.atleast_1d(mm["amplitude_axial_m"]),
                                               np.atleast_1d(mm["radius_m"]))):
             lines.append(f"  ion {i}: radial {ar * 1e9:8.2f} nm, axial {az * 1e9:8.2f} nm   (radius {rad * 1e6:.3f} um)")
-        lines.append(f"  time-averaged micromotion kinetic energy: {mm['ke_measured_j'] / KB * 1e3:.4g} +- {mm['ke_measured_err_j'] / KB * 1e3:.2g} mK k_B "
-                     f"(lowest order {mm['ke_lowest_order_j'] / KB * 1e3:.4g} mK k_B)")
+        mk = 1e3 / KB
+        lines.append(f"  time-averaged micromotion kinetic energy: {value_err(mm['ke_measured_j'] * mk, mm['ke_measured_err_j'] * mk)} mK k_B "
+                     f"(lowest order {plain(mm['ke_lowest_order_j'] * mk, 4)} mK k_B)")
         lines.append("  phonons and L are measured on the secular motion (two RF-period averages; see README)")
     return "\n".join(lines)
 
@@ -294,18 +488,56 @@ def _fitted_rate(value, err, resolved=None) -> str:
     """A fitted rate with its error, or "not resolved (< bound at 2 sigma)"
     (:func:`mdrotor.noise.fit_resolved`, :func:`mdrotor.noise.fit_upper_bound`)."""
     from .noise import RESOLVED_SIGMA, fit_resolved, fit_upper_bound
+    from .numfmt import value_err
 
     value, err = float(value), float(err)
     if resolved is None:
         resolved = fit_resolved(value, err)
     if not resolved:
         return f"not resolved (< {fit_upper_bound(value, err):.2g} at {RESOLVED_SIGMA:g} sigma)"
-    return f"{value:.4g} +- {err:.2g}"
+    return value_err(value, err)
+
+
+def _noise_text(nz: dict) -> list:
+    """Text lines of the run's noise rates (:func:`mdrotor.noise.run_rates`)."""
+    from .numfmt import plain
+
+    lines = ["", f"noise rates over stage '{nz['stage']}' ({plain(nz['t0_s'] * 1e3, 4)} to {plain(nz['t1_s'] * 1e3, 4)} ms, "
+                 f"{nz['n_trajectories']} trajectories{', pinned' if nz['pinned'] else ', free rotation'}):"]
+    orders = np.atleast_1d(nz.get("D_analytic_orders", [])).astype(int)
+    d_inf = np.atleast_1d(nz.get("D_analytic_hbar2_per_s", []))
+    d_win = np.atleast_1d(nz.get("D_window_hbar2_per_s", np.full(len(orders), np.nan)))
+    zero = np.atleast_1d(nz.get("D_analytic_zero_by_symmetry", np.zeros(len(orders), dtype=bool))).astype(bool)
+    win_total = float(np.sum(d_win[~zero])) if "D_window_total_hbar2_per_s" in nz else None
+    if "D_fit_hbar2_per_s" in nz:
+        line = (f"  L diffusion D (hbar^2/s): fitted "
+                f"{_fitted_rate(nz['D_fit_hbar2_per_s'], nz['D_fit_err_hbar2_per_s'], nz.get('D_fit_resolved'))}")
+        if win_total is not None:
+            line += f"; expected over this window {plain(win_total, 4)}"
+            if "D_fit_z" in nz:
+                line += f" (z = {nz['D_fit_z']:.2f})"
+        line += f"; infinite time {plain(float(np.sum(d_inf[~zero])), 4)} (rigid crystal at {plain(nz['f_rot_hz'] / 1e3, 4)} kHz)"
+        lines.append(line)
+    for o, d, dw, z0 in zip(orders, d_inf, d_win, zero):
+        name = f"    order {o}{' (uniform field)' if o == 1 else ''}: "
+        if z0:
+            lines.append(name + "0 (zero by symmetry: the crystal has no such moment)")
+        else:
+            lines.append(name + f"{plain(d, 4)} hbar^2/s" + (f" (over this window {plain(dw, 4)})" if np.isfinite(dw) else ""))
+    if "turchette_quanta_per_s" in nz:
+        tq = np.atleast_1d(nz["turchette_quanta_per_s"])
+        lines.append(f"  COM heating (Turchette) x, y, z: {plain(tq[0], 4)}, {plain(tq[1], 4)}, {plain(tq[2], 4)} quanta/s (lab-frame COM modes)")
+    res_h = np.atleast_1d(nz.get("heating_fit_resolved", [None] * len(nz["heating_labels"])))
+    for lab, r, e, ok in zip(nz["heating_labels"], np.atleast_1d(nz["heating_fit_quanta_per_s"]),
+                             np.atleast_1d(nz["heating_fit_err_quanta_per_s"]), res_h):
+        lines.append(f"  heating {lab:<16s} fitted {_fitted_rate(r, e, ok)} quanta/s")
+    return lines
 
 
 def cli_run(args) -> int:
     from .config import load_config
     from .errors import InputError
+    from .store import check_writable
 
     ov = list(args.overrides) + (["run.force=true"] if getattr(args, "force", False) else [])
     cfg = load_config(args.config, ov)
@@ -314,8 +546,11 @@ def cli_run(args) -> int:
     if args.seed is not None and not 0 <= args.seed < 2**64:
         raise InputError("--seed", "expected a seed in [0, 2^64)", "command line")
     out = Path(args.output) if args.output else Path(Path(args.config).stem + ".h5")
-    if not out.parent.exists():
-        raise InputError("-o", f"the folder {str(out.parent)!r} does not exist", "command line")
+    check_writable(out)
+    n_traj = args.trajectories if args.trajectories is not None else cfg.run.trajectories
+    key = ("--trajectories", "command line") if args.trajectories is not None else ("run.trajectories", cfg.source)
+    check_memory(cfg, n_traj, *key)
+    check_disk(cfg, n_traj, out)
     show = not args.quiet and sys.stderr.isatty()
     t0 = time.perf_counter()
     res = run(cfg, trajectories=args.trajectories, seed=args.seed, threads=args.threads, progress=show)
@@ -332,4 +567,8 @@ def cli_run(args) -> int:
         print(json.dumps(d))
     else:
         print(summary_text(res, out))
+    if res.final.summary["n_ok"] == 0:
+        print(f"mdrotor: no statistics: none of the {res.final.summary['n_trajectories']} trajectories is finite and bound "
+              f"at the end; {out} is written and marked (attribute statistics)", file=sys.stderr)
+        return EXIT_NO_STATISTICS
     return 0

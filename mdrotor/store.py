@@ -13,8 +13,9 @@ from pathlib import Path
 import numpy as np
 
 from .result import Observation, Result
+from .stats import FRACTION_INTERVAL
 
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: fraction intervals (_lo, _hi, _count), n_trajectories, mode frames, no NaN statistics
 
 
 def _write_obs(g, obs: Observation) -> None:
@@ -22,20 +23,55 @@ def _write_obs(g, obs: Observation) -> None:
     g.attrs["name"] = obs.name
     for k, v in obs.arrays.items():
         g.create_dataset(k, data=v)
-    mg = g.create_group("modes")
-    mg.create_dataset("freq_hz", data=obs.modes["freq_hz"])
-    for k in ("label", "kind", "plane"):
-        mg.create_dataset(k, data=np.array(obs.modes[k], dtype=object), dtype=_str_dtype())
+    _write_modes(g.create_group("modes"), obs)
     sg = g.create_group("summary")
     _write_summary(sg, obs.summary)
 
 
+def _write_modes(mg, obs: Observation) -> None:
+    """Mode metadata, and the frame of the frequencies as attributes
+    ``frame`` ("lab" or "rotating") and ``frame_f_rot_hz``."""
+    mg.create_dataset("freq_hz", data=obs.modes["freq_hz"])
+    for k in ("label", "kind", "plane"):
+        mg.create_dataset(k, data=np.array(obs.modes[k], dtype=object), dtype=_str_dtype())
+    if obs.frame is not None:
+        mg.attrs["frame"] = obs.frame
+        mg.attrs["frame_f_rot_hz"] = float(obs.frame_f_rot_hz)
+
+
 def _write_summary(g, summary: dict) -> None:
+    g.attrs["fraction_interval"] = FRACTION_INTERVAL
     for k, v in summary.items():
+        if v is None:
+            continue
         if isinstance(v, np.ndarray):
             g.create_dataset(k, data=v)
         else:
             g.attrs[k] = v
+
+
+def check_writable(path, key: str = "-o", source: str = "command line") -> None:
+    """Refuse, before any work, an output that cannot be written: create
+    the temporary file that :func:`save_result` would write, then remove it."""
+    from .errors import InputError
+
+    path = Path(path)
+    folder = path.parent
+    if not folder.is_dir():
+        raise InputError(key, f"the folder {str(folder)!r} does not exist", source)
+    if path.is_dir():
+        raise InputError(key, f"{str(path)!r} is a folder; expected a file name such as result.h5", source)
+    tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
+    try:
+        with open(tmp, "wb"):
+            pass
+    except OSError as e:
+        raise InputError(key, f"cannot write into the folder {str(folder)!r} ({e.strerror}); expected a writable folder", source) from None
+    finally:
+        try:
+            tmp.unlink()
+        except OSError:
+            pass
 
 
 def _str_dtype():
@@ -65,10 +101,7 @@ def save_result(res: Result, path) -> None:
             g.attrs["t_s"] = fin.t_s
             for k, v in fin.arrays.items():
                 g.create_dataset(k, data=v)
-            mg = f.create_group("modes")
-            mg.create_dataset("freq_hz", data=fin.modes["freq_hz"])
-            for k in ("label", "kind", "plane"):
-                mg.create_dataset(k, data=np.array(fin.modes[k], dtype=object), dtype=_str_dtype())
+            _write_modes(f.create_group("modes"), fin)
             sg = f.create_group("summary")
             _write_summary(sg, fin.summary)
             if res.series:
@@ -109,11 +142,14 @@ def _read_obs(g) -> Observation:
     modes = {"freq_hz": mg["freq_hz"][()]}
     for k in ("label", "kind", "plane"):
         modes[k] = [x.decode() if isinstance(x, bytes) else str(x) for x in mg[k][()]]
-    return Observation(str(g.attrs["name"]), float(g.attrs["t_s"]), arrays, modes, _read_summary(g["summary"]))
+    frame = mg.attrs.get("frame")
+    frame = (frame.decode() if isinstance(frame, bytes) else str(frame)) if frame is not None else None
+    return Observation(str(g.attrs["name"]), float(g.attrs["t_s"]), arrays, modes, _read_summary(g["summary"]),
+                       frame, float(mg.attrs.get("frame_f_rot_hz", 0.0)))
 
 
 def _read_summary(g) -> dict:
-    out = {k: (v.item() if hasattr(v, "item") else v) for k, v in g.attrs.items()}
+    out = {k: (v.item() if hasattr(v, "item") else v) for k, v in g.attrs.items() if k != "fraction_interval"}
     for k in g:
         out[k] = g[k][()]
     return out
