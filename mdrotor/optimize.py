@@ -80,8 +80,12 @@ class Parameter:
     start_u: float | None
 
     def value(self, u: float):
-        """Config value at unit-cube coordinate u (full precision)."""
-        return with_unit(scaled(self, min(1.0, max(0.0, float(u)))), self.unit, None)
+        """Config value at unit-cube coordinate u, to 15 significant digits
+        (``28.875 us``, not ``28.874999999999996 us``: the run uses exactly
+        the value written)."""
+        from .numfmt import clean
+
+        return with_unit(clean(scaled(self, min(1.0, max(0.0, float(u))))), self.unit, None)
 
 
 @dataclass
@@ -340,13 +344,27 @@ class _Budget(Exception):
     """The evaluation budget is used up."""
 
 
+# an optimiser that keeps asking for known points stops after this many asks per budgeted evaluation
+MAX_ASKS_PER_EVALUATION = 50
+
+
 class _Evaluator:
     """Evaluates batches of unit-cube points: stored ones are replayed,
-    new ones run through the executor and stored."""
+    new ones run through the executor and stored.
+
+    With common random numbers a point's objective is a deterministic
+    function of the point, so a point asked again (bit for bit the same
+    unit-cube coordinates; Nelder-Mead does this after a shrink or at a
+    bound) is answered from the earlier evaluation: it is neither run nor
+    stored, and does not count against the budget (``repeats`` counts them).
+    """
 
     def __init__(self, spec: OptimizeSpec, store, make_ex, bar, view, meta):
         self.spec, self.store, self.make_ex, self.bar, self.view, self.meta = spec, store, make_ex, bar, view, meta
-        self.count = 0
+        self.count = 0      # new evaluations: the budget's count
+        self.asks = 0       # points asked, repeats included
+        self.repeats = 0
+        self.known: dict = {}  # unit-cube point -> entry name
         self.ex = None
         self.checked = False
 
@@ -357,12 +375,21 @@ class _Evaluator:
         names, tasks, pending = [], [], {}
         for u in U:
             u = [float(x) for x in np.atleast_1d(np.asarray(u, dtype=float))]
+            self.asks += 1
+            if self.asks > MAX_ASKS_PER_EVALUATION * spec.budget:
+                raise _Budget
+            key = tuple(u)
+            if key in self.known:  # the same point again: the same value, no new run
+                self.repeats += 1
+                names.append(self.known[key])
+                continue
             if self.count >= spec.budget:
                 raise _Budget
             k = self.count
             self.count += 1
             name = point_name(k)
             names.append(name)
+            self.known[key] = name
             if store.has(name):
                 if store.entries[name].attrs.get("u") != u:
                     raise InputError("-o", f"the stored evaluation {k} does not replay (its parameters differ); "
@@ -426,8 +453,9 @@ def _drive(spec: OptimizeSpec, ev: _Evaluator) -> str:
                 x = x0.copy()
                 x[i] = x[i] + spec.initial_step if x[i] + spec.initial_step <= 1.0 else x[i] - spec.initial_step
                 simplex.append(x)
+            # the budget counts new evaluations only (repeated points are answered from the store): _Budget stops it
             res = minimize(lambda u: ev([u])[0], x0, method="Nelder-Mead", bounds=[(0.0, 1.0)] * d,
-                           options={"maxfev": spec.budget, "xatol": spec.xatol, "fatol": spec.fatol,
+                           options={"maxfev": MAX_ASKS_PER_EVALUATION * spec.budget, "xatol": spec.xatol, "fatol": spec.fatol,
                                     "initial_simplex": np.array(simplex)})
         else:
             pop = max(5, spec.popsize * d)
@@ -509,6 +537,7 @@ def run_optimize(spec, output, *, workers: int | None = None, scheduler: str | N
             store.write_main(view, full_meta(), force=True)
         try:
             state["message"] = _drive(spec, ev)
+            state["repeats"] = ev.repeats
             best = best_entry(store.entries)
             if best is None:
                 raise InputError("", "every evaluation failed; see the 'error' column of the output's summary table", spec.source)
@@ -558,6 +587,7 @@ def _summary(spec, store, state, output, best_path, wall) -> dict:
     watched = [t.metric for t in spec.terms] + [c.metric for c in spec.constraints]
     out = {"output": str(output), "best_toml": str(best_path), "method": spec.method, "message": state["message"],
            "evaluations": sum(1 for n in store.entries if n.startswith("points/")),
+           "repeated_points": int(state.get("repeats", 0)),
            "best": {"index": int(best.attrs["index"]), "objective": best.row.get("objective"),
                     "feasible": best.row.get("feasible") == 1.0,
                     "parameters": dict(zip(spec.keys, best.attrs["values"])),
@@ -567,7 +597,9 @@ def _summary(spec, store, state, output, best_path, wall) -> dict:
         out["confirm"] = {"trajectories": spec.confirm_trajectories, "seed": spec.confirm_seed, "error": conf.error,
                           "objective": conf.row.get("objective"), "feasible": conf.row.get("feasible") == 1.0,
                           "metrics": {m: conf.row.get(m) for m in watched},
-                          "errors": {m: conf.row[err_name(m, conf.row)] for m in watched if err_name(m, conf.row)}}
+                          "errors": {m: conf.row[err_name(m, conf.row)] for m in watched if err_name(m, conf.row)},
+                          "intervals": {m: [conf.row[m + "_lo"], conf.row[m + "_hi"]] for m in watched
+                                        if m + "_lo" in conf.row and m + "_hi" in conf.row}}
     return out
 
 
@@ -647,30 +679,40 @@ def cli_optimize(args) -> int:
         export_csv(out, args.csv)
         summ["csv"] = str(args.csv)
     if args.json:
-        print(json.dumps(summ))
+        from .runner import jsonable
+
+        print(json.dumps(jsonable(summ)))
     else:
         print(optimize_text(summ))
     return 0
 
 
 def optimize_text(s: dict) -> str:
+    from .numfmt import interval, plain, value_err
+
     b = s["best"]
-    lines = [f"optimize ({s['method']}): {s['evaluations']} evaluations -> {s['output']}  [{s['wall_s']:.3g} s]; {s['message']}",
-             f"best: evaluation {b['index']}, objective {b['objective']:.6g}{'' if b['feasible'] else ' (violates a constraint)'}"]
+    rep = f", {s['repeated_points']} repeated points answered from earlier ones" if s.get("repeated_points") else ""
+    lines = [f"optimize ({s['method']}): {s['evaluations']} evaluations{rep} -> {s['output']}  [{plain(s['wall_s'], 3)} s]; {s['message']}",
+             f"best: evaluation {b['index']}, objective {plain(b['objective'])}{'' if b['feasible'] else ' (violates a constraint)'}"]
     for k, v in b["parameters"].items():
         lines.append(f"  {k} = {v}")
     for k, v in b["metrics"].items():
-        lines.append(f"  {k:<28s} {v:.6g}")
+        lines.append(f"  {k:<28s} {plain(v)}")
     c = s.get("confirm")
     if c:
         if c["error"]:
             lines.append(f"confirmation run failed: {c['error']}")
         else:
-            lines.append(f"confirmation ({c['trajectories']} trajectories, fresh seed {c['seed']}): objective {c['objective']:.6g}"
+            lines.append(f"confirmation ({c['trajectories']} trajectories, fresh seed {c['seed']}): objective {plain(c['objective'])}"
                          f"{'' if c['feasible'] else ' (violates a constraint)'}")
             for k, v in c["metrics"].items():
-                e = c["errors"].get(k)
-                lines.append(f"  {k:<28s} {v:.6g}" + (f" +- {e:.2g}" if e is not None and math.isfinite(e) else ""))
+                if k in c.get("intervals", {}):
+                    txt = interval(v, *c["intervals"][k]) + " (Wilson 68 %)"
+                elif k in c["errors"]:
+                    txt = value_err(v, c["errors"][k])
+                else:
+                    txt = plain(v)
+                lines.append(f"  {k:<28s} {txt}")
     lines.append(f"best config: {s['best_toml']}  (mdrotor run {s['best_toml']})")
     return "\n".join(lines)
 

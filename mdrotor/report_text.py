@@ -43,6 +43,7 @@ def crystal_json(cfg, cr, holding) -> dict:
                      "convention": "Phi = Re[c (x + i y)^n exp(-i n angle)], c in V/m^n"} for t in cfg.pinning],
         "f_rot_hz": cr.f_rot_hz,
         "frame": "rotating" if cr.f_rot_hz else "lab",
+        "frame_f_rot_hz": float(cr.f_rot_hz) if cr.f_rot_hz else 0.0,
         "energy_j": cr.energy_j,
         "moment_of_inertia_kg_m2": cr.moment_of_inertia_kg_m2,
         "hbar_over_I_hz": cr.hbar_over_I_hz if cr.moment_of_inertia_kg_m2 > 0 else None,  # one ion: no rotor
@@ -66,7 +67,7 @@ def crystal_text(cfg, cr, holding) -> str:
     """Human-readable crystal report."""
     lines = []
     n = cr.positions_m.shape[0]
-    frame = f"rotating frame, f_rot = {cr.f_rot_hz / 1e3:.6g} kHz" if cr.f_rot_hz else "lab frame"
+    frame = f"rotating frame, {cr.f_rot_hz / 1e3:.6g} kHz" if cr.f_rot_hz else "lab frame"
     lines.append(f"crystal of {n} ion(s) ({', '.join(sorted(set(s.name for s in cfg.species)))}) in the {frame}")
     lines.append(f"config: {cfg.source}")
     f = np.sqrt(cfg.trap.omega_sq(cfg.masses_kg[:1], cfg.charges_c[:1]))[0] / TWO_PI
@@ -84,6 +85,7 @@ def crystal_text(cfg, cr, holding) -> str:
     lines.append(f"angular momentum at f_rot   L = {cr.L_hbar:.6g} hbar")
     lines.append(f"potential energy            {cr.energy_j:.6e} J")
     lines.append("")
+    lines.append(f"  modes ({frame}):")
     lines.append("  mode   freq (kHz)   label              kind           plane")
     for k, (fr, lab, kind, pl) in enumerate(zip(cr.modes.freq_hz, cr.modes.labels, cr.modes.kinds, cr.modes.planes)):
         lines.append(f"  {k:4d}   {fr / 1e3:10.4f}   {lab:<18s} {kind:<14s} {pl}")

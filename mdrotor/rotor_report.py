@@ -22,6 +22,10 @@ from scipy import constants as sc
 
 HBAR = sc.hbar
 TWO_PI = 2.0 * np.pi
+# what the allowed-L ladder assumes (printed by the command, stated in the README)
+SPIN_ASSUMPTION = ("identical ions, all in one internal (electronic and nuclear spin) state: only then is a rotation "
+                   "by 2 pi / N an exchange of identical particles that restricts L; ions in different internal "
+                   "states are distinguishable and every L is allowed")
 
 
 def _from_result(path):
@@ -30,15 +34,20 @@ def _from_result(path):
     from . import load
     from .config import from_dict
 
+    from .errors import InputError
+
     res = load(path)
     cfg = from_dict(tomllib.loads(res.attrs["config_text"]), str(path))
     s = res.summary
+    if "L_mean_hbar" not in s or "f_rot_mean_hz" not in s:
+        raise InputError("/summary", f"no statistics in this result: none of its {s.get('n_trajectories', '?')} trajectories "
+                                     "is finite and bound at the end; expected a result with at least one", str(path))
     f = float(s["f_rot_mean_hz"])
     fitted = None
     nz = res.extra.get("noise")
     if nz and "D_fit_hbar2_per_s" in nz:
         fitted = (float(nz["D_fit_hbar2_per_s"]), float(nz["D_fit_err_hbar2_per_s"]))
-    return cfg, f, float(s["L_mean_hbar"]), float(s["L_std_hbar"]), fitted, "result"
+    return cfg, f, float(s["L_mean_hbar"]), float(s.get("L_std_hbar", 0.0)), fitted, "result"
 
 
 def _from_config(path, overrides):
@@ -123,6 +132,7 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
         "f_rot_hz": f, "L_mean_hbar": l_mean, "L_std_hbar": sigma_l,
         "moment_of_inertia_kg_m2": I, "hbar_over_I_hz": float(rotor.hbar_over_I_hz(I)),
         "statistics": stat, "allowed_L_mod": int(mod), "allowed_L_residue": int(res_),
+        "statistics_assumption": SPIN_ASSUMPTION,
         "k": int(k), "lines": [{"dL": int(a), "freq_hz": float(b), "width_hz": float(c)}
                                for a, b, c in zip(lines.k, lines.centre_hz, lines.width_hz)],
         "exchange_time_s": t_ex, "revival_time_s": t_rev,
@@ -155,11 +165,14 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
 
 
 def text(d: dict) -> str:
+    from .numfmt import value_err
+
     lines = [f"rotor of {d['n_ions']} ion(s) ({', '.join(sorted(set(d['species'])))}) from the {d['source_kind']} {d['source']}",
              f"  rotating at {d['f_rot_hz'] / 1e3:.6g} kHz, L = {d['L_mean_hbar']:.6g} hbar"
              + (f", spread {d['L_std_hbar']:.4g} hbar" if d['L_std_hbar'] else " (no spread from a config)"),
              f"  moment of inertia I = {d['moment_of_inertia_kg_m2']:.6e} kg m^2 (centrifugally stretched), hbar/(2 pi I) = {d['hbar_over_I_hz']:.6g} Hz",
              f"  spin statistics: {d['statistics']}; allowed L = {d['allowed_L_residue']} mod {d['allowed_L_mod']}",
+             f"    assumes {d['statistics_assumption']}",
              ]
     if "pinning" in d:
         pn = d["pinning"]
@@ -174,7 +187,7 @@ def text(d: dict) -> str:
               f"  angular-momentum diffusion D = {d['diffusion_hbar2_per_s']:.4g} hbar^2/s ({d['diffusion_source']}; "
               f"order-{d['noise_order']} torques kick L by {d['kick_quanta']})"]
     if "diffusion_fitted_hbar2_per_s" in d:
-        lines.append(f"    fitted {d['diffusion_fitted_hbar2_per_s']:.4g} +- {d['diffusion_fitted_err_hbar2_per_s']:.2g} hbar^2/s")
+        lines.append(f"    fitted {value_err(d['diffusion_fitted_hbar2_per_s'], d['diffusion_fitted_err_hbar2_per_s'])} hbar^2/s")
     if "diffusion_analytic_hbar2_per_s" in d:
         lines.append(f"    analytic {d['diffusion_analytic_hbar2_per_s']:.4g} hbar^2/s")
     lines += [f"  coherence time (1/e): Ramsey {d['coherence_time_s'] * 1e3:.4g} ms, echo {d['echo_coherence_time_s'] * 1e3:.4g} ms",

@@ -212,8 +212,11 @@ def with_unit(mag: float, unit, digits: int | None = 12):
 
 
 def si_value(value) -> float:
-    """SI magnitude of a config value (NaN when it has none, e.g. a shape name)."""
+    """SI magnitude of a config value (NaN when it has none, e.g. a shape
+    name), without the last-bit noise of the unit conversion ("5 us" ->
+    5e-06, :func:`mdrotor.numfmt.clean`)."""
     from . import units
+    from .numfmt import clean
 
     if isinstance(value, bool):
         return float(value)
@@ -222,7 +225,7 @@ def si_value(value) -> float:
     if isinstance(value, str):
         try:
             q = units.registry().Quantity(value.strip().replace("µ", "u").replace("μ", "u"))
-            return float(q.to_base_units().magnitude) if hasattr(q, "to_base_units") else float(q)
+            return clean(float(q.to_base_units().magnitude) if hasattr(q, "to_base_units") else float(q))
         except Exception:
             return float("nan")
     return float("nan")
@@ -801,9 +804,12 @@ def check_executor_args(args) -> None:
 
 
 def output_path(given, spec_path, suffix=".h5") -> Path:
+    """The output file, refused before any work when its folder is missing
+    or cannot be written (:func:`mdrotor.store.check_writable`)."""
+    from .store import check_writable
+
     out = Path(given) if given else Path(Path(spec_path).stem + suffix)
-    if not out.parent.is_dir():
-        raise InputError("-o", f"the folder {str(out.parent)!r} does not exist", "command line")
+    check_writable(out)
     return out
 
 
@@ -822,26 +828,66 @@ def cli_sweep(args) -> int:
         summ["csv"] = str(args.csv)
         export_csv(out, args.csv)
     if args.json:
-        print(json.dumps(summ))
+        from .runner import jsonable
+
+        print(json.dumps(jsonable(summ)))
     else:
         print(sweep_text(out, summ))
     return 0
 
 
+# the sweep's text table: (heading, metric, its error or its interval's bounds)
+TEXT_COLUMNS = [("L mean (hbar)", "L_mean_hbar", ("L_mean_err_hbar",)),
+                ("L spread (hbar)", "L_std_hbar", ("L_std_err_hbar",)),
+                ("slipped", "slip_fraction", ("slip_fraction_lo", "slip_fraction_hi")),
+                ("lost", "loss_fraction", ("loss_fraction_lo", "loss_fraction_hi")),
+                ("diff. phonons", "differential_n_mean", ("differential_n_err",)),
+                ("used", "n_ok", ())]
+
+
+def _cell(t: dict, i: int, metric: str, errs: tuple) -> str:
+    from .numfmt import MISSING, interval, value_err
+
+    m = t["metrics"]
+    if metric not in m or not np.isfinite(m[metric][i]):
+        return MISSING
+    if metric == "n_ok":
+        tot = m.get("n_trajectories")
+        return f"{int(m[metric][i])}" + (f"/{int(tot[i])}" if tot is not None and np.isfinite(tot[i]) else "")
+    if len(errs) == 2:
+        return interval(m[metric][i], *(m[e][i] if e in m else np.nan for e in errs))
+    return value_err(m[metric][i], m[errs[0]][i] if errs[0] in m else np.nan)
+
+
 def sweep_text(path, summ: dict, max_rows: int = 40) -> str:
+    """The sweep's summary table: each statistic with its standard error,
+    each fraction with its Wilson 68 % interval [lo, hi], and how many
+    trajectories were used (finite and bound)."""
+    from .numfmt import plain
+
     t = read_table(path)
     lines = [f"sweep: {summ['points']} points ({summ['resumed']} already done, {summ['ran']} run now, "
-             f"{summ['failed']} failed) -> {path}  [{summ['wall_s']:.3g} s]"]
+             f"{summ['failed']} failed) -> {path}  [{plain(summ['wall_s'], 3)} s]",
+             "final stage: statistics +- standard error over the finite, bound trajectories ('used'); "
+             "fractions of all trajectories with Wilson 68 % intervals [lo, hi]"]
     keys = list(t["axes"])
-    cols = [c for c in ("L_mean_hbar", "L_std_hbar", "slip_fraction", "loss_fraction", "differential_n_mean") if c in t["metrics"]]
-    lines.append("  " + "  ".join(f"{h:>14s}" for h in ["point", *keys, *cols]))
+    cols = [c for c in TEXT_COLUMNS if c[1] in t["metrics"]]
+    rows = []
     for i in range(min(len(t["index"]), max_rows)):
         vals = [str(i), *[t["axes"][k]["text"][i] for k in keys]]
         if t["failed"][i]:
             vals.append("failed: " + t["error"][i])
+        elif not t["complete"][i]:
+            vals.append("not run yet")
         else:
-            vals += [f"{t['metrics'][c][i]:.6g}" for c in cols]
-        lines.append("  " + "  ".join(f"{v:>14s}" for v in vals))
+            vals += [_cell(t, i, m, e) for _h, m, e in cols]
+        rows.append(vals)
+    head = ["point", *keys, *[h for h, _m, _e in cols]]
+    widths = [max([len(head[j])] + [len(r[j]) for r in rows if j < len(r) and not r[-1].startswith(("failed", "not run"))])
+              for j in range(len(head))]
+    lines.append("  " + "  ".join(f"{h:>{w}s}" for h, w in zip(head, widths)))
+    for vals in rows:
+        lines.append("  " + "  ".join(f"{v:>{w}s}" for v, w in zip(vals, widths + [0])))
     if len(t["index"]) > max_rows:
         lines.append(f"  ... {len(t['index']) - max_rows} more rows (--csv FILE writes them all)")
     return "\n".join(lines)
