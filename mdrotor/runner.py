@@ -179,12 +179,13 @@ def resource_estimate(cfg, n_traj: int) -> dict:
     the state (positions and velocities, 6 N doubles); every observation kept
     (t = 0 and each stage end: L, L_com, f_rot, lag, slips, status and M
     phonon numbers, plus three flags); the temporary arrays of one
-    observation (about 40 N doubles, 60 N in the RF model, where the state is
-    also filtered over two RF periods); with coloured noise, one block of
-    noise samples (``engine.BLOCK_STEPS`` steps of the field and of each
-    multipole order, several copies while it is generated). The file holds
-    the observations at t = 0, at every stage end and again under /final.
-    Measured peaks (tracemalloc, README) stay below this estimate.
+    observation (about 60 N doubles, 90 N in the RF model, where the state is
+    also filtered over two RF periods, and 512 bytes of bookkeeping); with
+    coloured noise, one block of noise samples (``engine.BLOCK_STEPS`` steps
+    of the field and of each multipole order, plus a quarter for the draws).
+    The file holds the observations at t = 0, at every stage end and again
+    under /final. The peaks measured with tracemalloc (README, "Memory and
+    file size") stay below this estimate by 0 to 40 %.
     """
     from .engine import BLOCK_STEPS
 
@@ -192,14 +193,14 @@ def resource_estimate(cfg, n_traj: int) -> dict:
     m = 3 * n
     s = len(cfg.schedule.stages) if cfg.schedule is not None else 1
     per_obs = _F8 * (6 + m) + 3
-    temp = _F8 * (60 if cfg.trap.model == "rf" else 40) * n
+    temp = _F8 * (90 if cfg.trap.model == "rf" else 60) * n + 512
     noise = 0
     if cfg.noise:
         from .noise import model_from_config
 
         model = model_from_config(cfg)
         if not model.is_empty and model.has_colored:
-            noise = 3 * _F8 * BLOCK_STEPS * (3 + 2 * len(model.orders))
+            noise = int(1.25 * _F8 * BLOCK_STEPS * (3 + 2 * len(model.orders)))
     mem = _F8 * 6 * n + (s + 1) * per_obs + temp + noise
     disk = (s + 2) * _F8 * (6 + m)
     return {"memory_per_trajectory_bytes": mem, "file_per_trajectory_bytes": disk,
