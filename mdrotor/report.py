@@ -883,7 +883,11 @@ def phonons_figure(result, stage: str | None = None):
     kinds = list(obs.modes["kind"])
     labels = list(obs.modes["label"])
     freq = np.asarray(obs.modes["freq_hz"], float)
-    nm, ne = np.asarray(s["mode_n_mean"], float), np.asarray(s["mode_n_err"], float)
+    if "mode_n_mean" not in s:  # statistics leave out what cannot be computed (mdrotor.stats)
+        raise MissingData("/summary", f"no phonon statistics at this time: none of the {s.get('n_trajectories', '?')} "
+                                      "trajectories is finite and bound", _src(path))
+    nm = np.asarray(s["mode_n_mean"], float)
+    ne = np.asarray(s.get("mode_n_err", np.full(nm.shape, np.nan)), float)
     groups = [("com", "centre-of-mass modes", "com_n", "s", ps.INK, ps.INK),
               ("differential", "differential modes", "differential_n", "o", ps.INK, "white")]
     groups = [g for g in groups if g[0] in kinds]
@@ -1972,13 +1976,18 @@ def _report_run(src, out, fmt, dpi, doc, written, skipped, diffusion, k, prefix=
     a = res.attrs
     s = res.summary
     doc.h(2, "Key numbers" if not prefix else "Confirmation run: key numbers")
-    rows = [["final L (mean)", f"{_pm(s['L_mean_hbar'], s['L_mean_err_hbar'], 6)} ħ"],
-            ["final L spread", f"{_pm(s['L_std_hbar'], s['L_std_err_hbar'])} ħ"],
-            ["rotation f_rot", f"{_pm(s['f_rot_mean_hz'] / 1e3, s['f_rot_mean_err_hz'] / 1e3, 7)} kHz"],
+    def k(x, scale=1.0):  # a statistic that could not be computed is absent (mdrotor.stats)
+        v = s.get(x)
+        return None if v is None else v * scale
+
+    rows = [["final L (mean)", f"{_pm(k('L_mean_hbar'), k('L_mean_err_hbar'), 6)} ħ"],
+            ["final L spread", f"{_pm(k('L_std_hbar'), k('L_std_err_hbar'))} ħ"],
+            ["rotation f_rot", f"{_pm(k('f_rot_mean_hz', 1e-3), k('f_rot_mean_err_hz', 1e-3), 7)} kHz"],
             ["slipped / lost / reordered", " / ".join(_fraction_text(s, m) for m in
                                                       ("slip_fraction", "loss_fraction", "reorder_fraction"))],
-            ["differential phonons", _pm(s["differential_n_mean"], s["differential_n_err"])],
-            ["COM phonons", _pm(s["com_n_mean"], s["com_n_err"])],
+            ["differential phonons", _pm(k("differential_n_mean"), k("differential_n_err"))],
+            ["COM phonons", _pm(k("com_n_mean"), k("com_n_err"))],
+            ["trajectories used (finite, bound)", f"{s.get('n_ok', '?')} of {s.get('n_trajectories', '?')}"],
             ["modes measured in the", _frame_text(_frame_of(res, res.final))]]
     if rot:
         rows += [["allowed L", f"{rot['allowed_L_residue']} mod {rot['allowed_L_mod']} ({rot['statistics']})"],
