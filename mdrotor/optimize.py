@@ -666,6 +666,13 @@ def cli_optimize(args) -> int:
     check_executor_args(args)
     out = output_path(args.output, args.optimize)
     spec = load_optimize(args.optimize, args.overrides)
+    from .runner import check_memory
+
+    start = [p.value(p.start_u if p.start_u is not None else 0.5) for p in spec.params]
+    check_memory(spec.config(start, "start"), spec.trajectories or spec.config(start, "start").run.trajectories,
+                 "trajectories", spec.source)
+    check_memory(spec.config(start, "confirm", trajectories=spec.confirm_trajectories), spec.confirm_trajectories,
+                 "confirm.trajectories", spec.source)
     if args.best and not Path(args.best).parent.is_dir():
         raise InputError("--best", f"the folder {str(Path(args.best).parent)!r} does not exist", "command line")
     show_bar = not args.quiet and sys.stderr.isatty()

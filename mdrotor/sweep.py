@@ -818,6 +818,8 @@ def cli_sweep(args) -> int:
     check_executor_args(args)
     out = output_path(args.output, args.sweep)
     spec = load_sweep(args.sweep, args.overrides, args.trajectories)
+    _check_points_memory(spec.configs, "--trajectories" if args.trajectories is not None else "trajectories",
+                         "command line" if args.trajectories is not None else spec.source)
     show_bar = not args.quiet and sys.stderr.isatty()
     try:
         summ = run_sweep(spec, out, workers=args.workers, scheduler=args.scheduler, restart=args.restart, progress=show_bar)
@@ -857,6 +859,20 @@ def _cell(t: dict, i: int, metric: str, errs: tuple) -> str:
     if len(errs) == 2:
         return interval(m[metric][i], *(m[e][i] if e in m else np.nan for e in errs))
     return value_err(m[metric][i], m[errs[0]][i] if errs[0] in m else np.nan)
+
+
+def _check_points_memory(configs, key: str, source: str) -> None:
+    """Refuse, before any work, points whose runs would not fit in memory
+    (:func:`mdrotor.runner.check_memory`; one check per distinct size)."""
+    from .runner import check_memory
+
+    seen = set()
+    for cfg in configs:
+        size = (cfg.run.trajectories, len(cfg.masses_kg), len(cfg.schedule.stages) if cfg.schedule else 0, cfg.trap.model,
+                bool(cfg.noise))
+        if size not in seen:
+            seen.add(size)
+            check_memory(cfg, cfg.run.trajectories, key, source)
 
 
 def sweep_text(path, summ: dict, max_rows: int = 40) -> str:

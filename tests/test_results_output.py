@@ -306,3 +306,20 @@ def test_rotor_states_the_spin_statistics_assumption(capsys):
     assert "assumes identical ions, all in one internal" in capsys.readouterr().out
     assert main(["rotor", demo, "--json"]) == 0
     assert "one internal" in json.loads(capsys.readouterr().out)["statistics_assumption"]
+
+
+def test_sweep_and_optimisation_sizes_beyond_memory_are_refused_up_front(tmp_path, capsys):
+    (tmp_path / "base.toml").write_text(FORCED_OSCILLATOR_TOML)
+    sweep = tmp_path / "s.toml"
+    sweep.write_text('base = "base.toml"\n[[axis]]\nkey = "stage.spin-up.duration"\nvalues = ["3 us", "4 us"]\n')
+    assert main(["sweep", str(sweep), "-o", str(tmp_path / "s.h5"), "--trajectories", "1000000000000", "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "--trajectories" in err and "GB" in err
+    assert not (tmp_path / "s.h5").exists()
+    opt = tmp_path / "o.toml"
+    opt.write_text('base = "base.toml"\ntrajectories = 2\n[[parameter]]\nkey = "stage.spin-up.duration"\n'
+                   'bounds = ["3 us", "6 us"]\n[[objective]]\nmetric = "L_std_hbar"\n[confirm]\ntrajectories = 1000000000000\n')
+    assert main(["optimize", str(opt), "-o", str(tmp_path / "o.h5"), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "confirm.trajectories" in err and "GB" in err
+    assert not (tmp_path / "o.h5").exists()
