@@ -2,7 +2,9 @@
 
 This module only parses arguments and dispatches; the work is in the
 library modules, imported inside each command so that ``--help`` stays fast.
-Bad input of any kind becomes one line on stderr and exit status 2.
+Bad input of any kind becomes one line on stderr and exit status 2; a run
+left with no finite, bound trajectory exits with status 3
+(``runner.EXIT_NO_STATISTICS``), its result file written and marked.
 """
 
 from __future__ import annotations
