@@ -88,7 +88,7 @@ def value_err(x, err, sig: int = 2, unit: str = "") -> str:
         return plain(x) + u + ("" if _finite(err) else " (no error)")
     err = float(err)
     big = max(abs(x), err)
-    if big >= 1e7 or big < 1e-4:
+    if big >= 1e6 or big < 1e-4:
         e = math.floor(math.log10(big))
         xs, es = x / 10.0**e, err / 10.0**e
         d = max(_decimals(es, sig), 0)
