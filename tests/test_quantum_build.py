@@ -1,0 +1,268 @@
+"""The quantum rotor of a config: ladder, pinning, noise, initial state, the
+comparison with the Monte-Carlo ensemble, and the ``mdrotor quantum`` command."""
+
+import json
+import math
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from scipy.constants import hbar, k as kB
+
+import mdrotor
+from mdrotor import noise, rotor
+from mdrotor import quantum_build as qb
+from mdrotor import quantum_rotor as qr
+from mdrotor.errors import InputError, PhysicsError
+from mdrotor.species import get_species
+
+from conftest import CONFIGS
+
+# Two 40Ca+ ions pinned weakly (libration ~20 kHz, I w_lib / hbar ~ 1000) so
+# that a hot libration (nbar = 20) needs only ~200 rotor levels and a few
+# hundred angular momenta while its anharmonicity stays ~1 %: the classical
+# limit, checked against the ensemble.
+WEAK_PAIR = """
+[species]
+ion = "40Ca+"
+[crystal]
+ions = 2
+[trap]
+f_radial = "1.2 MHz"
+f_axial = "2.9 MHz"
+[pinning]
+order = 2
+strength = "1700 V/m^2"
+[[stage]]
+name = "release"
+duration = "0.25 ms"
+pinning = { to = 0.0, shape = "cosine" }
+[[stage]]
+name = "free"
+duration = "0.05 ms"
+[initial]
+temperature = "0 K"
+occupations = { libration = 20 }
+[run]
+trajectories = 400
+seed = 5
+"""
+
+
+def pair_moment_2():
+    """|M_2| = 2 e r^2 of two ions at rest, r^3 = e^2 / (16 pi eps0 m w_r^2)
+    (force balance of the pair, H. Goldstein, Classical Mechanics, ch. 3)."""
+    from scipy.constants import e, epsilon_0
+
+    m = get_species("40Ca+").mass_kg
+    r = (e**2 / (16 * math.pi * epsilon_0 * m * (2 * math.pi * 1.2e6) ** 2)) ** (1 / 3)
+    return 2 * e * r**2, 2 * m * r**2
+
+
+def weak_pair(tmp_path, extra=""):
+    p = tmp_path / "weak_pair.toml"
+    p.write_text(WEAK_PAIR + extra)
+    return p
+
+
+# --------------------------------------------------------------------------
+# ladder from the crystal's symmetry
+# --------------------------------------------------------------------------
+@pytest.mark.parametrize("name, N, stat", [("demo", 2, "fermion"), ("triangle_order3", 3, "boson"),
+                                           ("square_order4", 4, "fermion"), ("two_ion_quadrupole", 2, "fermion")])
+def test_ladder_of_ring_crystals_is_rotor_rule(name, N, stat):
+    # A ring of N identical ions: rotor.allowed_L_ladder(N, statistics), the
+    # sign of an N-cycle being (-1)^(N-1) (elementary group theory).
+    cfg = mdrotor.load_config(CONFIGS / f"{name}.toml")
+    s = qb.build(cfg)
+    assert (s.symmetry_order, s.cycles, s.statistics) == (N, 1, stat)
+    assert (s.model.ladder.spacing, s.model.ladder.offset) == rotor.allowed_L_ladder(N, stat)
+
+
+def test_ladder_counts_the_cycles_of_the_permutation():
+    # A turn by 2 pi / N permutes the ions in cycles of N; for fermions each
+    # cycle has the sign (-1)^(N-1), so an even number of fermion cycles is
+    # symmetric (elementary group theory, common practice, no source).
+    ca = get_species("40Ca+")
+    d = 3e-6
+    string3 = np.array([[-d, 0, 0], [0, 0, 0], [d, 0, 0]])          # one transposition, a fixed point
+    lad, N, c, st = qb.allowed_ladder(string3, [ca] * 3)
+    assert (N, c, st, lad.spacing, lad.offset) == (2, 1, "fermion", 2, 1)
+    pairs = np.array([[-2 * d, 0, 0], [-d, 0, 0], [d, 0, 0], [2 * d, 0, 0]])   # two transpositions
+    lad, N, c, st = qb.allowed_ladder(pairs, [ca] * 4)
+    assert (N, c, st, lad.spacing, lad.offset) == (2, 2, "boson", 2, 0)
+    ang = np.pi / 2 * np.arange(4)
+    centred_square = np.r_[[[0, 0, 0]], np.c_[d * np.cos(ang), d * np.sin(ang), np.zeros(4)]]
+    lad, N, c, st = qb.allowed_ladder(centred_square, [ca] * 5)
+    assert (N, c, lad.spacing, lad.offset) == (4, 1, 4, 2)
+    mixed = [ca, get_species("44Ca+")]
+    lad, N, c, st = qb.allowed_ladder(np.array([[-d, 0, 0], [d, 0, 0]]), mixed)
+    assert (N, st, lad.spacing, lad.offset) == (1, "distinguishable", 1, 0)
+
+
+def test_unlike_ions_populate_every_L_identical_ones_only_the_ladder(tmp_path):
+    # Two unlike ions (40Ca+ and 44Ca+): no exchange symmetry, both parities
+    # of L populated by a thermal release; identical 40Ca+: only odd L
+    # (rotor.allowed_L_ladder(2, "fermion")), every forbidden L at zero.
+    p = weak_pair(tmp_path)
+    cfg = mdrotor.load_config(p, ["initial.occupations.libration=2", "crystal.ions=['40Ca+','44Ca+']"])
+    s = qb.build(cfg)
+    d = qr.evolve(s.model, s.initial).final
+    assert np.sum(d.P[d.L % 2 == 0]) > 0.2 and np.sum(d.P[d.L % 2 == 1]) > 0.2
+    cfg = mdrotor.load_config(p, ["initial.occupations.libration=2"])
+    s = qb.build(cfg)
+    d = qr.evolve(s.model, s.initial).final
+    assert np.all(d.L % 2 == 1)
+    assert np.sum(d.P) == pytest.approx(1.0, abs=1e-12)
+
+
+# --------------------------------------------------------------------------
+# pinning, initial state, noise
+# --------------------------------------------------------------------------
+def test_pinning_amplitude_and_initial_temperature(tmp_path):
+    # Rigid pinning energy of a quadrupole on two ions: Re[c M_2 e^{2 i u}],
+    # M_2 = sum Q (z - z_c)^2 (mdrotor.multipole convention), so the rotor well
+    # has w_lib^2 = 4 |c M_2| / I; the crystal's libration normal mode agrees to
+    # 1 % (its deformation is left out). The thermal state: 1 / (k_B T) =
+    # ln(1 + 1/nbar) / (hbar w_lib) (Bose-Einstein occupation, common practice,
+    # no source), Boltzmann weights over the rotor's levels; the lowest gap is
+    # hbar w_lib within 1 % (anharmonicity ~ k^2 hbar / (8 I w) = 0.05 % with
+    # I w / hbar ~ 1000), so the ground and first levels have the harmonic
+    # ratio nbar / (nbar + 1).
+    cfg = mdrotor.load_config(weak_pair(tmp_path))
+    s = qb.build(cfg)
+    M2, I0 = pair_moment_2()
+    assert s.I0_kg_m2 == pytest.approx(I0, rel=1e-9)       # equilibrium found to ~1e-12
+    amp = abs(complex(s.model.pinning[0].amplitude(0.0)))
+    assert amp == pytest.approx(1700.0 * M2, rel=1e-9)
+    w = math.sqrt(4 * amp / s.I0_kg_m2)
+    assert s.f_lib_model_hz == pytest.approx(w / (2 * math.pi), rel=1e-9)
+    assert s.f_lib_model_hz == pytest.approx(s.f_lib_hz, rel=0.01)
+    assert s.nbar_libration == 20
+    assert s.temperature_k == pytest.approx(hbar * 2 * math.pi * s.f_lib_hz / (kB * math.log(1 + 1 / 20)), rel=1e-12)
+    lv, p, dropped = qr._thermal_columns(s.model, s.initial)
+    beta = 1 / (kB * s.temperature_k)
+    np.testing.assert_allclose(p[1:] / p[:-1], np.exp(-beta * np.diff(lv.energies_j)), rtol=1e-9)
+    assert p[1] / p[0] == pytest.approx(20 / 21, rel=0.01)
+    assert dropped <= s.initial.cut
+
+
+def test_noise_becomes_kicks_at_the_analytic_diffusion(tmp_path):
+    # Order-2 white multipole noise S: D = n^2 |M_n|^2 S / 4 (mdrotor.noise,
+    # diffusion_constant), kicks of +-2 quanta at gamma = D / 4 per direction
+    # (mdrotor.coherence's convention). The uniform field exerts no torque on
+    # identical ions (moment about the centre of mass zero): no kick channel.
+    extra = """
+[[noise.multipole]]
+order = 2
+psd = [ { kind = "white", level = "1e-4 V^2/m^4/Hz" } ]
+[[noise.field]]
+psd = [ { kind = "white", level = "1e-12 V^2/m^2/Hz" } ]
+"""
+    cfg = mdrotor.load_config(weak_pair(tmp_path, extra))
+    s = qb.build(cfg)
+    assert [k.quanta for k in s.model.kicks] == [2]
+    D = noise.diffusion_constant(2, pair_moment_2()[0], 1e-4).D_hbar2_per_s
+    np.testing.assert_allclose(s.model.kicks[0].rate_per_s, D / 4, rtol=1e-9)
+
+
+def test_refusals_name_the_key(tmp_path):
+    with pytest.raises(InputError, match="layout"):
+        qb.build(mdrotor.load_config(CONFIGS / "layout_string2.toml"))
+    with pytest.raises(PhysicsError, match="crystal.ions"):
+        qb.build(mdrotor.load_config(weak_pair(tmp_path), ["crystal.ions=1"]))
+    with pytest.raises(PhysicsError, match="moment"):
+        qb.build(mdrotor.load_config(CONFIGS / "triangle_order3.toml", ["pinning.order=2",
+                                                                        "pinning.strength='1e5 V/m^2'"]))
+    with pytest.raises(PhysicsError, match="records"):
+        s = qb.build(mdrotor.load_config(weak_pair(tmp_path)))
+        qr.evolve(s.model, s.initial, max_columns=50)
+
+
+# --------------------------------------------------------------------------
+# the classical limit and the comparison
+# --------------------------------------------------------------------------
+def test_classical_limit_agrees_with_the_ensemble(tmp_path):
+    # A hot libration (nbar = 20) released over five libration periods: the
+    # Wigner-sampled classical ensemble follows the quantum dynamics when the
+    # actions involved are large against hbar (truncated Wigner approximation,
+    # E.J. Heller, J. Chem. Phys. 65, 1289 (1976), from memory). Mean |L| and
+    # the spread agree within 3 standard errors of the 400-trajectory ensemble.
+    from mdrotor.quantum_command import quantum_report
+
+    d = quantum_report(weak_pair(tmp_path), progress=False)
+    fin = d["stages"][-1]
+    e = fin["ensemble"]
+    L = np.asarray(mdrotor.run(mdrotor.load_config(weak_pair(tmp_path))).final.arrays["L_com_hbar"])
+    assert e["n"] == L.size == 400
+    mean_abs, mean_abs_err = np.mean(np.abs(L)), np.std(np.abs(L), ddof=1) / math.sqrt(L.size)
+    assert abs(fin["L_mean_abs_hbar"] - mean_abs) < 3 * mean_abs_err
+    assert abs(e["std_diff_hbar"]) < 3 * e["std_diff_err_hbar"]
+    assert d["verdict"] != "fails"
+
+
+def test_compare_verdicts_on_drawn_samples():
+    # The comparison's own statistics: samples drawn from P(L) itself hold;
+    # samples twice as wide fail (seeded draws).
+    L = np.arange(-201, 202, 2)
+    P = np.exp(-0.5 * (L / 30.0) ** 2)
+    P /= P.sum()
+    dist = qr.Distribution("x", 0.0, L, P, float(P @ L), float(np.sqrt(P @ L**2 - (P @ L) ** 2)))
+    rng = np.random.default_rng(2)
+    same = rng.choice(L, size=4000, p=P) + rng.uniform(-0.9, 0.9, 4000)
+    from mdrotor.quantum_compare import compare
+
+    assert compare(dist, same, qr.Ladder(2, 1))["verdict"] == "holds"
+    wide = rng.normal(0.0, 60.0, 4000)
+    assert compare(dist, wide, qr.Ladder(2, 1))["verdict"] == "fails"
+
+
+# --------------------------------------------------------------------------
+# the command
+# --------------------------------------------------------------------------
+def _cli(*args):
+    return subprocess.run([sys.executable, "-m", "mdrotor", "quantum", *map(str, args)], capture_output=True, text=True)
+
+
+def test_command_json_and_text(tmp_path):
+    p = weak_pair(tmp_path)
+    r = _cli(p, "--no-ensemble", "--json", "--set", "initial.occupations.libration=1")
+    assert r.returncode == 0, r.stderr
+    d = json.loads(r.stdout)
+    assert d["allowed_L_spacing"] == 2 and d["allowed_L_offset"] == 1
+    assert [s["name"] for s in d["stages"]] == ["initial", "release", "free"]
+    assert d["lines"]["dL"] == 2 and "verdict" not in d
+    r = _cli(p, "--no-ensemble", "--set", "initial.occupations.libration=1")
+    assert r.returncode == 0 and "allowed L = 1 mod 2" in r.stdout and "lines L -> L + 2" in r.stdout
+
+
+def test_command_reads_a_result_file(tmp_path):
+    cfg = mdrotor.load_config(weak_pair(tmp_path), ["initial.occupations.libration=1"])
+    res = mdrotor.run(cfg, trajectories=64)
+    h5 = tmp_path / "weak.h5"
+    res.save(h5)
+    r = _cli(h5, "--json")
+    assert r.returncode == 0, r.stderr
+    d = json.loads(r.stdout)
+    assert d["source_kind"] == "result" and d["stages"][-1]["ensemble"]["n"] == 64
+    assert d["verdict"] in ("holds", "fails", "undecided")
+
+
+@pytest.mark.parametrize("args, key", [(["--tol", "0.5"], "--tol"), (["--tol", "x"], "--tol"),
+                                       (["--cut", "0"], "--cut"), (["--lines", "-1"], "--lines"),
+                                       (["--set", "initial.temperature='-1 K'"], "initial.temperature")])
+def test_command_bad_input_exits_2_with_one_line(tmp_path, args, key):
+    r = _cli(weak_pair(tmp_path), "--no-ensemble", *args)
+    assert r.returncode == 2
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1 and key in lines[0] and "Traceback" not in r.stderr
+
+
+def test_command_refuses_layout_pinning_and_overrides_on_results(tmp_path):
+    r = _cli(CONFIGS / "layout_string2.toml", "--no-ensemble")
+    assert r.returncode == 2 and "layout" in r.stderr and len(r.stderr.strip().splitlines()) == 1
+    h5 = tmp_path / "x.h5"
+    mdrotor.run(mdrotor.load_config(weak_pair(tmp_path)), trajectories=4).save(h5)
+    r = _cli(h5, "--set", "run.seed=3")
+    assert r.returncode == 2 and "--set" in r.stderr
