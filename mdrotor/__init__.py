@@ -7,6 +7,7 @@ Notebook use::
     cr = mdrotor.crystal(cfg, f_rot_hz=150e3)      # equilibrium + modes
     res = mdrotor.run(cfg)                          # Monte-Carlo run
     res.save("demo.h5"); res2 = mdrotor.load("demo.h5")
+    q = mdrotor.quantum(cfg)                        # quantum rotor beside the ensemble
 
 Submodules are imported on first use so that the command line starts fast.
 """
@@ -46,3 +47,12 @@ def load(path):
     from .store import load_result
 
     return load_result(path)
+
+
+def quantum(source, **kwargs):
+    """The crystal's rotation as a quantum rotor through the schedule, beside
+    the Monte-Carlo ensemble (a config, a config path or a result file); a
+    JSON-ready dict, see :func:`mdrotor.quantum_command.quantum_report`."""
+    from .quantum_command import quantum_report
+
+    return quantum_report(source, **kwargs)

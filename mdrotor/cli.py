@@ -64,12 +64,14 @@ def build_parser() -> argparse.ArgumentParser:
     from .sweep import add_sweep_parser
 
     from .electrodes.command import add_electrodes_parser
+    from .quantum_command import add_quantum_parser
     from .report import add_report_parser
 
     add_sweep_parser(sub)  # each adds its own --set, --json, --quiet
     add_optimize_parser(sub)
     add_report_parser(sub)
     add_electrodes_parser(sub)
+    add_quantum_parser(sub)
     return ap
 
 
@@ -103,6 +105,10 @@ def main(argv=None) -> int:
             from .report import cli_report
 
             return cli_report(args)
+        if args.command == "quantum":
+            from .quantum_command import cli_quantum
+
+            return cli_quantum(args)
         if args.command == "compare-trap":
             from .compare import cli_compare
 
