@@ -1044,9 +1044,9 @@ def evolve(model: RotorModel, initial, *, tol: float = 1e-3, records: int | None
     K = vecs.shape[0]
     if K * R > max_columns:
         raise PhysicsError("initial", f"the thermal state needs {K} rotor levels x {R} noise records = {K * R} "
-                           f"state columns, more than {max_columns}: the libration is too hot for the quantum "
-                           "model to be quick (the ensemble is the semiclassical answer there); lower the "
-                           "temperature, the records, or allow more columns")
+                           f"state columns, more than {max_columns}: too hot for the quantum model to be quick "
+                           "(the ensemble is the semiclassical answer there); lower the temperature or the "
+                           "records, or allow more columns")
     keys = [(r, k) for r in range(R) for k in range(K)]
     c0 = np.tile(vecs, (R, 1))
     weights = np.tile(p, R) / R
