@@ -10,8 +10,12 @@ thermal state from a :class:`mdrotor.config.Config`:
   (the rotational energy, stretched with ``L`` unless ``stretch=False``)
   and its pinning moments;
 * the pinning as Fourier components of the crystal's pinning energy versus
-  its angle (:func:`_rigid_pinning_components`, the one place here that
-  computes it), with the schedule's multipliers;
+  its angle: the relaxed held curve of :mod:`mdrotor.pinning` (every other
+  coordinate relaxed at each angle, so a crystal held only through its
+  deformation is held here too), per pinning term at full strength and at
+  each rotation rate, scaled by the schedule's multiplier to the power
+  that the curve itself shows between full and half strength (1 for a
+  first-order moment, 3 for a triangle under a quadrupole);
 * the exchange-allowed ladder: the crystal's rotational symmetry (the
   largest ``N`` such that a turn by ``2 pi / N`` maps every ion onto an ion
   of the same species) and the permutation that turn makes: ``c`` cycles of
@@ -31,10 +35,11 @@ thermal state from a :class:`mdrotor.config.Config`:
   a temperature is given.
 
 Not in the model (said in ``notes``): the pinning's deformation of the
-crystal (the rigid moments of the unpinned crystal are used), static
-anisotropy and stray field, deterministic noise tones, and motion other
-than the rotation (every other mode is taken as a spectator in a state
-symmetric under the exchange, as the ladder requires).
+moment of inertia (the unpinned crystal's is used), cross terms between
+different pinning terms, static anisotropy and stray field, deterministic
+noise tones, and motion other than the rotation (every other mode is taken
+as a spectator in a state symmetric under the exchange, as the ladder
+requires). A crystal whose configuration the pinning changes is refused.
 """
 
 from __future__ import annotations
@@ -46,6 +51,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy import constants as sc
 
+from . import frame, pinning
 from .errors import InputError, PhysicsError
 from .quantum_rotor import (KickChannel, Ladder, PinningComponent, RotationalEnergy, RotorModel,
                             ThermalState)
@@ -53,10 +59,12 @@ from .quantum_rotor import (KickChannel, Ladder, PinningComponent, RotationalEne
 HBAR = sc.hbar
 KB = sc.k
 TWO_PI = 2.0 * np.pi
-MOMENT_REL = 1e-6        # a moment below this fraction of sum |Q| |z - z_c|^n counts as zero (as the engine)
 SYMMETRY_REL = 1e-6      # positions equal within this fraction of the crystal's radius
 STRETCH_NODES = 10
 NOISE_NODES = 33         # rate samples per stage
+MAX_HARMONIC = 24        # highest order of the held curve's energy kept
+HARMONIC_REL = 1e-4      # harmonics below this fraction of the largest are the curve's noise
+OFF_LADDER_REL = 1e-2    # a harmonic off the allowed ladder above this fraction is an inconsistency
 
 
 @dataclass(frozen=True)
@@ -84,6 +92,8 @@ class QuantumSetup:
     temperature_k : float
         ``1 / (k_B beta)`` of the initial state (0: ground state).
     notes : tuple of str
+    holding : str or None
+        :meth:`mdrotor.pinning.Holding.describe` at the strongest pinning.
     """
 
     model: RotorModel
@@ -97,6 +107,7 @@ class QuantumSetup:
     nbar_libration: float | None
     temperature_k: float
     notes: tuple
+    holding: str | None = None
 
 
 # --------------------------------------------------------------------------
@@ -115,12 +126,6 @@ def _bare_potential(cfg, f_hz: float):
     return pot
 
 
-def _centred(r: np.ndarray, m: np.ndarray):
-    """In-plane complex positions about the centre of mass, and z."""
-    z = r[:, 0] + 1j * r[:, 1]
-    return z - np.sum(m * z) / np.sum(m), r[:, 2]
-
-
 def _crystals(cfg, f_nodes_hz):
     """Equilibria without pinning at each rotation rate, turned to the first one's orientation."""
     from .statics import find_equilibrium
@@ -136,19 +141,10 @@ def _crystals(cfg, f_nodes_hz):
             raise e.with_source(cfg.source)
         r = eq.positions_m
         if out:
-            z0, _ = _centred(out[0], m)
-            z, _ = _centred(r, m)
-            alpha = float(np.angle(np.sum(m * np.conj(z0) * z)))
-            c, s = math.cos(-alpha), math.sin(-alpha)
-            r = r @ np.array([[c, s, 0.0], [-s, c, 0.0], [0.0, 0.0, 1.0]])
+            r = frame.rotate_positions(r, -frame.alignment_angle_of(out[0], r, m))
         out.append(r)
         prev = r
     return out
-
-
-def _inertia(r: np.ndarray, m: np.ndarray) -> float:
-    z, _ = _centred(r, m)
-    return float(np.sum(m * np.abs(z) ** 2))
 
 
 # --------------------------------------------------------------------------
@@ -166,12 +162,12 @@ def crystal_symmetry(positions_m, species) -> tuple[int, int, list]:
     r = np.asarray(positions_m, dtype=float)
     m = np.array([s.mass_kg for s in species])
     names = [s.name for s in species]
-    z, zz = _centred(r, m)
+    z, zz = frame.complex_xy(r, m), r[:, 2]
     scale = float(np.max(np.abs(z))) if len(z) else 0.0
     if scale == 0.0:
         return 1, 0, []
     tol = SYMMETRY_REL * scale
-    off = np.nonzero(np.abs(z) > tol)[0]
+    off = np.nonzero(np.abs(z) > pinning.AXIS_REL * scale)[0]
     for N in range(len(off), 1, -1):
         if len(off) % N:
             continue
@@ -220,50 +216,53 @@ def allowed_ladder(positions_m, species) -> tuple[Ladder, int, int, str]:
 
 
 # --------------------------------------------------------------------------
-# PINNING ENERGY VERSUS THE CRYSTAL'S ANGLE (rigid moments).
-# A shared pinning module (moments about the centre of mass, the relaxed
-# held curve) is to own this fact; until it exists, this is the one place
-# where the quantum model computes it.
+# pinning: harmonics of the relaxed held curve (mdrotor.pinning)
 # --------------------------------------------------------------------------
-def _moment_ratio(z: np.ndarray, charges: np.ndarray, n: int):
-    """``M_n = sum Q (z - z_c)^n`` and ``|M_n| / sum |Q| |z - z_c|^n``."""
-    mn = complex(np.sum(charges * z**n))
-    ref = float(np.sum(np.abs(charges) * np.abs(z) ** n))
-    return mn, (abs(mn) / ref if ref > 0 else 0.0)
+def _curve_harmonics(cfg, f_hz: float, scales, reference: np.ndarray) -> dict:
+    """{k: A_k} (J) of the held curve at ``f_hz`` and multipliers ``scales``,
+    referred to the crystal angle of ``reference`` (the unpinned crystal):
+    the curve's angle is measured from the pinned equilibrium, turned by
+    ``alpha`` from the reference, so ``A_k = V_k e^{-i k alpha}``."""
+    from .statics import find_equilibrium, model_potential
+
+    pot = model_potential(cfg, f_hz, pin_scale=list(scales))
+    try:
+        r0 = find_equilibrium(pot, start=reference).positions_m
+    except PhysicsError as e:
+        raise e.with_source(cfg.source)
+    alpha = frame.alignment_angle_of(reference, r0, cfg.masses_kg)
+    h = pinning.held_curve(pot, r0, n_phi=max(pinning.N_PHI, 4 * MAX_HARMONIC + 8)).harmonics(MAX_HARMONIC)
+    return {k: v * np.exp(-1j * k * alpha) for k, v in h.items()}
 
 
-def _rigid_pinning_components(cfg, crystals, f_nodes_hz, ladder: Ladder):
-    """Fourier components of the rigid crystal's pinning energy, per term.
-
-    A term ``Phi = Re[c e^{-i n (theta_0 + theta)} (x + i y)^n]`` on the
-    crystal turned by ``phi`` has energy ``Re[c M_n e^{-i n theta_0}
-    e^{i n (phi - theta)}]`` (:mod:`mdrotor.multipole`), ``M_n`` the moment
-    about the centre of mass of the crystal at ``phi = 0``: one component of
-    order ``n``, amplitude ``c M_n e^{-i n theta_0}``, first order in the
-    multiplier. Terms whose moment is below ``MOMENT_REL`` at every node
-    are left out (a regular N-gon feels only orders that are multiples of
-    N), with a note.
-    """
-    m, q = cfg.masses_kg, cfg.charges_c
+def _pinning_components(cfg, crystals, f_nodes_hz, ladder: Ladder):
+    """Fourier components of each pinning term's held curve (module docstring)."""
     comps, notes = [], []
+    n_terms = len(cfg.pinning)
     for j, term in enumerate(cfg.pinning):
-        n = int(term.order)
-        amps, rel = [], []
-        for r in crystals:
-            z, _ = _centred(r, m)
-            mn, ratio = _moment_ratio(z, q, n)
-            amps.append(term.strength * mn * np.exp(-1j * n * term.angle_rad))
-            rel.append(ratio)
-        if max(rel) <= MOMENT_REL:
-            notes.append(f"pinning term {term.name!r} (order {n}) has no moment on the rigid crystal "
-                         f"(|M_{n}| / sum |Q| r^{n} = {max(rel):.1e}); left out")
+        unit = [1.0 if i == j else 0.0 for i in range(n_terms)]
+        half = [0.5 if i == j else 0.0 for i in range(n_terms)]
+        table = [_curve_harmonics(cfg, float(f), unit, r) for f, r in zip(f_nodes_hz, crystals)]
+        big = max((abs(v) for h in table for v in h.values()), default=0.0)
+        if big == 0.0:
+            notes.append(f"pinning term {term.name!r} does not change the crystal's energy with its angle; left out")
             continue
-        if n % ladder.spacing:
-            raise PhysicsError(f"pinning.{term.name}", f"order {n} has a moment on the crystal but is not a "
-                               f"multiple of its symmetry's ladder spacing {ladder.spacing}", cfg.source)
-        comps.append(PinningComponent(n, tuple(complex(a) for a in amps),
-                                      tuple(float(f) for f in f_nodes_hz) if len(f_nodes_hz) > 1 else (),
-                                      term=j, power=1))
+        h_half = _curve_harmonics(cfg, float(f_nodes_hz[0]), half, crystals[0])
+        for k in range(1, MAX_HARMONIC + 1):
+            amps = np.array([h[k] for h in table])
+            if np.max(np.abs(amps)) <= HARMONIC_REL * big:
+                continue
+            if k % ladder.spacing:
+                if np.max(np.abs(amps)) > OFF_LADDER_REL * big:
+                    raise PhysicsError(f"pinning.{term.name}", f"the held curve has an order-{k} harmonic, off the "
+                                       f"crystal's allowed ladder (spacing {ladder.spacing})", cfg.source)
+                continue
+            # the power of the multiplier: the curve at half strength
+            ratio = abs(table[0][k]) / max(abs(h_half[k]), 1e-300)
+            power = int(np.clip(round(math.log2(ratio)), 1, 8)) if ratio > 1.0 else 1
+            comps.append(PinningComponent(k, tuple(complex(a) for a in amps),
+                                          tuple(float(f) for f in f_nodes_hz) if len(f_nodes_hz) > 1 else (),
+                                          term=j, power=power))
     return tuple(comps), notes
 
 
@@ -297,12 +296,11 @@ def _kick_channels(cfg, f_nodes_hz, crystals, ladder: Ladder):
             else:
                 pos = stacked[0]
             d = model.rotor_diffusion(pos, m, q, f, st.name)
-            z, _ = _centred(pos, m)
             for order, dc in d.items():
                 if order == "total":
                     continue
-                mom_ratio = _moment_ratio(z, q, int(order))[1]
-                rate = dc.D_hbar2_per_s / int(order) ** 2 if mom_ratio > MOMENT_REL else 0.0
+                present = pinning.moment_rel(pos, m, q, int(order)) > pinning.MOMENT_REL
+                rate = dc.D_hbar2_per_s / int(order) ** 2 if present else 0.0
                 rates.setdefault(int(order), []).append(rate)
     t_nodes = tuple(float(x) for x in np.r_[np.concatenate(t_all), sched.duration_s])
     chans = []
@@ -321,14 +319,15 @@ def _kick_channels(cfg, f_nodes_hz, crystals, ladder: Ladder):
 SHAPE_REL = 0.05        # the pinning may move ions by at most this fraction of the crystal's radius
 
 
-def _check_shape(cfg, bare: np.ndarray, grid: np.ndarray) -> None:
+def _check_shape(cfg, bare: np.ndarray, grid: np.ndarray):
     """Refuse when the pinning changes the crystal's configuration.
 
     The crystal at the schedule's strongest pinning is compared with the
     unpinned one: the ions' distances from the centre of mass, sorted, may
     differ by at most ``SHAPE_REL`` of the radius (a deformation), else the
     rigid rotor does not describe the crystal (e.g. three ions that are a
-    string while pinned and a triangle when free).
+    string while pinned and a triangle when free). Returns that time and
+    the pinned crystal.
     """
     from .statics import find_equilibrium, model_potential
 
@@ -345,13 +344,14 @@ def _check_shape(cfg, bare: np.ndarray, grid: np.ndarray) -> None:
     except PhysicsError as e:
         raise e.with_source(cfg.source)
     m = cfg.masses_kg
-    rb = np.sort(np.abs(_centred(bare, m)[0]))
-    rp = np.sort(np.abs(_centred(pinned, m)[0]))
+    rb = np.sort(np.abs(frame.complex_xy(bare, m)))
+    rp = np.sort(np.abs(frame.complex_xy(pinned, m)))
     dev = float(np.max(np.abs(rb - rp)) / max(rb.max(), 1e-300))
     if dev > SHAPE_REL:
         raise PhysicsError("pinning", f"the pinning changes the crystal's configuration (ions move by {dev:.0%} of "
                            f"its radius at t = {t_star * 1e3:.4g} ms against the unpinned crystal): the rigid "
                            "quantum rotor does not describe it", cfg.source)
+    return t_star, pinned
 
 
 # --------------------------------------------------------------------------
@@ -425,7 +425,7 @@ def build(cfg, *, stretch: bool = True, cut: float = 1e-4) -> QuantumSetup:
     else:
         f_nodes = np.zeros(1)
     crystals = _crystals(cfg, f_nodes)
-    I_nodes = np.array([_inertia(r, m) for r in crystals])
+    I_nodes = np.array([frame.moment_of_inertia(r, m, about="com") for r in crystals])
     I0 = float(I_nodes[0])
     if not I0 > 0:
         raise PhysicsError("crystal", "the ions lie on the rotation axis (moment of inertia 0): the crystal "
@@ -435,21 +435,23 @@ def build(cfg, *, stretch: bool = True, cut: float = 1e-4) -> QuantumSetup:
     ladder, N, cycles, stat = allowed_ladder(crystals[0], cfg.species)
     if stat == "unknown":
         notes.append("the exchange statistics of a species is unknown: every L allowed")
-    comps, pin_notes = _rigid_pinning_components(cfg, crystals, f_nodes, ladder)
-    notes += pin_notes
     grid = np.linspace(0.0, sched.duration_s, 2001)
     pin_on = [np.max(np.abs(sched.pinning_scale(grid, j))) * abs(t.strength) > 0 for j, t in enumerate(cfg.pinning)]
-    if any(pin_on) and not comps:
-        raise PhysicsError("pinning", "no pinning term has a first-order moment on this crystal (it is held only "
-                           "through its deformation, or not at all); the rigid quantum rotor needs a moment",
-                           src)
+    holding = pinned = None
     if any(pin_on):
-        _check_shape(cfg, crystals[0], grid)
+        t_star, pinned = _check_shape(cfg, crystals[0], grid)
+        holding = pinning.assess_config(cfg, float(sched.f_rot_hz(t_star)), curve=False, start=pinned,
+                                        theta_rad=float(sched.theta_rad(t_star)),
+                                        scales=[float(sched.pinning_scale(t_star, j)) for j in range(len(cfg.pinning))])
+
+    comps, pin_notes = _pinning_components(cfg, crystals, f_nodes, ladder) if any(pin_on) else ((), [])
+    notes += pin_notes
     kicks, noise_notes = _kick_channels(cfg, f_nodes, crystals, ladder) if cfg.noise else ((), [])
     notes += noise_notes
     model = RotorModel(ladder, energy, sched, comps, kicks)
-    notes.append("rigid rotor: the pinning's deformation of the crystal and motion other than the rotation "
-                 "are left out; static anisotropy and stray field are rotation-averaged")
+    notes.append("rigid rotor with the unpinned crystal's moment of inertia (while pinned, the crystal's own is "
+                 "larger by the pinning's deformation, and so is its mean L); motion other than the rotation left "
+                 "out; static anisotropy and stray field rotation-averaged")
 
     # initial state: the libration's occupation at t = 0 -> temperature
     f0 = float(sched.f_rot_hz(0.0))
@@ -457,7 +459,8 @@ def build(cfg, *, stretch: bool = True, cut: float = 1e-4) -> QuantumSetup:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         try:
-            cr0 = compute_crystal(model_potential(cfg, f0, pin_scale=scales0), f0, seed=cfg.search_seed)
+            # the pinned crystal is the unpinned one's configuration (checked above): a start for the relaxation
+            cr0 = compute_crystal(model_potential(cfg, f0, pin_scale=scales0), f0, seed=cfg.search_seed, start=pinned)
         except PhysicsError as e:
             raise e.with_source(src)
     ini = cfg.initial
@@ -473,4 +476,4 @@ def build(cfg, *, stretch: bool = True, cut: float = 1e-4) -> QuantumSetup:
             notes.append("the crystal is not pinned at t = 0: the libration occupation is not used")
     temp = 0.0 if math.isinf(beta) else 1.0 / (KB * beta)
     return QuantumSetup(model, ThermalState(beta, cut), I0, N, cycles, stat, f_lib, _libration_of_model(model),
-                        nbar, temp, tuple(notes))
+                        nbar, temp, tuple(notes), holding.describe() if holding is not None else None)

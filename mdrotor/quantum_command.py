@@ -173,7 +173,7 @@ def quantum_report(source, *, overrides=(), trajectories=None, ensemble: bool = 
         noise.append({"label": ch.label, "kick_quanta": ch.quanta,
                       "D_max_hbar2_per_s": float(r.max() * ch.quanta**2),
                       "D_end_hbar2_per_s": float(r[-1] * ch.quanta**2)})
-    pins = [{"order": c.order, "term": cfg.pinning[c.term].name,
+    pins = [{"order": c.order, "term": cfg.pinning[c.term].name, "power": c.power,
              "amplitude_at_rest_j": float(abs(complex(c.amplitude(0.0))))} for c in model.pinning]
     out = {
         "source": str(getattr(source, "source", source)), "source_kind": kind,
@@ -183,7 +183,7 @@ def quantum_report(source, *, overrides=(), trajectories=None, ensemble: bool = 
         "symmetry_order": setup.symmetry_order, "symmetry_cycles": setup.cycles, "statistics": setup.statistics,
         "allowed_L_spacing": lad.spacing, "allowed_L_offset": lad.offset,
         "pinning": pins, "f_lib_hz": setup.f_lib_hz, "f_lib_model_hz": setup.f_lib_model_hz,
-        "nbar_libration": setup.nbar_libration, "temperature_k": setup.temperature_k,
+        "nbar_libration": setup.nbar_libration, "temperature_k": setup.temperature_k, "holding": setup.holding,
         "noise": noise, "numerics": ev.numerics, "notes": list(setup.notes),
         "stages": stages, "pinned_at_end": pinned_end, "lines": lines,
     }
@@ -209,8 +209,11 @@ def text(d: dict, n_lines: int = 8) -> str:
                f"{d['hbar_over_I_hz']:.6g} Hz")
     out.append(f"  symmetry: {d['symmetry_order']}-fold ({d['statistics']}); allowed L = "
                f"{d['allowed_L_offset']} mod {d['allowed_L_spacing']}")
+    if d["holding"]:
+        out.append(f"  pinning: {d['holding']}")
     for p in d["pinning"]:
-        out.append(f"  pinning {p['term']}: order {p['order']}, well depth amplitude {p['amplitude_at_rest_j']:.4e} J")
+        mult = "multiplier" if p["power"] == 1 else f"multiplier^{p['power']}"
+        out.append(f"    energy harmonic {p['order']} of term {p['term']}: {p['amplitude_at_rest_j']:.4e} J x {mult}")
     if d["f_lib_model_hz"] is not None:
         lib = f"  libration at t = 0: rotor well {d['f_lib_model_hz'] / 1e3:.6g} kHz"
         if d["f_lib_hz"] is not None:
