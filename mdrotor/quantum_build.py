@@ -270,7 +270,7 @@ def _pinning_components(cfg, crystals, f_nodes_hz, ladder: Ladder):
 # noise
 # --------------------------------------------------------------------------
 def _kick_channels(cfg, f_nodes_hz, crystals, ladder: Ladder):
-    from .noise import model_from_config
+    from .noise import model_from_config, moment_vanishes
 
     notes = []
     model = model_from_config(cfg)
@@ -299,8 +299,8 @@ def _kick_channels(cfg, f_nodes_hz, crystals, ladder: Ladder):
             for order, dc in d.items():
                 if order == "total":
                     continue
-                present = pinning.moment_rel(pos, m, q, int(order)) > pinning.MOMENT_REL
-                rate = dc.D_hbar2_per_s / int(order) ** 2 if present else 0.0
+                zero = moment_vanishes(pos, m, q, int(order))
+                rate = 0.0 if zero else dc.D_hbar2_per_s / int(order) ** 2
                 rates.setdefault(int(order), []).append(rate)
     t_nodes = tuple(float(x) for x in np.r_[np.concatenate(t_all), sched.duration_s])
     chans = []
