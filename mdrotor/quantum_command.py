@@ -59,7 +59,7 @@ def _ensemble_from_result(path):
 
     from . import load
     from .config import from_dict
-    from .stats import OK_MASK
+    from .observables import usable
 
     res = load(path)
     cfg = from_dict(tomllib.loads(res.attrs["config_text"]), str(path))
@@ -67,7 +67,7 @@ def _ensemble_from_result(path):
     for name, obs in [("initial", res.initial), *res.stages.items()]:
         if obs is None:
             continue
-        ok = (np.asarray(obs.arrays["status"]) & OK_MASK) == 0
+        ok = usable(obs.arrays["status"])
         out[name] = np.asarray(obs.arrays["L_com_hbar"])[ok]
     return cfg, out
 
@@ -76,12 +76,12 @@ def _ensemble_run(cfg, trajectories, progress):
     import numpy as np
 
     from .runner import run
-    from .stats import OK_MASK
+    from .observables import usable
 
     res = run(cfg, trajectories=trajectories, progress=progress)
     out = {}
     for name, obs in [("initial", res.initial), *res.stages.items()]:
-        ok = (np.asarray(obs.arrays["status"]) & OK_MASK) == 0
+        ok = usable(obs.arrays["status"])
         out[name] = np.asarray(obs.arrays["L_com_hbar"])[ok]
     return out
 
