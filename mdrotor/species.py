@@ -38,6 +38,8 @@ __all__ = [
     "get_species",
     "custom_species",
     "known_species",
+    "CoolingLine",
+    "cooling_line",
     "ELECTRON_MASS_U",
     "ATOMIC_MASS_CONSTANT_KG",
 ]
@@ -96,6 +98,26 @@ _TABLE: tuple[tuple[int, str, int, float, float], ...] = (
     (200, "Hg", 80, 199.96832659, 0.0),
     (202, "Hg", 80, 201.97064340, 0.0),
 )
+
+# Doppler-cooling transitions of the singly charged ions, by element:
+# (vacuum wavelength in m, natural linewidth Gamma / 2 pi in Hz, transition).
+# from memory: check against the NIST Atomic Spectra Database
+# (A. Kramida, Yu. Ralchenko, J. Reader and NIST ASD Team, https://physics.nist.gov/asd),
+# wavelengths in vacuum, linewidths 1 / (2 pi tau) of the upper level's lifetime tau.
+# The two-level model takes the total decay rate of the upper level; decays
+# into metastable D (Ca+, Sr+, Ba+) or F/D (Yb+) levels are assumed closed by
+# repumping beams, which the simulation does not model. Give
+# laser.wavelength and laser.linewidth in the config for other lines.
+_COOLING: dict[str, tuple[float, float, str]] = {
+    "Be": (313.133e-9, 19.6e6, "2s 2S1/2 - 2p 2P3/2"),   # from memory
+    "Mg": (279.635e-9, 41.8e6, "3s 2S1/2 - 3p 2P3/2"),   # from memory
+    "Ca": (396.959e-9, 22.4e6, "4s 2S1/2 - 4p 2P1/2"),   # from memory
+    "Sr": (421.671e-9, 21.5e6, "5s 2S1/2 - 5p 2P1/2"),   # from memory
+    "Cd": (214.505e-9, 60.1e6, "5s 2S1/2 - 5p 2P3/2"),   # from memory
+    "Ba": (493.545e-9, 20.1e6, "6s 2S1/2 - 6p 2P1/2"),   # from memory
+    "Yb": (369.526e-9, 19.6e6, "6s 2S1/2 - 6p 2P1/2"),   # from memory
+    "Hg": (194.227e-9, 70.0e6, "6s 2S1/2 - 6p 2P1/2"),   # from memory
+}
 
 _BY_KEY: dict[tuple[int, str], tuple[int, str, int, float, float]] = {
     (row[0], row[1]): row for row in _TABLE
@@ -244,6 +266,30 @@ def get_species(name: str, *, key: str = "", source: str | None = None) -> Speci
         nuclear_spin=spin,
         statistics=_statistics_from_counts(mass_number, z, charge),
     )
+
+
+@dataclass(frozen=True)
+class CoolingLine:
+    """A Doppler-cooling transition: vacuum wavelength (m), natural linewidth
+    Gamma / 2 pi (Hz) and the levels it joins."""
+
+    wavelength_m: float
+    linewidth_hz: float
+    transition: str
+
+
+def cooling_line(species: Species) -> CoolingLine | None:
+    """The usual Doppler-cooling line of a singly charged tabulated ion, or
+    None (custom ions, higher charge states, elements without an entry).
+
+    One entry per element: isotope shifts (GHz) change the wavelength by
+    about 1e-6 relative, which does not matter for the recoil; a beam's
+    detuning is always counted from the addressed isotope's own resonance.
+    Values from memory; see the table's comment for where to check them."""
+    if species.charge != 1 or species.symbol not in _COOLING:
+        return None
+    lam, gam, text = _COOLING[species.symbol]
+    return CoolingLine(lam, gam, text)
 
 
 def custom_species(mass_kg: float, charge: int, name: str = "custom",
