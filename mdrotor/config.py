@@ -35,6 +35,8 @@ SECTIONS = {
     "run": {"trajectories", "seed", "dt", "integrator", "chunk", "threads", "steps_per_period", "force"},
     "observe": {"loss_radius", "series_interval"},
     "noise": None,  # validated by mdrotor.noise
+    "laser": {"name", "species", "wavelength", "linewidth", "detuning", "saturation", "direction", "waist", "centre",
+              "emission", "stages"},
 }
 CUSTOM_KEYS = {"mass", "charge", "statistics"}
 INTEGRATORS = ("verlet", "order4")
@@ -85,6 +87,8 @@ class Config:
     initial, run, observe : option records
     noise : dict
         The raw ``[noise]`` table (parsed by the noise module).
+    lasers : tuple of mdrotor.laser.Beam
+        The ``[[laser]]`` beams.
     """
 
     source: str
@@ -99,6 +103,7 @@ class Config:
     f_start_hz: float = 0.0
     search_seed: int = 0
     noise: dict = field(default_factory=dict)
+    lasers: tuple = ()
     raw: dict = field(default_factory=dict, repr=False)
 
     @property
@@ -180,7 +185,7 @@ def set_path(raw: dict, key: str, value, source: str) -> None:
             node = _list_item(node, part, ".".join(parts[: i + 1]), source)
             continue
         if part not in node:
-            if part in ("stage", "pinning") and i == 0:
+            if part in ("stage", "pinning", "laser") and i == 0:
                 raise InputError(key, f"the config has no [{part}] to override", source)
             node[part] = {}
         node = node[part]
@@ -534,13 +539,167 @@ def from_dict(raw: dict, source: str = "<dict>", base_dir=None) -> Config:
     cfg = Config(source=source, text=_dump(raw), species=species, trap=trap, pinning=pinning, schedule=schedule,
                  initial=_initial(raw, source), run=_run(raw, source), observe=_observe(raw, source),
                  f_start_hz=f_start, search_seed=_int(raw["crystal"].get("search_seed", 0), "crystal.search_seed", source, 0),
-                 noise=raw.get("noise", {}), raw=raw)
+                 noise=raw.get("noise", {}), lasers=_lasers(raw, species, schedule, source), raw=raw)
     _check_rotation(cfg)
     if cfg.noise:
         from .noise import model_from_config
 
         model_from_config(cfg)  # validate now: one message before anything runs
     return cfg
+
+
+def _unit_vector(v, key, source, what) -> np.ndarray:
+    if not isinstance(v, list) or len(v) != 3:
+        raise InputError(key, f"expected {what}: a unit vector [x, y, z] such as [1, 0, 0], got {v!r}", source)
+    u = np.array([units.number(x, f"{key}[{i}]", source, "a number") for i, x in enumerate(v)])
+    norm = float(np.linalg.norm(u))
+    if norm == 0.0:
+        raise InputError(key, f"expected {what}: a unit vector such as [1, 0, 0], got the zero vector", source)
+    if abs(norm - 1.0) > 1e-3:
+        raise InputError(key, f"expected {what}: a unit vector (length 1 to 1e-3) such as [0.7071, 0.7071, 0], "
+                              f"got {v!r} of length {norm:.6g}", source)
+    return u / norm
+
+
+def _stage_scales(v, key, names, source):
+    """A laser's intensity multiplier per stage: a table {stage = multiplier}
+    (unlisted stages 1) or a list of the stages in which it is on (elsewhere
+    0); the same shape as a noise entry's ``stages``."""
+    if v is None:
+        return {}, 1.0
+    if isinstance(v, list):
+        for i, st in enumerate(v):
+            _stage_name(st, f"{key}[{i}]", names, source)
+        return {st: 1.0 for st in v}, 0.0
+    if not isinstance(v, dict):
+        raise InputError(key, "expected a table { stage = intensity multiplier } or a list of stage names", source)
+    out = {}
+    for st, x in v.items():
+        _stage_name(st, f"{key}.{st}", names, source)
+        val = units.number(x, f"{key}.{st}", source, "a non-negative intensity multiplier, e.g. 1.0")
+        if val < 0:
+            raise InputError(f"{key}.{st}", f"expected a non-negative intensity multiplier, got {x!r}", source)
+        out[st] = val
+    return out, 1.0
+
+
+def _stage_name(st, key, names, source):
+    if not isinstance(st, str):
+        raise InputError(key, f"expected a stage name, got {st!r}", source)
+    if st not in names:
+        raise InputError(key, f"no stage named {st!r}; the stages are {list(names)}", source)
+
+
+def _lasers(raw, species, schedule, source) -> tuple:
+    """The ``[[laser]]`` beams (:class:`mdrotor.laser.Beam`)."""
+    from .laser import PATTERNS, Beam, emission_tensor
+    from .species import cooling_line, get_species
+
+    items = raw.get("laser")
+    if items is None:
+        return ()
+    if isinstance(items, dict):
+        items = [items]
+    if not isinstance(items, list) or not all(isinstance(x, dict) for x in items):
+        raise InputError("laser", "expected one or more [[laser]] tables", source)
+    stage_names = [st.name for st in schedule.stages] if schedule is not None else []
+    present = list(dict.fromkeys(sp.name for sp in species))
+    out = []
+    for i, it in enumerate(items):
+        sec = f"laser[{i}]"
+        _check_keys(it, sec, SECTIONS["laser"], source)
+        name = it.get("name", f"laser{i}")
+        if not isinstance(name, str) or not name:
+            raise InputError(f"{sec}.name", f"expected a non-empty string, got {name!r}", source)
+        if "name" in it:  # addressed by name, as in --set laser.<name>.saturation=0.2
+            sec = f"laser.{name}"
+        if "species" in it:
+            sp_name = it["species"]
+            if not isinstance(sp_name, str):
+                raise InputError(f"{sec}.species", f"expected a species name such as '40Ca+', got {sp_name!r}", source)
+            if sp_name not in present:
+                sp_name = get_species(sp_name, key=f"{sec}.species", source=source).name
+            if sp_name not in present:
+                raise InputError(f"{sec}.species", f"no ion of species {it['species']!r} in the crystal; it has {present}",
+                                 source)
+        elif len(present) == 1:
+            sp_name = present[0]
+        else:
+            raise InputError(f"{sec}.species", f"missing; a mixed crystal needs the species the beam addresses, one of "
+                                               f"{present}", source)
+        sp = next(s for s in species if s.name == sp_name)
+        line = cooling_line(sp)
+        if "wavelength" in it:
+            lam = units.parse(it["wavelength"], "length", f"{sec}.wavelength", source)
+            if not lam > 0:
+                raise InputError(f"{sec}.wavelength", f"expected a positive wavelength such as '397 nm', got "
+                                                      f"{it['wavelength']!r}", source)
+        elif line is not None:
+            lam = line.wavelength_m
+        else:
+            raise InputError(f"{sec}.wavelength", f"missing; the species table has no cooling line for {sp_name}: "
+                                                  f"give the wavelength, e.g. '397 nm'", source)
+        if "linewidth" in it:
+            gam = units.parse(it["linewidth"], "frequency", f"{sec}.linewidth", source)
+            if not gam > 0:
+                raise InputError(f"{sec}.linewidth", f"expected a positive natural linewidth Gamma/2pi such as "
+                                                     f"'22 MHz', got {it['linewidth']!r}", source)
+        elif line is not None:
+            gam = line.linewidth_hz
+        else:
+            raise InputError(f"{sec}.linewidth", f"missing; the species table has no cooling line for {sp_name}: "
+                                                 f"give the natural linewidth Gamma/2pi, e.g. '22 MHz'", source)
+        det = units.parse(_require(it, "detuning", sec, source, "the detuning delta/2pi from resonance, such as "
+                                                                "'-11 MHz' (negative: red, cooling)"),
+                          "frequency", f"{sec}.detuning", source)
+        sat = units.number(_require(it, "saturation", sec, source, "the on-axis saturation parameter I/I_sat, "
+                                                                   "such as 0.5"),
+                           f"{sec}.saturation", source, "a non-negative saturation parameter I/I_sat, such as 0.5")
+        if sat < 0:
+            raise InputError(f"{sec}.saturation", f"expected a non-negative saturation parameter I/I_sat, got "
+                                                  f"{it['saturation']!r}", source)
+        direction = _unit_vector(_require(it, "direction", sec, source, "the beam direction, a unit vector"),
+                                 f"{sec}.direction", source, "the beam direction")
+        waist = None
+        if "waist" in it:
+            waist = units.parse(it["waist"], "length", f"{sec}.waist", source)
+            if not waist > 0:
+                raise InputError(f"{sec}.waist", f"expected a positive 1/e^2 intensity radius such as '50 um', got "
+                                                 f"{it['waist']!r}", source)
+        centre = np.array(_vec3(it["centre"], f"{sec}.centre", source, "length")) if "centre" in it else np.zeros(3)
+        em = it.get("emission", "isotropic")
+        if isinstance(em, str):
+            pattern, axis = em, None
+        elif isinstance(em, dict):
+            for k in em:
+                if k not in ("pattern", "axis"):
+                    raise InputError(f"{sec}.emission.{k}", "unknown key; expected 'pattern' and 'axis'", source)
+            pattern = em.get("pattern")
+            axis = em.get("axis")
+        else:
+            raise InputError(f"{sec}.emission", f"expected one of {list(PATTERNS)} or {{ pattern = 'linear', "
+                                                f"axis = [0, 0, 1] }}, got {em!r}", source)
+        if pattern not in PATTERNS:
+            raise InputError(f"{sec}.emission", f"expected a pattern among {list(PATTERNS)}, got {pattern!r}", source)
+        if pattern == "isotropic":
+            if axis is not None:
+                raise InputError(f"{sec}.emission.axis", "an isotropic pattern has no axis", source)
+            tensor, label = emission_tensor("isotropic"), "isotropic"
+        else:
+            if axis is None:
+                raise InputError(f"{sec}.emission.axis", f"missing; a {pattern} dipole pattern needs its axis, a unit "
+                                                         f"vector such as [0, 0, 1]", source)
+            a = _unit_vector(axis, f"{sec}.emission.axis", source, "the dipole axis")
+            tensor = emission_tensor(pattern, a)
+            label = f"{pattern} dipole along [{', '.join(f'{x:.4g}' for x in a)}]"
+        scales, default = _stage_scales(it.get("stages"), f"{sec}.stages", stage_names, source)
+        ions = tuple(j for j, s in enumerate(species) if s.name == sp_name)
+        out.append(Beam(name, sp_name, ions, lam, gam, det, sat, direction, waist, centre, tensor, label, scales,
+                        default, sec))
+    names = [b.name for b in out]
+    if len(set(names)) != len(names):
+        raise InputError("laser", f"beams need distinct names, got {names}", source)
+    return tuple(out)
 
 
 def _check_rotation(cfg: Config) -> None:
