@@ -36,6 +36,10 @@ BLOCK_STEPS = 2048
 NO_NOISE = (np.zeros((0, 3, 0)), np.zeros(0, dtype=np.int64), np.zeros((0, 0, 0)), np.zeros((0, 0, 0)),
             np.zeros(3), np.zeros((0, 2)), np.zeros(1, dtype=np.uint64), 0)
 NO_POLY = (np.zeros((0, 3), dtype=np.int64), np.zeros((1, 0)))
+# the kernel's "no laser" arrays (see kernels.advance)
+NO_LASER = (np.zeros((0, 3)), np.zeros((0, 5)), np.zeros((0, 3)), np.zeros((0, 0)), np.zeros((0, 3, 3)),
+            np.zeros(1, dtype=np.uint64), 0, np.zeros((0, 0)))
+LASER_STREAM = 4  # SeedSequence spawn_key (trajectory, 4): each trajectory's key for the recoil kicks
 RF_STEPS_PER_PERIOD = 64
 
 
@@ -81,6 +85,7 @@ class Plan:
     holding: object = None
     holding0: object = None
     rotor_cdf: tuple | None = None
+    lasers: tuple = ()
 
     @property
     def pin_is_multipole(self) -> np.ndarray:
@@ -246,9 +251,40 @@ def make_plan(cfg) -> Plan:
 
         model = model_from_config(cfg)
         plan.noise = None if model.is_empty else model
+    plan.lasers = tuple(cfg.lasers)
     if plan.rf:
         plan.rf_orbit = rf_orbit(plan)
     return plan
+
+
+def laser_keys(seed: int, indices) -> np.ndarray:
+    """Each trajectory's 64-bit key for the laser's recoil kicks (drawn in the
+    kernel from a counter hash of the key and (step, beam, ion)): a function
+    of (seed, trajectory index) only."""
+    return np.array([np.random.SeedSequence(seed, spawn_key=(int(i), LASER_STREAM)).generate_state(1, np.uint64)[0]
+                     for i in indices], dtype=np.uint64)
+
+
+def laser_arrays(plan: Plan, stage: str):
+    """The kernel's beam arrays (khat, par, centre, vrec, emit) for the beams
+    on during ``stage`` (see kernels.advance), or None if none is on."""
+    from .laser import HBAR as _HBAR, emission_sqrt
+
+    beams = [b for b in plan.lasers if b.on(stage)]
+    if not beams:
+        return None
+    n = len(plan.masses)
+    khat = np.array([b.direction for b in beams], dtype=float)
+    par = np.array([[b.k_rad_per_m, b.gamma_rad_s, b.delta_rad_s, b.saturation_in(stage),
+                     2.0 / b.waist_m**2 if b.waist_m else 0.0] for b in beams])
+    centre = np.array([b.centre_m for b in beams], dtype=float)
+    vrec = np.zeros((len(beams), n))
+    for j, b in enumerate(beams):
+        idx = np.array(b.ions, dtype=int)
+        vrec[j, idx] = _HBAR * b.k_rad_per_m / plan.masses[idx]
+    # one square root for absorption (along k) and emission (moments M) together
+    emit = np.array([emission_sqrt(np.outer(b.direction, b.direction) + b.emission) for b in beams])
+    return khat, par, centre, vrec, emit
 
 
 def _species_ids(cfg) -> np.ndarray:
@@ -540,12 +576,15 @@ class RawRun:
 
 
 def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, progress=None,
-              observe_stages: bool = True, rf_phases: np.ndarray | None = None, noise_state=None) -> RawRun:
+              observe_stages: bool = True, rf_phases: np.ndarray | None = None, noise_state=None,
+              laser_keys: np.ndarray | None = None) -> RawRun:
     """Run the whole schedule on the given states (modified in place).
 
     ``rf_phases`` (T,): each trajectory's RF phase at t = 0 (RF model only).
     ``noise_state``: from ``plan.noise.new_state(seed, indices)`` when the
-    config has noise.
+    config has noise. ``laser_keys``: from :func:`laser_keys` when it has
+    beams; each stage's observation then carries ``_laser_photons`` (T, N),
+    every ion's expected photon count over the stage.
     """
     from .kernels import _wrap, lag_phases
 
@@ -555,7 +594,9 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
         raise ValueError("the RF model needs each trajectory's RF phase")
     if plan.noise is not None and noise_state is None:
         raise ValueError("a run with noise needs the trajectories' noise state")
-    stepper = _Stepper(plan, T, chunk, rf_phases, noise_state)
+    if plan.lasers and laser_keys is None:
+        raise ValueError("a run with laser beams needs the trajectories' laser keys")
+    stepper = _Stepper(plan, T, chunk, rf_phases, noise_state, laser_keys=laser_keys)
     if plan.lag_n > 0:
         raw = lag_phases(pos, plan.masses, plan.charges, plan.lag_n)
         stepper.lag_u[0] = plan.lag_u_ref + np.array([_wrap(r - plan.lag_u_ref) for r in raw])
@@ -583,6 +624,10 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
         t = bounds[k + 1]
         if observe_stages or k == len(sched.stages) - 1:
             stages[st.name] = stepper.observe(pos, vel, k, t, dt)
+            if plan.lasers:
+                stages[st.name]["_laser_photons"] = stepper.photons.T.copy()
+        if plan.lasers:
+            stepper.photons[:] = 0.0
         if plan.series_interval_s:
             series.append(_series_point(stages[st.name], t, st.name))
     return RawRun(plan, initial, stages, series, time.perf_counter() - t0, T)
@@ -616,9 +661,13 @@ def warm_up(plan: Plan, pos: np.ndarray, vel: np.ndarray, rf_phases=None, noise_
 class _Stepper:
     """Builds the kernel's per-block arrays and observes (secular state in RF runs)."""
 
-    def __init__(self, plan: Plan, n_traj: int, chunk: int, rf_phases, noise_state=None, model=None):
+    def __init__(self, plan: Plan, n_traj: int, chunk: int, rf_phases, noise_state=None, model=None,
+                 laser_keys=None):
         self.plan = plan
         self.model = plan.kernel_model() if model is None else model
+        # beams: each trajectory's key and every ion's expected photon count since the last reset
+        self.laser_keys = laser_keys
+        self.photons = np.zeros((len(plan.masses), n_traj)) if laser_keys is not None else NO_LASER[7]
         self.noise_state = noise_state
         # each trajectory's key for the white kicks drawn in the kernel (stream 3)
         self.white_keys = (np.array([np.random.SeedSequence(noise_state.seed, spawn_key=(int(i), 3)).generate_state(1, np.uint64)[0]
@@ -635,9 +684,9 @@ class _Stepper:
                 noise_step0: int | None = None, spin: float = 0.0) -> None:
         """Advance ``n`` steps from ``t_start``; ``frozen``: the schedule held
         at t = 0 (the RF drive still runs from phase W t_start), except the
-        pinning angle, which turns at ``spin`` (rad/s) from 0. Noise acts
-        only when ``noise_step0`` (the block's first step within the stage)
-        is given: measurement windows run without it."""
+        pinning angle, which turns at ``spin`` (rad/s) from 0. Noise and
+        laser beams act only when ``noise_step0`` (the block's first step
+        within the stage) is given: measurement windows run without them."""
         from .kernels import advance
 
         plan = self.plan
@@ -676,9 +725,15 @@ class _Stepper:
             w_field, w_g = model.white_sd(dt, name)
             step = int(sum(plan.stage_steps[:stage])) + int(noise_step0)
             noise = (field, orders, g_re, g_im, w_field, w_g, self.white_keys, step)
+        laser = NO_LASER
+        if plan.lasers and noise_step0 is not None and self.laser_keys is not None:
+            arrays = laser_arrays(plan, sched.stages[stage].name)
+            if arrays is not None:  # beams on: recoil kicks counted by the global step, like the white noise
+                step = int(sum(plan.stage_steps[:stage])) + int(noise_step0)
+                laser = arrays + (self.laser_keys, step, self.photons)
         poly = _poly_coefficients(plan, t_sched, theta)
         advance(pos, vel, dt, n, plan.fracs, self.model, drive, (plan.pin_orders, c_re, c_im), poly, lag, noise,
-                self.chunk)
+                laser, self.chunk)
 
     def observe(self, pos, vel, stage: int, t: float, dt: float) -> dict:
         """Observables at time t. In an RF run they are measured on the

@@ -23,6 +23,10 @@ Acceleration of ion i (see :mod:`mdrotor.statics` for the potential)::
 with grad Re[C z^n] = (Re[n C z^(n-1)], -Im[n C z^(n-1)])
 (:mod:`mdrotor.multipole`).
 
+Stochastic terms (field noise, laser beams) act as kicks after each
+deterministic step; with none of them on, the stepper is the plain
+symplectic scheme below.
+
 Stepper: velocity Verlet (kick-drift-kick), or the 4th-order symmetric
 composition of three Verlet steps with weights w1, w0, w1,
 w1 = 1/(2 - 2^(1/3)), w0 = 1 - 2 w1 (H. Yoshida, Phys. Lett. A 150, 262
@@ -334,6 +338,80 @@ def _noise_accel(px, py, qm, n_orders, ge, ex, ey, ez, nx, ny, nz, zr, zi):
 
 
 @njit(cache=True)
+def _laser_kick(px, py, pz, vx, vy, vz, b0, step, dt, khat, par, centre, vrec, emit, keys, photons, n_ph, sd_ph):
+    """One step's laser impulse on a chunk, after the deterministic step.
+
+    For each beam l and addressed ion i (vrec[l, i] = hbar k / m_i > 0),
+    at the step's end position and velocity: the saturation s = s0
+    exp(-2 rho^2 / w^2) (par[l, 4] = 2 / w^2, 0 for a plane wave), the
+    expected photon number n = R dt with the scattering rate of
+    :func:`mdrotor.laser.scattering_rate`,
+    R = (Gamma/2) s / (1 + s + (2 (delta - k.v) / Gamma)^2), and the kick
+
+        dv = vrec [ n k_hat + sqrt(n) C (u0, u1, u2) ],   C C^T = k_hat k_hat^T + M
+
+    (mean: the scattering force; covariance n (k_hat k_hat^T + M): the
+    Poissonian absorption along k plus the emission with the pattern's
+    moments M; C = emit[l]). u0..u2 are uniform numbers of unit variance
+    from the counter hash of the trajectory's key and (step, beam, ion)
+    (any distribution with the right variance gives the same diffusion: B.
+    Duenweg and W. Paul, Int. J. Mod. Phys. C 2, 817 (1991)).
+    par[l] = (|k| rad/m, Gamma rad/s, delta rad/s, s0, 2 / w^2).
+    photons[i, b0 + b] accumulates n. n_ph, sd_ph: (B,) scratch (the rates
+    are computed in a first pass that the compiler can vectorise)."""
+    n_beams = khat.shape[0]
+    n_ions, nb = px.shape
+    for ll in range(n_beams):
+        ux = khat[ll, 0]
+        uy = khat[ll, 1]
+        uz = khat[ll, 2]
+        s0 = par[ll, 3]
+        iw2 = par[ll, 4]
+        if s0 == 0.0:
+            continue
+        a0 = 2.0 * par[ll, 2] / par[ll, 1]   # 2 delta / Gamma
+        a1 = 2.0 * par[ll, 0] / par[ll, 1]   # 2 k / Gamma
+        hg = 0.5 * par[ll, 1] * dt           # Gamma dt / 2
+        cx = centre[ll, 0]
+        cy = centre[ll, 1]
+        cz = centre[ll, 2]
+        c00, c01, c02 = emit[ll, 0, 0], emit[ll, 0, 1], emit[ll, 0, 2]
+        c10, c11, c12 = emit[ll, 1, 0], emit[ll, 1, 1], emit[ll, 1, 2]
+        c20, c21, c22 = emit[ll, 2, 0], emit[ll, 2, 1], emit[ll, 2, 2]
+        for i in range(n_ions):
+            vr = vrec[ll, i]
+            if vr == 0.0:
+                continue
+            for b in range(nb):
+                s = s0
+                if iw2 != 0.0:
+                    dx = px[i, b] - cx
+                    dy = py[i, b] - cy
+                    dz = pz[i, b] - cz
+                    a = dx * ux + dy * uy + dz * uz
+                    s = s0 * math.exp(-iw2 * (dx * dx + dy * dy + dz * dz - a * a))
+                x = a0 - a1 * (ux * vx[i, b] + uy * vy[i, b] + uz * vz[i, b])
+                n = hg * s / (1.0 + s + x * x)
+                n_ph[b] = n
+                sd_ph[b] = SQRT3 * math.sqrt(n)
+            for b in range(nb):
+                photons[i, b0 + b] += n_ph[b]
+            c0 = np.uint64(((step * n_beams + ll) * n_ions + i) * 3)
+            c1 = c0 + np.uint64(1)
+            c2 = c0 + np.uint64(2)
+            for b in range(nb):
+                sd = sd_ph[b]
+                key = keys[b0 + b]
+                r0 = sd * (2.0 * _uniform(key, c0) - 1.0)
+                r1 = sd * (2.0 * _uniform(key, c1) - 1.0)
+                r2 = sd * (2.0 * _uniform(key, c2) - 1.0)
+                along = vr * n_ph[b]
+                vx[i, b] += along * ux + vr * (c00 * r0 + c01 * r1 + c02 * r2)
+                vy[i, b] += along * uy + vr * (c10 * r0 + c11 * r1 + c12 * r2)
+                vz[i, b] += along * uz + vr * (c20 * r0 + c21 * r1 + c22 * r2)
+
+
+@njit(cache=True)
 def _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e):
     """rf[b] = cos(W t_e + phase_b) = cos W t_e cos phase_b - sin W t_e sin phase_b."""
     for b in range(rf.shape[0]):
@@ -341,7 +419,7 @@ def _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e):
 
 
 @njit(cache=True, parallel=True)
-def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, chunk):
+def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, laser, chunk):
     """Advance every trajectory by ``n_steps`` steps of length ``dt``.
 
     Parameters
@@ -382,6 +460,17 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, c
         deterministic step, dt times the noise acceleration at the step's end
         (a first-order splitting, exact for the impulse of a uniform field;
         a white process has no timing within a step to resolve).
+    laser : tuple (khat, par, centre, vrec, emit, keys, step0, photons)
+        Doppler-cooling beams (:mod:`mdrotor.laser`), L of them (L = 0:
+        none): khat (L, 3) unit vectors, par (L, 5) (|k|, Gamma, delta,
+        s0, 2/w^2), centre (L, 3) m, vrec (L, N) hbar k / m_i for the
+        addressed ions (0 for the others), emit (L, 3, 3) square root of
+        k_hat k_hat^T + M (absorption and emission moments), each
+        trajectory's 64-bit key (T,), the global
+        index of the block's first step, and photons (N, T), which
+        accumulates each ion's expected photon count. Like the noise, one
+        kick after the deterministic step (see _laser_kick), after the
+        noise kick.
     chunk : int, trajectories per parallel work item. Each chunk is copied
         into local (N, B) arrays per component: with them the compiler can
         prove that nothing aliases and vectorises every loop.
@@ -396,6 +485,8 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, c
         poly_deg = max(poly_deg, poly_exps[j, 0], poly_exps[j, 1], poly_exps[j, 2])
     masses, charges, lag_n, lag_theta, lag_track, lag_stride, lag_u = lag
     n_field, n_orders, n_gre, n_gim, w_field, w_g, keys, step0 = noise
+    l_khat, l_par, l_centre, l_vrec, l_emit, l_keys, l_step0, l_photons = laser
+    n_beams = l_khat.shape[0]
     has_white_field = w_field[0] != 0.0 or w_field[1] != 0.0 or w_field[2] != 0.0
     use_rf = False
     for i in range(rf2.shape[0]):
@@ -447,6 +538,8 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, c
         has_multipole = n_orders.shape[0] > 0
         fe = np.zeros((3, nb))
         ge = np.zeros((n_orders.shape[0], 2, nb))
+        n_ph = np.empty(nb if n_beams > 0 else 0)
+        sd_ph = np.empty(nb if n_beams > 0 else 0)
         if use_rf:
             _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, 0)
         _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[0], c_im[0],
@@ -477,6 +570,9 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, c
                 _kick(vx, vy, vz, nx, ny, nz, dt)
             elif has_field:
                 _kick(vx, vy, vz, ex, ey, ez, dt)
+            if n_beams > 0:
+                _laser_kick(px, py, pz, vx, vy, vz, b0, l_step0 + s, dt, l_khat, l_par, l_centre, l_vrec, l_emit,
+                            l_keys, l_photons, n_ph, sd_ph)
             if lag_n > 0 and (s + 1) % lag_stride == 0 and lag_track[s + 1] == 1:
                 th = lag_n * lag_theta[s + 1]
                 _lag_raw(px, py, masses, charges, lag_n, zr, zi, fx, fy, raw)

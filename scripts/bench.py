@@ -211,7 +211,7 @@ def advance(blk: Block, pos, vel, lag_u, chunk: int) -> None:
     poly = (NO_POLY_EXPS, np.zeros((n_evals, 0)))
     lag = (p.masses, p.charges, blk.lag_n, blk.lag_theta, blk.lag_track, blk.lag_stride, lag_u)
     kernels.advance(pos, vel, blk.dt, blk.n_steps, blk.fracs, p.kernel_model(), drive, pin, poly, lag, NO_NOISE,
-                    chunk)
+                    engine.NO_LASER, chunk)
 
 
 def kernel_run(plan, pos, vel, duration_s: float, integrator: str, refine: int, chunk: int = 64):
