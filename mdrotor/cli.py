@@ -50,6 +50,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--k", type=int, default=None, help="branch separation in quanta (default: the allowed-L spacing)")
     p.add_argument("--diffusion", default=None, metavar="D", help="angular-momentum diffusion constant in hbar^2/s (default: fitted or from the noise spectrum)")
     p.add_argument("--contrast", type=float, default=0.5, help="target contrast at the exchange time for the coherence budget (default 0.5)")
+    p.add_argument("--drift-quanta", type=float, default=1.0, metavar="K",
+                   help="with [[laser]] beams: how long each may stay on before L drifts (or spreads) by K quanta (default 1)")
     _add_common(p)
 
     p = sub.add_parser("compare-trap", help="the same config and seed with the pseudopotential and with the full RF force")

@@ -15,6 +15,7 @@ contrast at the exchange time.
 from __future__ import annotations
 
 import json
+import math
 from pathlib import Path
 
 import numpy as np
@@ -59,7 +60,7 @@ def _from_config(path, overrides):
 
 
 def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float | None = None,
-                  contrast: float = 0.5, k_lines: int = 3, overrides=()) -> dict:
+                  contrast: float = 0.5, k_lines: int = 3, overrides=(), drift_quanta: float = 1.0) -> dict:
     """All rotor quantities as a JSON-ready dict (see module docstring).
 
     Parameters
@@ -72,6 +73,9 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
         D to use instead of the fitted or analytic one.
     contrast : float
         Target contrast of the coherence budget at the exchange time.
+    drift_quanta : float
+        With ``[[laser]]`` beams: the change of L (quanta) that bounds how
+        long each beam may stay on (:func:`mdrotor.laser_report.rotor_beams`).
     """
     from . import coherence as coh
     from . import rotor
@@ -161,6 +165,10 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
     out["budget_psd_at_n_f_rot"] = float(psd_for_diffusion(budget, order, m_n))
     out["budget_psd_unit"] = f"V^2/m^{2 * order}/Hz"
     out["budget_psd_frequency_hz"] = order * abs(f)
+    if cfg.lasers:
+        from .laser_report import rotor_beams
+
+        out["lasers"] = rotor_beams(cfg, cr.positions_m, f, drift_quanta)
     return out
 
 
@@ -197,6 +205,10 @@ def text(d: dict) -> str:
               f"  budget: contrast {d['budget_contrast']:.2f} at the exchange time needs D <= {d['budget_diffusion_hbar2_per_s']:.4g} hbar^2/s,",
               f"          i.e. order-{d['noise_order']} field noise S <= {d['budget_psd_at_n_f_rot']:.4g} {d['budget_psd_unit']} at "
               f"{d['budget_psd_frequency_hz'] / 1e3:.6g} kHz (n f_rot)"]
+    if d.get("lasers"):
+        from .laser_report import rotor_lines
+
+        lines += rotor_lines(d["lasers"], d["f_rot_hz"])
     return "\n".join(lines)
 
 
@@ -214,7 +226,11 @@ def cli_rotor(args) -> int:
                              "command line")
     if args.k is not None and args.k < 1:
         raise InputError("--k", "expected a positive number of quanta", "command line")
-    d = rotor_summary(args.source, k=args.k, diffusion_hbar2_per_s=D, contrast=args.contrast, overrides=args.overrides)
+    dq = getattr(args, "drift_quanta", 1.0)
+    if not (math.isfinite(dq) and dq > 0):
+        raise InputError("--drift-quanta", f"expected a finite, positive number of quanta, got {dq!r}", "command line")
+    d = rotor_summary(args.source, k=args.k, diffusion_hbar2_per_s=D, contrast=args.contrast, overrides=args.overrides,
+                      drift_quanta=dq)
     if args.json:
         print(json.dumps(d))
     else:

@@ -44,7 +44,7 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         Before any work, when the run's per-trajectory arrays would not fit
         in the memory available (:func:`resource_estimate`).
     """
-    from .engine import initial_states, integrate, make_plan
+    from .engine import initial_states, integrate, laser_keys, make_plan
     from .result import Result, observation_from_raw
 
     opts = cfg.run
@@ -71,7 +71,8 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         bar = tqdm(total=plan.n_steps * len(idx), unit="traj-step", unit_scale=True, file=sys.stderr,
                    desc="mdrotor run", leave=False)
     try:
-        raw = integrate(plan, pos, vel, chunk=chunk, progress=bar, rf_phases=phases, noise_state=noise_state)
+        raw = integrate(plan, pos, vel, chunk=chunk, progress=bar, rf_phases=phases, noise_state=noise_state,
+                        laser_keys=laser_keys(seed, idx) if plan.lasers else None)
     finally:
         if bar is not None:
             bar.close()
@@ -138,6 +139,12 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         rates = run_rates(plan, raw)
         if rates:
             extra["noise"] = rates
+    if plan.lasers:
+        from .laser_report import run_block
+
+        block = run_block(plan, raw)
+        if block:
+            extra["laser"] = block
     return Result(attrs, initial, stages, series, schedule, extra)
 
 
@@ -391,7 +398,7 @@ def summary_dict(res) -> dict:
                             "stages": [{"stage": s, "verdict": v, "margin": float(mg)} for s, v, mg in
                                        zip(pre.get("stage", []), pre.get("verdict", []), np.atleast_1d(pre.get("margin", [])))]}
     out["stages"] = {name: _obs_dict(o) for name, o in res.stages.items()}
-    for name in ("noise", "micromotion"):
+    for name in ("noise", "micromotion", "laser"):
         if res.extra.get(name):
             out[name] = res.extra[name]
     return jsonable(out)
@@ -471,6 +478,10 @@ def summary_text(res, path=None) -> str:
     nz = res.extra.get("noise")
     if nz:
         lines += _noise_text(nz)
+    if res.extra.get("laser"):
+        from .laser_report import run_lines
+
+        lines += run_lines(res.extra["laser"])
     mm = res.extra.get("micromotion")
     if mm:
         lines.append("")
