@@ -87,6 +87,13 @@ bounds = ["0.5 ms", "2 ms"]
 metric = "L_std_hbar"
 """
 
+LASER = GOOD + """[[laser]]
+name = "cool"
+detuning = "-11 MHz"
+saturation = 0.5
+direction = [1, 0, 0]
+"""
+
 BINARY = bytes(range(128, 256)) * 4  # not UTF-8 from the first byte
 RUN = ["run", "c.toml", "-o", "out.h5", "--quiet"]
 
@@ -161,6 +168,33 @@ BAD = [
                                              'frequency = "inf kHz"\n'}, RUN, "noise.tone[0].frequency", "finite"),
     ("--set nan", {"c.toml": GOOD}, RUN + ["--set", "trap.f_radial=nan"], "trap.f_radial", "finite"),
     ("--set inf angle", {"c.toml": GOOD}, RUN + ["--set", "pinning.angle=inf"], "pinning.angle", "finite"),
+    # --- laser beams ---
+    ("unknown laser species", _cfg('direction = [1, 0, 0]', 'direction = [1, 0, 0]\nspecies = "41Xx+"', LASER), RUN,
+     "laser.cool.species", "unknown species"),
+    ("laser species not in the crystal", _cfg('direction = [1, 0, 0]', 'direction = [1, 0, 0]\nspecies = "88Sr+"', LASER),
+     RUN, "laser.cool.species", "no ion of species"),
+    ("laser direction not a unit vector", _cfg("direction = [1, 0, 0]", "direction = [1, 1, 0]", LASER), RUN,
+     "laser.cool.direction", "unit vector"),
+    ("laser direction zero", _cfg("direction = [1, 0, 0]", "direction = [0, 0, 0]", LASER), RUN,
+     "laser.cool.direction", "zero vector"),
+    ("negative saturation", _cfg("saturation = 0.5", "saturation = -0.5", LASER), RUN, "laser.cool.saturation",
+     "non-negative"),
+    ("laser stage that does not exist", _cfg("direction = [1, 0, 0]", 'direction = [1, 0, 0]\nstages = ["cool"]', LASER),
+     RUN, "laser.cool.stages[0]", "no stage named 'cool'"),
+    ("wavelength of the wrong dimension", _cfg("direction = [1, 0, 0]", 'direction = [1, 0, 0]\nwavelength = "397 MHz"',
+                                               LASER), RUN, "laser.cool.wavelength", "wrong dimension"),
+    ("nan detuning", _cfg('detuning = "-11 MHz"', 'detuning = "nan MHz"', LASER), RUN, "laser.cool.detuning", "finite"),
+    ("unknown emission pattern", _cfg("direction = [1, 0, 0]", 'direction = [1, 0, 0]\nemission = "dipolar"', LASER),
+     RUN, "laser.cool.emission", "pattern"),
+    ("dipole pattern without its axis", _cfg("direction = [1, 0, 0]",
+                                             'direction = [1, 0, 0]\nemission = { pattern = "linear" }', LASER),
+     RUN, "laser.cool.emission.axis", "missing"),
+    ("no cooling line for a custom ion", _cfg('ion = "40Ca+"', 'ion = "Xx+"\n[species.custom."Xx+"]\nmass = "40 u"', LASER),
+     RUN, "laser.cool.wavelength", "no cooling line"),
+    ("laser key typo", _cfg("saturation = 0.5", "saturaton = 0.5", LASER), RUN, "laser[0].saturaton", "unknown key"),
+    ("--set negative saturation", {"c.toml": LASER}, RUN + ["--set", "laser.cool.saturation=-1"], "laser.cool.saturation",
+     "non-negative"),
+    ("rotor --drift-quanta 0", {"c.toml": LASER}, ["rotor", "c.toml", "--drift-quanta", "0"], "--drift-quanta", "positive"),
     # --- impossible traps, named by the key written ---
     ("trap too weak for the drive", _cfg('f_radial = "1.0 MHz"', 'f_radial = "1 Hz"', DRIVEN), RUN, "trap.f_radial",
      "too weak for this drive"),

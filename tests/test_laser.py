@@ -483,3 +483,86 @@ def test_a_beam_switched_off_changes_nothing():
         for k, v in plain.final.arrays.items():
             assert np.array_equal(v, off.final.arrays[k], equal_nan=True), k
         assert "laser" not in off.extra
+
+
+# ---------------------------------------------------------------------------
+# Config, species table, outputs
+# ---------------------------------------------------------------------------
+def test_species_table_gives_the_cooling_line():
+    """A beam on a tabulated ion takes the wavelength and linewidth of its
+    usual cooling line (values from memory, to be checked against the NIST
+    Atomic Spectra Database); given values win. Plausibility (from memory):
+    the lines lie in the near UV to blue (190-500 nm) with linewidths of
+    15-80 MHz, so their Doppler limits hbar Gamma / (2 k_B) are 0.4-2 mK."""
+    from mdrotor.species import cooling_line, custom_species
+
+    for name in ("9Be+", "24Mg+", "40Ca+", "88Sr+", "111Cd+", "138Ba+", "171Yb+", "199Hg+"):
+        line = cooling_line(get_species(name))
+        assert 190e-9 < line.wavelength_m < 500e-9 and 15e6 < line.linewidth_hz < 80e6, name
+        assert 0.4e-3 < laser.doppler_minimum_k(TWO_PI * line.linewidth_hz) < 2e-3, name
+    assert cooling_line(get_species("40Ca2+")) is None
+    assert cooling_line(custom_species(1e-25, 1)) is None
+    d = {"species": {"ion": "88Sr+"}, "crystal": {"ions": 1}, "trap": {"f_radial": "1 MHz", "f_axial": "1.2 MHz"},
+         "stage": [{"name": "a", "duration": "1 us"}],
+         "laser": [{"detuning": "-10 MHz", "saturation": 1, "direction": [0, 0, 1]},
+                   {"detuning": "-10 MHz", "saturation": 1, "direction": [0, 0.7071, 0.7071], "wavelength": "422 nm",
+                    "linewidth": "20 MHz", "emission": {"pattern": "circular", "axis": [0, 0, 1]}, "stages": ["a"]}]}
+    b0, b1 = mdrotor.load_config(d).lasers
+    line = cooling_line(get_species("88Sr+"))
+    assert (b0.wavelength_m, b0.linewidth_hz) == (line.wavelength_m, line.linewidth_hz)
+    assert (b1.wavelength_m, b1.linewidth_hz) == pytest.approx((422e-9, 20e6))
+    assert np.linalg.norm(b1.direction) == pytest.approx(1.0, abs=1e-15)  # normalised
+    assert b1.xi == pytest.approx(0.3 + 0.1 * 0.5, rel=1e-4)               # u.M.u for the circular pattern
+    assert (b0.name, b1.name) == ("laser0", "laser1") and b1.scale("a") == 1.0
+
+
+def test_run_and_rotor_outputs(tmp_path, capsys):
+    """The run summary, its JSON and the result file carry the laser block
+    with the caution; mdrotor rotor says how long the beam may stay on,
+    with the drift time K hbar / |tau| of the turn-averaged torque."""
+    import json
+
+    from mdrotor.cli import main
+
+    cfg = tmp_path / "c.toml"
+    cfg.write_text("""
+[species]
+ion = "40Ca+"
+[crystal]
+ions = 2
+[trap]
+f_radial = "1.2 MHz"
+f_axial = "2.9 MHz"
+[rotation]
+f_start = "150 kHz"
+[[stage]]
+name = "free"
+duration = "4 us"
+[initial]
+temperature = "0.5 mK"
+[run]
+trajectories = 16
+seed = 2
+[[laser]]
+name = "cool"
+detuning = "-11 MHz"
+saturation = 0.3
+direction = [0.6, 0.8, 0]
+""")
+    out = tmp_path / "r.h5"
+    assert main(["run", str(cfg), "-o", str(out), "--quiet"]) == 0
+    text = capsys.readouterr().out
+    assert "laser beams:" in text and "scattering per ion" in text and "Caution" in text and "laser-safety" in text
+    assert main(["run", str(cfg), "-o", str(out), "--quiet", "--json"]) == 0
+    d = json.loads(capsys.readouterr().out)
+    assert d["laser"]["stage"] == ["free"] and "laser-safety" in d["laser"]["caution"]
+    res = mdrotor.load(out)
+    assert res.extra["laser"]["torque_rigid_n_m"][0] < 0
+    assert main(["rotor", str(out), "--drift-quanta", "500", "--json"]) == 0
+    r = json.loads(capsys.readouterr().out)
+    (beam,) = r["lasers"]
+    assert beam["time_drift_s"] == pytest.approx(500 * HBAR / abs(beam["torque_n_m"]), rel=1e-12)
+    assert beam["time_on_s"] == min(beam["time_drift_s"], beam["time_spread_s"])
+    assert main(["rotor", str(cfg), "--drift-quanta", "2"]) == 0
+    text = capsys.readouterr().out
+    assert "first photon" in text and "laser-safety" in text  # one photon moves L by ~30 quanta here
