@@ -429,7 +429,13 @@ def rotor_laser(beams, positions_m, f_rot_hz: float, stage: str | None = None, *
         prev = cur
         p *= 2
     tb = cur[0]
-    return RotorLaser(float(np.sum(tb)), tb, cur[1], cur[2] / HBAR**2, p)
+    # below the rounding of the sum over phases (1e-12 of hbar k r sum R) a torque is zero:
+    # a symmetric crystal at rest, or a beam along z
+    floor = 1e-12 * HBAR * max((bm.k_rad_per_m for bm in beams), default=0.0) * float(np.max(np.abs(positions_m))) \
+        * float(np.sum(cur[1]))
+    tb = np.where(np.abs(tb) <= floor, 0.0, tb)
+    total = float(np.sum(tb))
+    return RotorLaser(total if abs(total) > floor else 0.0, tb, cur[1], cur[2] / HBAR**2, p)
 
 
 __all__ = ["Beam", "RotorLaser", "PATTERNS", "SAFETY", "emission_tensor", "emission_fraction", "emission_sqrt",

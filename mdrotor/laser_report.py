@@ -10,7 +10,10 @@ Two users:
   RATE_NODES quantiles of the rates), the L drift measured (mean change of
   L about the trap axis over the stage) next to the rigid crystal's torque
   / hbar (the torque at the stage end: a beam that brakes the rotation
-  during the stage gives a larger mean drift than at the end), and
+  during the stage gives a larger mean drift than at the end; while the
+  pinning holds the crystal it turns at the schedule's rate, and the
+  torque over I is an angular acceleration the pinning must hold on top of
+  the schedule's), and
   the mode temperatures reached at the stage end, k_B T_k = hbar w_k
   (n_k + 1/2) with Wigner sampling (hbar w_k n_k without): the classical
   energy of each mode. It includes the static displacement of the crystal
@@ -51,7 +54,7 @@ def run_block(plan, raw) -> dict:
     n = len(plan.masses)
     out = {"caution": SAFETY, "beam_names": [b.name for b in beams], "beam_species": [b.species for b in beams],
            "beam_description": [b.describe() for b in beams], "stage": [names[k] for k in rows]}
-    cols = {k: [] for k in ("t0_s", "t1_s", "held", "f_rot_hz", "n_trajectories", "scatter_rate_hz",
+    cols = {k: [] for k in ("t0_s", "t1_s", "pinned_start", "pinned_end", "moment_of_inertia_kg_m2", "f_rot_hz", "n_trajectories", "scatter_rate_hz",
                             "scatter_rate_err_hz", "scatter_rate_rigid_hz", "torque_rigid_n_m",
                             "L_drift_rigid_hbar_per_ms", "diffusion_rigid_hbar2_per_s", "L_drift_hbar_per_ms",
                             "L_drift_err_hbar_per_ms", "doppler_limit_k", "mode_temperature_k",
@@ -69,9 +72,14 @@ def run_block(plan, raw) -> dict:
         ms = [mean_sem(ph[:, i]) for i in range(n)]
         f_traj = after["f_rot_hz"][ok]
         f_end = float(np.mean(f_traj)) if f_traj.size else 0.0
-        cr = plan.crystal_at(t1, f_end)
-        # the rigid crystal at each trajectory's own rate: averaged over RATE_NODES quantiles of the rates
-        nodes = np.quantile(f_traj, (np.arange(RATE_NODES) + 0.5) / RATE_NODES) if f_traj.size else np.zeros(1)
+        pinned_end = plan.pinned_at(t1)
+        if pinned_end:  # the crystal turns with the pinning
+            nodes = np.array([float(sched.f_rot_hz(t1))])
+        elif f_traj.size:  # each trajectory at its own rate: RATE_NODES quantiles of the rates
+            nodes = np.quantile(f_traj, (np.arange(RATE_NODES) + 0.5) / RATE_NODES)
+        else:
+            nodes = np.zeros(1)
+        cr = plan.crystal_at(t1, float(np.mean(nodes)))
         rls = [rotor_laser(beams, cr.positions_m, float(f), stage=name) for f in nodes]
         if before:
             dl, dl_err = mean_sem((after["L_hbar"][ok] - before["L_hbar"][ok]) / (dur * 1e3))
@@ -83,7 +91,9 @@ def run_block(plan, raw) -> dict:
         temps = [mean_sem(e[:, j]) for j in range(e.shape[1])]
         cols["t0_s"].append(t0)
         cols["t1_s"].append(t1)
-        cols["held"].append(bool(plan.pinned_at(t0) or plan.pinned_at(t1)))
+        cols["pinned_start"].append(bool(plan.pinned_at(t0)))
+        cols["pinned_end"].append(bool(pinned_end))
+        cols["moment_of_inertia_kg_m2"].append(cr.moment_of_inertia_kg_m2)
         cols["f_rot_hz"].append(f_end)
         cols["n_trajectories"].append(int(np.sum(ok)))
         cols["scatter_rate_hz"].append([m for m, _ in ms])
@@ -121,11 +131,12 @@ def run_lines(block: dict) -> list[str]:
     beam_names = list(block["beam_names"])
     for j, name in enumerate(block["stage"]):
         t0, t1 = float(block["t0_s"][j]), float(block["t1_s"][j])
-        held = bool(np.atleast_1d(block["held"])[j])
+        start, end = bool(np.atleast_1d(block["pinned_start"])[j]), bool(np.atleast_1d(block["pinned_end"])[j])
+        state = "pinned" if start and end else ("released during the stage" if start else
+                                                ("pinned during the stage" if end else "free rotation"))
         lim = np.atleast_2d(block["doppler_limit_k"])[j]
         lines.append(f"  stage '{name}' ({t0 * 1e3:.4g} to {t1 * 1e3:.4g} ms, {int(block['n_trajectories'][j])} "
-                     f"trajectories, ending at {block['f_rot_hz'][j] / 1e3:.4g} kHz on average"
-                     f"{', pinned' if held else ', free rotation'}):")
+                     f"trajectories, ending at {block['f_rot_hz'][j] / 1e3:.4g} kHz on average, {state}):")
         lim_text = ", ".join(f"'{b}' {t * 1e3:.3g} mK" if math.isfinite(t) else f"'{b}' none (not red detuned)"
                              for b, t in zip(beam_names, lim) if not (isinstance(t, float) and math.isnan(t)))
         lines.append(f"    Doppler limit along each beam on (an ion at rest): {lim_text}")
@@ -133,11 +144,15 @@ def run_lines(block: dict) -> list[str]:
                      f" (+- {_list(np.atleast_2d(block['scatter_rate_err_hz'])[j], 1e-6, '{:.2g}')}); "
                      f"rigid crystal at the stage-end rates {_list(np.atleast_2d(block['scatter_rate_rigid_hz'])[j], 1e-6)}")
         drift = f"run {block['L_drift_hbar_per_ms'][j]:.4g} +- {block['L_drift_err_hbar_per_ms'][j]:.2g} hbar/ms"
-        if held:
+        if end:
             drift += " (the pinning sets L)"
+        tq = float(block["torque_rigid_n_m"][j])
         lines.append(f"    L drift: {drift}; rigid crystal {block['L_drift_rigid_hbar_per_ms'][j]:.4g} hbar/ms "
-                     f"(torque {block['torque_rigid_n_m'][j]:.3g} N m), recoil diffusion "
-                     f"{block['diffusion_rigid_hbar2_per_s'][j]:.3g} hbar^2/s")
+                     f"(torque {tq:.3g} N m), recoil diffusion {block['diffusion_rigid_hbar2_per_s'][j]:.3g} hbar^2/s")
+        if end and tq != 0.0:
+            lines.append(f"    the pinning must hold the beams' torque: |torque| / I = "
+                         f"{abs(tq) / float(block['moment_of_inertia_kg_m2'][j]):.3g} rad/s^2 on top of the schedule's "
+                         f"angular acceleration")
         labels = str(block["mode_labels"][j]).split(",")
         temps = np.atleast_2d(block["mode_temperature_k"])[j]
         errs = np.atleast_2d(block["mode_temperature_err_k"])[j]
