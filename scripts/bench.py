@@ -508,6 +508,10 @@ def bench_memory(step_counts, n_traj, dt_s):
 # ---------------------------------------------------------------------------
 WHITE_FIELD = {"field": {"psd": {"kind": "white", "level": "1e-12 V^2/m^2/Hz"}}}
 WHITE_QUAD = {"multipole": {"order": 2, "psd": {"kind": "white", "level": "1e-2 V^2/m^4/Hz"}}}
+# Doppler cooling: one 397 nm beam on both ions, components along x, y and z; two beams
+ONE_BEAM = [{"name": "oblique", "detuning": "-11 MHz", "saturation": 0.5, "direction": [0.6, 0.64, 0.48]}]
+TWO_BEAMS = ONE_BEAM + [{"name": "axial", "detuning": "-11 MHz", "saturation": 0.5, "direction": [0, 0, 1],
+                         "waist": "40 um"}]
 ONE_OVER_F = {"field": {"psd": {"kind": "power", "level": "1e-12 V^2/m^2/Hz", "f_ref": "1 MHz", "alpha": 1.0,
                                 "f_min": "50 kHz", "f_max": "5 MHz"}}}
 
@@ -528,6 +532,10 @@ def engine_cases() -> list[tuple[str, dict]]:
         if noise:
             raw["noise"] = noise
         out.append((label, raw))
+    for label, beams in (("N=2 pseudo, one cooling beam", ONE_BEAM), ("N=2 pseudo, two cooling beams", TWO_BEAMS)):
+        raw = json.loads(json.dumps(demo))
+        raw["laser"] = beams
+        out.append((label, raw))
     for label, base, model in (("N=2 rf", demo, "rf"), ("N=4 pseudo", square, "pseudo"), ("N=4 rf", square, "rf")):
         raw = json.loads(json.dumps(base))
         raw["trap"]["model"] = model
@@ -537,7 +545,8 @@ def engine_cases() -> list[tuple[str, dict]]:
 
 def bench_engine(label, raw, n_traj, n_steps, repeats, threads, seed=1) -> dict:
     """Steps of the whole engine (engine._Stepper: schedule sampling, noise
-    synthesis, kernel), as a run does them, on ``threads`` threads."""
+    synthesis, laser kicks, kernel), as a run does them, on ``threads``
+    threads."""
     from mdrotor.config import from_dict
 
     numba.set_num_threads(threads)
@@ -549,7 +558,8 @@ def bench_engine(label, raw, n_traj, n_steps, repeats, threads, seed=1) -> dict:
     best = math.inf
     for r in range(repeats + 1):  # the first call compiles
         noise_state = plan.noise.new_state(seed, idx) if plan.noise is not None else None
-        stepper = engine._Stepper(plan, n_traj, auto_chunk(n_traj, threads), phases, noise_state)
+        stepper = engine._Stepper(plan, n_traj, auto_chunk(n_traj, threads), phases, noise_state,
+                                  engine.laser_keys(seed, idx) if plan.lasers else None)
         pos, vel = pos0.copy(), vel0.copy()
         t0 = time.perf_counter()
         stepper.advance(pos, vel, 0, 0.0, plan.stage_dt[0], n_steps if r else 8, noise_step0=0)
@@ -708,6 +718,7 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true", help="small sizes: a smoke run under a minute")
     ap.add_argument("--json", action="store_true", help="one JSON object on stdout (the table goes to stderr)")
     ap.add_argument("--out", metavar="FILE.json", help="also write the JSON object to this file")
+    ap.add_argument("--engine-only", action="store_true", help="only the whole-engine table (noise, lasers, RF)")
     ap.add_argument("--memory-child", nargs=3, metavar=("STEPS", "TRAJ", "DT_S"), help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
 
@@ -731,6 +742,19 @@ def main(argv=None) -> int:
     result = {"machine": machine_info(), "settings": {k: (list(v) if isinstance(v, tuple) else v)
                                                       for k, v in sizes.items()},
               "kernel": [], "numpy": [], "solve_ivp": [], "memory": []}
+    if args.engine_only:
+        result["engine"] = []
+        for label, raw in engine_cases():
+            for threads in (1, 2):
+                n_steps = sizes["eng_steps"] * (4 if " rf" in label else 1)
+                log(f"engine: {label}, {threads} thread(s)")
+                result["engine"].append(bench_engine(label, raw, sizes["eng_traj"], n_steps, sizes["eng_repeats"],
+                                                     threads))
+        result["targets"] = targets(result)
+        result["wall_s"] = time.perf_counter() - t_start
+        result["machine"]["loadavg_end"] = os.getloadavg()
+        print(markdown(result))
+        return 0
     problems = problem_dicts()
     numpy_problems = []
     demo_dt = None
