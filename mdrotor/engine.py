@@ -40,6 +40,9 @@ NO_POLY = (np.zeros((0, 3), dtype=np.int64), np.zeros((1, 0)))
 NO_LASER = (np.zeros((0, 3)), np.zeros((0, 5)), np.zeros((0, 3)), np.zeros((0, 0)), np.zeros((0, 3, 3)),
             np.zeros(1, dtype=np.uint64), 0, np.zeros((0, 0)))
 LASER_STREAM = 4  # SeedSequence spawn_key (trajectory, 4): each trajectory's key for the recoil kicks
+# the laser kick is a first-order splitting of a velocity-dependent force: the automatic dt keeps its
+# largest damping per step, max |dF/dv| dt / m, at or below this
+LASER_DAMPING_PER_STEP = 0.01
 RF_STEPS_PER_PERIOD = 64
 
 
@@ -236,6 +239,14 @@ def make_plan(cfg) -> Plan:
     if cfg.trap.model == "rf":
         plan.f_drive_hz = float(cfg.trap.f_drive_hz)
         dt = min(dt, 1.0 / (plan.f_drive_hz * RF_STEPS_PER_PERIOD))
+    if cfg.lasers and sched is not None:
+        from .laser import max_friction_coefficient
+
+        for b in cfg.lasers:
+            s_max = max(b.saturation_in(st.name) for st in sched.stages)
+            if s_max > 0 and b.ions:
+                rate = max_friction_coefficient(s_max, b.k_rad_per_m) / float(np.min(m[list(b.ions)]))
+                dt = min(dt, LASER_DAMPING_PER_STEP / rate)
     if cfg.run.dt_s is not None:
         dt = cfg.run.dt_s
     plan.dt_s = dt

@@ -293,6 +293,16 @@ def friction_coefficient(s, delta_rad_s, gamma_rad_s, k_rad_per_m):
     return -4.0 * HBAR * k_rad_per_m**2 * s * d / (1.0 + s + 4.0 * d * d) ** 2
 
 
+def max_friction_coefficient(s, k_rad_per_m):
+    """The largest |dF/dv_par| of the force over all Doppler shifts, kg/s:
+    dF/dv = 2 hbar k^2 s x / (1 + s + x^2)^2 with x = 2 (delta - k v) / Gamma
+    is largest at x^2 = (1 + s) / 3, where it is
+    (9 / 8) hbar k^2 s sqrt((1 + s) / 3) / (1 + s)^2. The engine keeps
+    this rate's product with dt small (:data:`mdrotor.engine.LASER_DAMPING_PER_STEP`)."""
+    a = 1.0 + s
+    return 1.125 * HBAR * k_rad_per_m**2 * s * math.sqrt(a / 3.0) / a**2
+
+
 def cooling_rate(s, delta_rad_s, gamma_rad_s, k_rad_per_m, mass_kg):
     """Energy damping rate beta / m (1/s) of a harmonic mode along the beam."""
     return friction_coefficient(s, delta_rad_s, gamma_rad_s, k_rad_per_m) / mass_kg
@@ -440,5 +450,5 @@ def rotor_laser(beams, positions_m, f_rot_hz: float, stage: str | None = None, *
 
 __all__ = ["Beam", "RotorLaser", "PATTERNS", "SAFETY", "emission_tensor", "emission_fraction", "emission_sqrt",
            "saturation_profile", "scattering_rate", "force_n", "friction_coefficient", "cooling_rate",
-           "momentum_diffusion", "doppler_temperature_k", "doppler_minimum_k", "mode_doppler_temperature_k",
+           "max_friction_coefficient", "momentum_diffusion", "doppler_temperature_k", "doppler_minimum_k", "mode_doppler_temperature_k",
            "rotor_laser"]

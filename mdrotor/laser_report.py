@@ -210,8 +210,10 @@ def rotor_lines(beams: list[dict], f_rot_hz: float) -> list[str]:
         why = {"mean drift": f"the mean L drifts by {q:g} quanta",
                "recoil spread": f"the recoil spread of L reaches {q:g} quanta",
                "single photon": f"the first photon (mean wait), which alone moves L by more than {q:g} quanta"}
+        drift = (f"mean drift after {_time(b['time_drift_s'])}" if math.isfinite(b["time_drift_s"])
+                 else "no mean drift")
         lines.append(f"      on for at most {_time(b['time_on_s'])}: {why[b['limited_by']]} "
-                     f"(mean drift after {_time(b['time_drift_s'])}, spread after {_time(b['time_spread_s'])})")
+                     f"({drift}, spread after {_time(b['time_spread_s'])})")
     lines.append(f"  {SAFETY}")
     return lines
 
