@@ -420,30 +420,32 @@ def rotor_laser(beams, positions_m, f_rot_hz: float, stage: str | None = None, *
 
     Each beam acts at its saturation in ``stage`` (None: as configured).
     The trapezoidal grid starts at 64 phases and doubles until torque, rates
-    and D_L change by less than ``rtol`` (relative to their own scale).
+    and D_L change by less than ``rtol`` of their natural scales (for the
+    torque, tau0 = hbar k r_max sum_i R_i, the torque if every photon pushed
+    at the largest lever arm), at most to ``max_phases`` (a beam waist
+    1e-4 of the orbit still settles). A torque below 1e-12 tau0 (the
+    rounding of the sum over phases: a symmetric crystal at rest, a beam
+    along z) is reported as 0.
     """
+    k_max = max((bm.k_rad_per_m for bm in beams), default=0.0)
+    r_max = float(np.max(np.abs(positions_m)))
     p = 64
     prev = None
     while True:
         phi = TWO_PI * np.arange(p) / p
         t, r, d = _turn(beams, positions_m, f_rot_hz, phi, stage)
         cur = (np.mean(t, axis=1), np.mean(r, axis=1), float(np.mean(d)))
+        tau0 = HBAR * k_max * r_max * float(np.sum(cur[1]))
         if prev is not None:
-            scale_t = max(np.max(np.abs(cur[0])), HBAR * max((bm.k_rad_per_m for bm in beams), default=0.0)
-                          * float(np.max(np.abs(positions_m))) * float(np.max(cur[1], initial=0.0)), 1e-300)
-            ok = (np.max(np.abs(cur[0] - prev[0]), initial=0.0) <= rtol * scale_t
-                  and np.max(np.abs(cur[1] - prev[1]), initial=0.0) <= rtol * max(np.max(cur[1], initial=0.0), 1e-300)
-                  and abs(cur[2] - prev[2]) <= rtol * max(cur[2], 1e-300))
-            if ok or p >= max_phases:
+            settled = (np.max(np.abs(cur[0] - prev[0]), initial=0.0) <= rtol * tau0
+                       and np.max(np.abs(cur[1] - prev[1]), initial=0.0) <= rtol * float(np.max(cur[1], initial=0.0))
+                       and abs(cur[2] - prev[2]) <= rtol * cur[2])
+            if settled or p >= max_phases:
                 break
         prev = cur
         p *= 2
-    tb = cur[0]
-    # below the rounding of the sum over phases (1e-12 of hbar k r sum R) a torque is zero:
-    # a symmetric crystal at rest, or a beam along z
-    floor = 1e-12 * HBAR * max((bm.k_rad_per_m for bm in beams), default=0.0) * float(np.max(np.abs(positions_m))) \
-        * float(np.sum(cur[1]))
-    tb = np.where(np.abs(tb) <= floor, 0.0, tb)
+    floor = 1e-12 * tau0
+    tb = np.where(np.abs(cur[0]) <= floor, 0.0, cur[0])
     total = float(np.sum(tb))
     return RotorLaser(total if abs(total) > floor else 0.0, tb, cur[1], cur[2] / HBAR**2, p)
 
