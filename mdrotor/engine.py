@@ -279,7 +279,7 @@ def laser_keys(seed: int, indices) -> np.ndarray:
 def laser_arrays(plan: Plan, stage: str):
     """The kernel's beam arrays (khat, par, centre, vrec, emit) for the beams
     on during ``stage`` (see kernels.advance), or None if none is on."""
-    from .laser import HBAR as _HBAR, emission_sqrt
+    from .laser import emission_sqrt
 
     beams = [b for b in plan.lasers if b.on(stage)]
     if not beams:
@@ -292,7 +292,7 @@ def laser_arrays(plan: Plan, stage: str):
     vrec = np.zeros((len(beams), n))
     for j, b in enumerate(beams):
         idx = np.array(b.ions, dtype=int)
-        vrec[j, idx] = _HBAR * b.k_rad_per_m / plan.masses[idx]
+        vrec[j, idx] = HBAR * b.k_rad_per_m / plan.masses[idx]
     # one square root for absorption (along k) and emission (moments M) together
     emit = np.array([emission_sqrt(np.outer(b.direction, b.direction) + b.emission) for b in beams])
     return khat, par, centre, vrec, emit
