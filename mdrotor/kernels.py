@@ -382,14 +382,18 @@ def _laser_kick(px, py, pz, vx, vy, vz, b0, step, dt, khat, par, centre, vrec, e
             vr = vrec[ll, i]
             if vr == 0.0:
                 continue
-            for b in range(nb):
-                s = s0
-                if iw2 != 0.0:
+            if iw2 != 0.0:  # local saturation of the Gaussian beam (kept in sd_ph for the next pass)
+                for b in range(nb):
                     dx = px[i, b] - cx
                     dy = py[i, b] - cy
                     dz = pz[i, b] - cz
                     a = dx * ux + dy * uy + dz * uz
-                    s = s0 * math.exp(-iw2 * (dx * dx + dy * dy + dz * dz - a * a))
+                    sd_ph[b] = s0 * math.exp(-iw2 * (dx * dx + dy * dy + dz * dz - a * a))
+            else:
+                for b in range(nb):
+                    sd_ph[b] = s0
+            for b in range(nb):
+                s = sd_ph[b]
                 x = a0 - a1 * (ux * vx[i, b] + uy * vy[i, b] + uz * vz[i, b])
                 n = hg * s / (1.0 + s + x * x)
                 n_ph[b] = n
