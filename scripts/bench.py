@@ -559,7 +559,7 @@ def bench_engine(label, raw, n_traj, n_steps, repeats, threads, seed=1) -> dict:
     for r in range(repeats + 1):  # the first call compiles
         noise_state = plan.noise.new_state(seed, idx) if plan.noise is not None else None
         stepper = engine._Stepper(plan, n_traj, auto_chunk(n_traj, threads), phases, noise_state,
-                                  engine.laser_keys(seed, idx) if plan.lasers else None)
+                                  laser_keys=engine.laser_keys(seed, idx) if plan.lasers else None)
         pos, vel = pos0.copy(), vel0.copy()
         t0, c0 = time.perf_counter(), time.process_time()
         stepper.advance(pos, vel, 0, 0.0, plan.stage_dt[0], n_steps if r else 8, noise_step0=0)

@@ -229,7 +229,7 @@ def _setup(d, trajectories, seed=1):
     plan = make_plan(cfg)
     idx = np.arange(trajectories)
     pos, vel = initial_states(plan, seed, idx)
-    return plan, pos, vel, _Stepper(plan, trajectories, 256, None, None, laser_keys(seed, idx))
+    return plan, pos, vel, _Stepper(plan, trajectories, 256, None, None, laser_keys=laser_keys(seed, idx))
 
 
 def _advance(plan, stepper, pos, vel, n_steps):
@@ -401,7 +401,7 @@ def _rotating_pair(direction, trajectories, s=0.1, f_hz=200e3):
     pos = rotate_states(np.repeat(r0.T[:, :, None], trajectories, axis=2), phi)
     vel = rotate_states(np.repeat(v0.T[:, :, None], trajectories, axis=2), phi)
     idx = np.arange(trajectories)
-    return plan, pos, vel, _Stepper(plan, trajectories, 256, None, None, laser_keys(2, idx))
+    return plan, pos, vel, _Stepper(plan, trajectories, 256, None, None, laser_keys=laser_keys(2, idx))
 
 
 def test_rotating_pair_torque_and_recoil_diffusion():
