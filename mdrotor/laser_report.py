@@ -43,7 +43,8 @@ RATE_NODES = 16  # quantiles of the trajectories' rotation rates at which the ri
 def run_block(plan, raw) -> dict:
     """The ``/laser`` group of a run's result (empty if no beam is ever on)."""
     from .laser import SAFETY, doppler_temperature_k, rotor_laser
-    from .stats import OK_MASK, mean_sem
+    from .observables import usable
+    from .stats import mean_sem
 
     beams = plan.lasers
     sched = plan.schedule
@@ -64,9 +65,9 @@ def run_block(plan, raw) -> dict:
         t0, t1 = float(sched.boundaries_s[k]), float(sched.boundaries_s[k + 1])
         after = raw.stages[name]
         before = raw.initial if k == 0 else raw.stages.get(names[k - 1])
-        ok = (after["status"] & OK_MASK) == 0
+        ok = usable(after["status"])
         if before:
-            ok &= (before["status"] & OK_MASK) == 0
+            ok &= usable(before["status"])
         dur = t1 - t0
         ph = after["_laser_photons"][ok] / dur                                         # (T_ok, N)
         ms = [mean_sem(ph[:, i]) for i in range(n)]
@@ -117,14 +118,16 @@ def run_block(plan, raw) -> dict:
     return out
 
 
-def _list(values, scale, fmt="{:.4g}") -> str:
-    return ", ".join(fmt.format(v * scale) for v in np.atleast_1d(values))
-
-
 def run_lines(block: dict) -> list[str]:
-    """The laser block of ``mdrotor run``'s summary."""
+    """The laser block of ``mdrotor run``'s summary (digits by :mod:`mdrotor.numfmt`)."""
+    from .numfmt import plain, value_err
+
     if not block:
         return []
+
+    def row(key, j):
+        return np.atleast_2d(np.asarray(block[key], dtype=float))[j]
+
     lines = ["", "laser beams:"]
     for d in block["beam_description"]:
         lines.append(f"  {d}")
@@ -134,30 +137,29 @@ def run_lines(block: dict) -> list[str]:
         start, end = bool(np.atleast_1d(block["pinned_start"])[j]), bool(np.atleast_1d(block["pinned_end"])[j])
         state = "pinned" if start and end else ("released during the stage" if start else
                                                 ("pinned during the stage" if end else "free rotation"))
-        lim = np.atleast_2d(block["doppler_limit_k"])[j]
-        lines.append(f"  stage '{name}' ({t0 * 1e3:.4g} to {t1 * 1e3:.4g} ms, {int(block['n_trajectories'][j])} "
-                     f"trajectories, ending at {block['f_rot_hz'][j] / 1e3:.4g} kHz on average, {state}):")
-        lim_text = ", ".join(f"'{b}' {t * 1e3:.3g} mK" if math.isfinite(t) else f"'{b}' none (not red detuned)"
-                             for b, t in zip(beam_names, lim) if not (isinstance(t, float) and math.isnan(t)))
+        lines.append(f"  stage '{name}' ({plain(t0 * 1e3, 4)} to {plain(t1 * 1e3, 4)} ms, {int(block['n_trajectories'][j])} "
+                     f"trajectories, ending at {plain(block['f_rot_hz'][j] / 1e3, 4)} kHz on average, {state}):")
+        lim_text = ", ".join(f"'{b}' {plain(t * 1e3, 3)} mK" if math.isfinite(t) else f"'{b}' none (not red detuned)"
+                             for b, t in zip(beam_names, row("doppler_limit_k", j)) if not math.isnan(t))
         lines.append(f"    Doppler limit along each beam on (an ion at rest): {lim_text}")
-        lines.append(f"    scattering per ion (photons/us): run {_list(np.atleast_2d(block['scatter_rate_hz'])[j], 1e-6)}"
-                     f" (+- {_list(np.atleast_2d(block['scatter_rate_err_hz'])[j], 1e-6, '{:.2g}')}); "
-                     f"rigid crystal at the stage-end rates {_list(np.atleast_2d(block['scatter_rate_rigid_hz'])[j], 1e-6)}")
-        drift = f"run {block['L_drift_hbar_per_ms'][j]:.4g} +- {block['L_drift_err_hbar_per_ms'][j]:.2g} hbar/ms"
+        run = ", ".join(value_err(r * 1e-6, e * 1e-6) for r, e in zip(row("scatter_rate_hz", j), row("scatter_rate_err_hz", j)))
+        rigid = ", ".join(plain(r * 1e-6, 4) for r in row("scatter_rate_rigid_hz", j))
+        lines.append(f"    scattering per ion (photons/us): run {run}; rigid crystal at the stage-end rates {rigid}")
+        drift = f"run {value_err(block['L_drift_hbar_per_ms'][j], block['L_drift_err_hbar_per_ms'][j])} hbar/ms"
         if end:
             drift += " (the pinning sets L)"
         tq = float(block["torque_rigid_n_m"][j])
-        lines.append(f"    L drift: {drift}; rigid crystal {block['L_drift_rigid_hbar_per_ms'][j]:.4g} hbar/ms "
-                     f"(torque {tq:.3g} N m), recoil diffusion {block['diffusion_rigid_hbar2_per_s'][j]:.3g} hbar^2/s")
+        lines.append(f"    L drift: {drift}; rigid crystal {plain(block['L_drift_rigid_hbar_per_ms'][j], 4)} hbar/ms "
+                     f"(torque {plain(tq, 3)} N m), recoil diffusion {plain(block['diffusion_rigid_hbar2_per_s'][j], 3)} "
+                     f"hbar^2/s")
         if end and tq != 0.0:
             lines.append(f"    the pinning must hold the beams' torque: |torque| / I = "
-                         f"{abs(tq) / float(block['moment_of_inertia_kg_m2'][j]):.3g} rad/s^2 on top of the schedule's "
-                         f"angular acceleration")
+                         f"{plain(abs(tq) / float(block['moment_of_inertia_kg_m2'][j]), 3)} rad/s^2 on top of the "
+                         f"schedule's angular acceleration")
         labels = str(block["mode_labels"][j]).split(",")
-        temps = np.atleast_2d(block["mode_temperature_k"])[j]
-        errs = np.atleast_2d(block["mode_temperature_err_k"])[j]
-        lines.append("    mode temperatures at the stage end (mK): "
-                     + ", ".join(f"{lab} {t * 1e3:.3g} +- {e * 1e3:.2g}" for lab, t, e in zip(labels, temps, errs)))
+        temps = ", ".join(f"{lab} {value_err(t * 1e3, e * 1e3)}"
+                          for lab, t, e in zip(labels, row("mode_temperature_k", j), row("mode_temperature_err_k", j)))
+        lines.append(f"    mode temperatures at the stage end (mK): {temps}")
     lines.append(f"  {block['caution']}")
     return lines
 
@@ -196,17 +198,18 @@ def rotor_beams(cfg, positions_m, f_rot_hz: float, quanta: float) -> list[dict]:
 def rotor_lines(beams: list[dict], f_rot_hz: float) -> list[str]:
     """The laser block of ``mdrotor rotor``'s text."""
     from .laser import SAFETY
+    from .numfmt import plain
 
     if not beams:
         return []
-    lines = ["", f"  laser beams on the crystal rotating at {f_rot_hz / 1e3:.6g} kHz (rigid, averaged over a turn, "
+    lines = ["", f"  laser beams on the crystal rotating at {plain(f_rot_hz / 1e3, 6)} kHz (rigid, averaged over a turn, "
                  f"each at its configured saturation):"]
     for b in beams:
         q = b["quanta"]
         lines.append(f"    {b['description']}")
-        lines.append(f"      {sum(b['scatter_rate_hz']) * 1e-6:.4g} photons/us; torque {b['torque_n_m']:.3g} N m: L drifts "
-                     f"{b['drift_hbar_per_ms']:.4g} hbar/ms; recoil diffusion {b['diffusion_hbar2_per_s']:.3g} hbar^2/s, "
-                     f"{b['photon_kick_rms_hbar']:.3g} hbar rms per photon")
+        lines.append(f"      {plain(sum(b['scatter_rate_hz']) * 1e-6, 4)} photons/us; torque {plain(b['torque_n_m'], 3)} N m: "
+                     f"L drifts {plain(b['drift_hbar_per_ms'], 4)} hbar/ms; recoil diffusion "
+                     f"{plain(b['diffusion_hbar2_per_s'], 3)} hbar^2/s, {plain(b['photon_kick_rms_hbar'], 3)} hbar rms per photon")
         why = {"mean drift": f"the mean L drifts by {q:g} quanta",
                "recoil spread": f"the recoil spread of L reaches {q:g} quanta",
                "single photon": f"the first photon (mean wait), which alone moves L by more than {q:g} quanta"}
@@ -221,7 +224,9 @@ def rotor_lines(beams: list[dict], f_rot_hz: float) -> list[str]:
 def _time(t: float) -> str:
     if not math.isfinite(t):
         return "never"
+    from .numfmt import plain
+
     for unit, s in (("s", 1.0), ("ms", 1e-3), ("us", 1e-6)):
         if t >= s:
-            return f"{t / s:.4g} {unit}"
-    return f"{t * 1e9:.4g} ns"
+            return f"{plain(t / s, 4)} {unit}"
+    return f"{plain(t * 1e9, 4)} ns"
