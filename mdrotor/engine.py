@@ -664,8 +664,11 @@ def warm_up(plan: Plan, pos: np.ndarray, vel: np.ndarray, rf_phases=None, noise_
     ph = None if rf_phases is None else np.asarray(rf_phases)[:1]
     if plan.lag_n > 0:
         lag_phases(p, plan.masses, plan.charges, plan.lag_n)
-    stepper = _Stepper(plan, 1, 1, ph, noise_state)
-    stepper.advance(p, v, 0, 0.0, plan.stage_dt[0], 1, noise_step0=0 if noise_state is not None else None)
+    # beams: any key will do (their kicks are stateless); their kick runs only with a step index
+    keys = np.zeros(1, dtype=np.uint64) if plan.lasers else None
+    kicks = noise_state is not None or (plan.lasers and plan.noise is None)
+    stepper = _Stepper(plan, 1, 1, ph, noise_state, laser_keys=keys)
+    stepper.advance(p, v, 0, 0.0, plan.stage_dt[0], 1, noise_step0=0 if kicks else None)
     return time.perf_counter() - t0
 
 
