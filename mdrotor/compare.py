@@ -100,7 +100,7 @@ def text(cmp: dict, cfg) -> str:
     lines.append("fractions: Wilson 68 % intervals [lo, hi]; their difference with the pooled two-proportion standard error.")
     lines.append("z = difference / error (errors in quadrature); |z| > 3 is marked. RF phonons and L are measured on the")
     lines.append("secular motion; a constant offset of order q^2 in the stretch-like modes is the Coulomb-micromotion")
-    lines.append("correction to the equilibrium (see README, RF runs).")
+    lines.append("correction to the equilibrium (see docs/rf.md).")
     return "\n".join(lines)
 
 

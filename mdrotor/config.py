@@ -3,8 +3,8 @@
 Every value with a dimension is a string with units ("1.1 MHz", "5 um");
 frequencies are cyclic (Hz). Every problem is reported as one
 :class:`~mdrotor.errors.InputError` naming the file, the dotted key path and
-what was expected. The keys are documented in the README ("Config
-reference"); ``configs/demo.toml`` uses most of them.
+what was expected. The keys are documented in docs/config.md; ``configs/demo.toml`` uses most
+of them.
 """
 
 from __future__ import annotations

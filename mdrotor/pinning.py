@@ -728,7 +728,7 @@ def preflight(plan, *, n_samples: int = 401) -> dict:
 
 
 def preflight_group(pre: dict) -> dict:
-    """The preflight as an HDF5 group of the result (``/preflight``; README's result-file table)."""
+    """The preflight as an HDF5 group of the result (``/preflight``; docs/results.md)."""
     st = pre["stages"]
     return {
         "margin_min": pre["margin_min"], "warnings": "\n".join(pre["warnings"]),

@@ -23,7 +23,7 @@ from scipy import constants as sc
 
 HBAR = sc.hbar
 TWO_PI = 2.0 * np.pi
-# what the allowed-L ladder assumes (printed by the command, stated in the README)
+# what the allowed-L ladder assumes (printed by the command, stated in docs/run.md)
 SPIN_ASSUMPTION = ("identical ions, all in one internal (electronic and nuclear spin) state: only then is a rotation "
                    "by 2 pi / N an exchange of identical particles that restricts L; ions in different internal "
                    "states are distinguishable and every L is allowed")

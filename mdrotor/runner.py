@@ -191,8 +191,8 @@ def resource_estimate(cfg, n_traj: int) -> dict:
     coloured noise, one block of noise samples (``engine.BLOCK_STEPS`` steps
     of the field and of each multipole order, plus a quarter for the draws).
     The file holds the observations at t = 0, at every stage end and again
-    under /final. The peaks measured with tracemalloc (README, "Memory and
-    file size") stay below this estimate by 0 to 40 %.
+    under /final. The peaks measured with tracemalloc (docs/results.md, "Memory
+    and file size") stay below this estimate by 0 to 40 %.
     """
     from .engine import BLOCK_STEPS
 
@@ -492,7 +492,7 @@ def summary_text(res, path=None) -> str:
         mk = 1e3 / KB
         lines.append(f"  time-averaged micromotion kinetic energy: {value_err(mm['ke_measured_j'] * mk, mm['ke_measured_err_j'] * mk)} mK k_B "
                      f"(lowest order {plain(mm['ke_lowest_order_j'] * mk, 4)} mK k_B)")
-        lines.append("  phonons and L are measured on the secular motion (two RF-period averages; see README)")
+        lines.append("  phonons and L are measured on the secular motion (two RF-period averages; see docs/rf.md)")
     return "\n".join(lines)
 
 

@@ -1,4 +1,4 @@
-"""HDF5 storage of results (h5py). The layout is documented in the README.
+"""HDF5 storage of results (h5py). The layout is documented in docs/results.md.
 
 Files are written to a temporary name in the target folder and renamed when
 complete, so an interrupted run never leaves a half file under the final

@@ -1,5 +1,6 @@
 """Shared test fixtures: the configs folder and the small forced-oscillator run."""
 
+import tomllib
 from pathlib import Path
 
 import pytest
@@ -36,6 +37,20 @@ wigner = false
 trajectories = 2
 seed = 1
 """
+
+
+def two_ion_config(**sections) -> dict:
+    """The two-ion base config (FORCED_OSCILLATOR_TOML) as a fresh dict.
+
+    Each keyword replaces that section (``stage=[...]``, ``run={...}``);
+    ``None`` drops it."""
+    d = tomllib.loads(FORCED_OSCILLATOR_TOML)
+    for name, value in sections.items():
+        if value is None:
+            d.pop(name, None)
+        else:
+            d[name] = value
+    return d
 
 
 @pytest.fixture

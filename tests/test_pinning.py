@@ -290,7 +290,7 @@ def test_spinup_beyond_the_held_acceleration_warns(tmp_path, capsys):
     path = _write(tmp_path, raw)
     out = tmp_path / "w.h5"
     # dt = 5 us is ten times the 2 MHz period: Verlet is unstable (w dt > 2), every trajectory
-    # goes non-finite, so the run has no statistics and exits 3 (README), the file written
+    # goes non-finite, so the run has no statistics and exits 3 (docs/run.md), the file written
     d = _cli_json(capsys, ["run", str(path), "--json", "--quiet", "-o", str(out)], status=3)
     w = [x for x in d["preflight"]["warnings"] if "spin-up" in x]
     assert w and "expect slips" in w[0] and "1.767e+09" in w[0]

@@ -1,0 +1,150 @@
+"""The documentation stays true to the code: every config key the code
+accepts is in docs/config.md, and every relative link in README.md,
+DEVELOPERS.md and docs/ resolves (files and #anchors).
+
+The keys are taken from the code itself (``config.SECTIONS``, the noise
+module's key sets) or, where a parser keeps them to itself, from its refusal
+of an unknown key, which lists the keys it allows. A new key therefore
+fails here until it is documented.
+"""
+
+import re
+from pathlib import Path
+
+import pytest
+
+from mdrotor import config, noise
+from mdrotor.errors import InputError
+
+from conftest import ROOT, two_ion_config
+
+DOCS = ROOT / "docs"
+CONFIG_DOC = DOCS / "config.md"
+
+
+def _allowed_from_refusal(raw: dict, bad_key: str) -> set:
+    """The keys a parser allows, read from its refusal of ``bad_key``
+    ("unknown key; expected one of [...]")."""
+    with pytest.raises(InputError) as e:
+        config.from_dict(raw, "t.toml")
+    msg = e.value.line()
+    assert bad_key in msg and "unknown key" in msg, msg
+    listed = msg.split("expected one of", 1)[1]
+    return set(re.findall(r"'([a-z_]+)'", listed))
+
+
+def _documented(text: str, name: str) -> bool:
+    return f"`{name}`" in text
+
+
+def test_every_section_key_is_documented():
+    text = CONFIG_DOC.read_text()
+    missing = []
+    for section, keys in config.SECTIONS.items():
+        if not (f"`[{section}]`" in text or f"`[[{section}]]`" in text):
+            missing.append(f"[{section}]")
+        for k in keys or ():
+            if not _documented(text, f"{section}.{k}"):
+                missing.append(f"{section}.{k}")
+    for k in config.CUSTOM_KEYS:
+        if not _documented(text, f"species.custom.NAME.{k}"):
+            missing.append(f"species.custom.NAME.{k}")
+    assert not missing, f"config keys missing from docs/config.md: {missing}"
+
+
+def test_profile_keys_are_documented():
+    # the schedule's profile parser keeps its keys to itself: read them from its refusal
+    raw = two_ion_config()
+    raw["stage"][0]["f_rot"] = {"to": "2 kHz", "bogus": 1}
+    keys = _allowed_from_refusal(raw, "stage.spin-up.f_rot.bogus")
+    assert {"from", "to", "shape", "points"} <= keys  # the refusal was parsed
+    text = CONFIG_DOC.read_text()
+    profile = text.split("Profile keys", 1)[1].split("\n## ", 1)[0]
+    missing = [k for k in sorted(keys) if not _documented(profile, k)]
+    assert not missing, f"profile keys missing from docs/config.md's profile table: {missing}"
+
+
+def test_noise_keys_are_documented():
+    text = CONFIG_DOC.read_text()
+    missing = []
+    for table, keys in (("field", noise.ENTRY_KEYS), ("multipole", noise.MULTIPOLE_KEYS), ("tone", noise.TONE_KEYS)):
+        if f"`[[noise.{table}]]`" not in text:
+            missing.append(f"[[noise.{table}]]")
+        missing += [f"noise.{table}.{k}" for k in sorted(keys) if not _documented(text, f"noise.{table}.{k}")]
+    terms = text.split("PSD terms", 1)[1].split("`[[noise.tone]]`", 1)[0]
+    for kind, keys in noise.TERM_KEYS.items():
+        if f'`"{kind}"`' not in terms:
+            missing.append(f"kind {kind!r}")
+        missing += [f"psd term key {k!r}" for k in sorted(keys) if not _documented(terms, k)]
+    # the [noise] table's own keys, read from its refusal of an unknown one
+    raw = two_ion_config()
+    raw["noise"] = {"bogus": {}}
+    for k in sorted(_allowed_from_refusal(raw, "noise.bogus")):
+        if f"`[[noise.{k}]]`" not in text:
+            missing.append(f"[[noise.{k}]]")
+    assert not missing, f"noise keys missing from docs/config.md: {missing}"
+
+
+def test_laser_emission_keys_are_documented():
+    raw = two_ion_config()
+    raw["laser"] = [{"detuning": "-11 MHz", "saturation": 0.5, "direction": [1, 0, 0],
+                     "emission": {"pattern": "linear", "axis": [0, 0, 1], "bogus": 1}}]
+    with pytest.raises(InputError) as e:
+        config.from_dict(raw, "t.toml")
+    allowed = set(re.findall(r"'([a-z_]+)'", e.value.line().split("expected", 1)[1]))
+    assert allowed == {"pattern", "axis"}, e.value.line()
+    row = next(line for line in CONFIG_DOC.read_text().splitlines() if line.startswith("| `laser.emission`"))
+    assert all(f"{k} =" in row for k in allowed), row
+
+
+# ---------------------------------------------------------------------------
+# Links
+# ---------------------------------------------------------------------------
+LINK = re.compile(r"!?\[[^\]]*\]\(([^)\s]+)\)")
+FENCE = re.compile(r"^(```|~~~).*?^\1", re.S | re.M)
+
+
+def _slug(heading: str) -> str:
+    """GitHub's anchor of a heading: lower case, punctuation dropped, spaces to hyphens."""
+    s = heading.strip().lower()
+    s = re.sub(r"[^\w\- ]", "", s)
+    return s.replace(" ", "-")
+
+
+def _anchors(md: Path) -> set:
+    text = FENCE.sub("", md.read_text())
+    return {_slug(m.group(1)) for m in re.finditer(r"^#{1,6}\s+(.*)$", text, re.M)}
+
+
+def _markdown_files():
+    return [ROOT / "README.md", ROOT / "DEVELOPERS.md", *sorted(DOCS.glob("*.md"))]
+
+
+def test_slug_rule():
+    # GitHub's anchors as they appear on its pages (common practice, no source)
+    assert _slug("`mdrotor crystal`") == "mdrotor-crystal"
+    assert _slug("On a cluster (Dask; SLURM or PBS via dask-jobqueue)") == "on-a-cluster-dask-slurm-or-pbs-via-dask-jobqueue"
+
+
+@pytest.mark.parametrize("md", _markdown_files(), ids=lambda p: p.relative_to(ROOT).as_posix())
+def test_relative_links_resolve(md):
+    text = FENCE.sub("", md.read_text())
+    bad = []
+    for target in LINK.findall(text):
+        if re.match(r"[a-z]+:", target):  # http:, https:, mailto:
+            continue
+        path, _, anchor = target.partition("#")
+        dest = (md.parent / path).resolve() if path else md
+        if not dest.exists():
+            bad.append(f"{target}: no such file")
+        elif anchor and dest.suffix == ".md" and anchor not in _anchors(dest):
+            bad.append(f"{target}: no heading with anchor #{anchor}")
+    assert not bad, f"{md.name}: broken links {bad}"
+
+
+def test_readme_links_every_docs_page():
+    readme = (ROOT / "README.md").read_text()
+    pages = sorted(p.name for p in DOCS.glob("*.md"))
+    assert pages, "docs/ has no pages"
+    missing = [p for p in pages if f"(docs/{p})" not in readme]
+    assert not missing, f"README.md does not link {missing}"
