@@ -5,6 +5,26 @@ from pathlib import Path
 
 import pytest
 
+# Every tolerance in this suite is relative (DEVELOPERS.md, "Tests"). By
+# default pytest.approx also accepts an absolute difference of 1e-12, which
+# makes a comparison of SI quantities far below 1 (a mass in kg, a moment of
+# inertia in kg m^2, a diffusion constant in J^2 s) pass whatever the value.
+# Here approx is strictly relative (rel = 1e-6 unless given) when a test does
+# not name an absolute tolerance itself; a test that gives `abs` gets exactly
+# what it asks for.
+_pytest_approx = pytest.approx
+
+
+def _relative_approx(expected, rel=None, abs=None, nan_ok=False):
+    if abs is None:
+        abs = 0.0
+        if rel is None:
+            rel = 1e-6
+    return _pytest_approx(expected, rel=rel, abs=abs, nan_ok=nan_ok)
+
+
+pytest.approx = _relative_approx
+
 ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = ROOT / "configs"
 
