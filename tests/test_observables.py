@@ -1,0 +1,88 @@
+"""Observables (mdrotor.observables) of hand-built states of the pinned two-ion crystal,
+against the rigid-rotor angular momentum and the energies of its normal modes."""
+
+import math
+
+import numpy as np
+import pytest
+from scipy import constants as sc
+
+from mdrotor import config, engine
+from mdrotor.observables import Status, observe, usable
+
+from conftest import two_ion_config
+
+W_ROT = 2 * math.pi * 3e3  # a small rigid rotation (rad/s)
+DZ = 20e-9                 # a small common axial displacement (m)
+
+
+@pytest.fixture(scope="module")
+def plan():
+    return engine.make_plan(config.from_dict(two_ion_config(), "pair.toml"))
+
+
+@pytest.fixture(scope="module")
+def observed(plan):
+    r0 = plan.crystal0.positions_m  # (N, 3) equilibrium at t = 0 (lab frame, f_rot = 0)
+    T = 5
+    pos = np.repeat(r0.T[:, :, None], T, axis=2).copy()
+    vel = np.zeros_like(pos)
+    pos[2, :, 1] += DZ                        # 1: both ions displaced along z
+    vel[0, :, 2] = -W_ROT * r0[:, 1]          # 2: turning rigidly at W_ROT
+    vel[1, :, 2] = W_ROT * r0[:, 0]
+    pos[0, 0, 3] = 2 * plan.loss_radius_m     # 3: an ion beyond the loss radius
+    pos[1, 1, 4] = np.nan                     # 4: a non-finite state
+    lag_u = np.full((1, T), plan.lag_u_ref)
+    return observe(plan, pos, vel, 0.0, lag_u)
+
+
+def test_angular_momentum_of_a_rigid_rotation(plan, observed):
+    # L_z = I w with I = sum m (x^2 + y^2) (rigid body, H. Goldstein, Classical Mechanics, ch. 5)
+    r0 = plan.crystal0.positions_m
+    I = float(np.sum(plan.masses * (r0[:, 0] ** 2 + r0[:, 1] ** 2)))
+    assert observed["L_hbar"][2] == pytest.approx(I * W_ROT / sc.hbar, rel=1e-12, abs=0)
+    assert observed["L_com_hbar"][2] == pytest.approx(I * W_ROT / sc.hbar, rel=1e-9, abs=0)
+    assert observed["f_rot_hz"][2] == pytest.approx(W_ROT / (2 * math.pi), rel=1e-9, abs=0)
+    assert observed["L_hbar"][0] == 0.0 and observed["L_hbar"][1] == 0.0
+
+
+def test_phonons_of_the_axial_centre_of_mass_mode(plan, observed):
+    # identical ions: the axial COM mode oscillates at the trap's axial frequency
+    # (D.F.V. James, Appl. Phys. B 66, 181 (1998)); a common displacement dz holds
+    # E = (1/2) (2 m) w_z^2 dz^2, i.e. n = E / (hbar w_z) (classical sampling: no 1/2 subtracted)
+    labels = plan.crystal0.modes.labels
+    k = labels.index("com-z")
+    w_z = 2 * math.pi * 2.9e6
+    assert plan.crystal0.modes.freq_hz[k] == pytest.approx(2.9e6, rel=1e-9, abs=0)
+    m = plan.masses[0]
+    n = 0.5 * 2 * m * w_z**2 * DZ**2 / (sc.hbar * w_z)
+    mode_n = observed["mode_n"]
+    assert mode_n[1, k] == pytest.approx(n, rel=1e-9, abs=0)
+    others = np.delete(mode_n[1], k)
+    assert np.all(np.abs(others) < 1e-9 * n)
+    assert np.all(np.abs(mode_n[0]) < 1e-9)  # the equilibrium holds no phonon
+
+
+def test_a_slow_rigid_turn_is_libration(plan, observed):
+    # two ions of charge Q under Phi = c Re[(x + i y)^2]: U(phi) = 2 Q c r^2 cos(2 phi), I = 2 m r^2, so the
+    # libration is w_lib = sqrt(U'' / I) = 2 sqrt(Q c / m), independent of r (derivation; rigid pair)
+    m, c = plan.masses[0], 2e5
+    w_lib = 2 * math.sqrt(sc.e * c / m)
+    k = plan.crystal0.modes.labels.index("libration")
+    assert plan.crystal0.modes.freq_hz[k] == pytest.approx(w_lib / (2 * math.pi), rel=1e-6, abs=0)
+    # its kinetic energy I w^2 / 2 in quanta of hbar w_lib
+    r0 = plan.crystal0.positions_m
+    I = float(np.sum(plan.masses * (r0[:, 0] ** 2 + r0[:, 1] ** 2)))
+    assert observed["mode_n"][2, k] == pytest.approx(0.5 * I * W_ROT**2 / (sc.hbar * w_lib), rel=1e-6, abs=0)
+
+
+def test_lost_and_nonfinite_are_flagged_and_left_out(observed):
+    status = observed["status"]
+    assert list(status) == [Status.OK, Status.OK, Status.OK, Status.LOST, Status.NONFINITE]
+    assert list(usable(status)) == [True, True, True, False, False]
+    assert np.all(np.isnan(observed["mode_n"][3:]))
+    # a slipped or reordered trajectory still counts; a lost or non-finite one does not
+    assert list(usable([Status.SLIPPED | Status.REORDERED, Status.SLIPPED | Status.LOST])) == [True, False]
+    # the bits as result files describe them
+    assert Status.describe() == "1 slipped, 2 lost ion, 4 reordered, 8 non-finite"
+    assert [int(s) for s in (Status.SLIPPED, Status.LOST, Status.REORDERED, Status.NONFINITE)] == [1, 2, 4, 8]
