@@ -43,6 +43,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument("--force", action="store_true",
                    help="run even when the preflight refuses (a spin-up that the pinning does not hold); same as --set run.force=true")
+    p.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="spread the trajectories over the workers of a running Dask cluster (e.g. tcp://host:8786); "
+                        "bit-identical to a local run (optional dependency: pip install 'mdrotor[cluster]')")
+    p.add_argument("--split", type=int, default=None, metavar="N",
+                   help="with --scheduler: trajectories per chunk sent to a worker (default: about 4 chunks per worker)")
     _add_common(p)
 
     p = sub.add_parser("rotor", help="quantum-rotor quantities, diffusion and coherence of a result or a config")

@@ -89,6 +89,8 @@ class Plan:
     holding0: object = None
     rotor_cdf: tuple | None = None
     lasers: tuple = ()
+    # the free crystal at each lattice frame rate used so far (observables.lattice_node)
+    frame_nodes: dict = field(default_factory=dict)
 
     @property
     def pin_is_multipole(self) -> np.ndarray:
@@ -584,18 +586,22 @@ class RawRun:
     series: list
     wall_s: float
     n_trajectories: int
+    split: int = 0  # trajectories per chunk of a run spread over a cluster (0: one piece)
 
 
 def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, progress=None,
               observe_stages: bool = True, rf_phases: np.ndarray | None = None, noise_state=None,
-              laser_keys: np.ndarray | None = None) -> RawRun:
+              laser_keys: np.ndarray | None = None, series_raw: bool = False) -> RawRun:
     """Run the whole schedule on the given states (modified in place).
 
     ``rf_phases`` (T,): each trajectory's RF phase at t = 0 (RF model only).
     ``noise_state``: from ``plan.noise.new_state(seed, indices)`` when the
     config has noise. ``laser_keys``: from :func:`laser_keys` when it has
     beams; each stage's observation then carries ``_laser_photons`` (T, N),
-    every ion's expected photon count over the stage.
+    every ion's expected photon count over the stage. ``series_raw``: keep
+    each time-series point as the trajectories' own values
+    (:func:`series_values`) instead of their ensemble statistics, for a
+    run split into parts (the statistics are taken on the merged values).
     """
     from .kernels import _wrap, lag_phases
 
@@ -631,7 +637,8 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
             if progress is not None:
                 progress.update(nb * T)
             if every and step0 % every == 0 and n_left > 0:
-                series.append(_series_point(stepper.observe(pos, vel, k, t, dt), t, st.name))
+                obs = stepper.observe(pos, vel, k, t, dt)
+                series.append(series_values(obs, t, st.name) if series_raw else _series_point(obs, t, st.name))
         t = bounds[k + 1]
         if observe_stages or k == len(sched.stages) - 1:
             stages[st.name] = stepper.observe(pos, vel, k, t, dt)
@@ -640,7 +647,8 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
         if plan.lasers:
             stepper.photons[:] = 0.0
         if plan.series_interval_s:
-            series.append(_series_point(stages[st.name], t, st.name))
+            obs = stages[st.name]
+            series.append(series_values(obs, t, st.name) if series_raw else _series_point(obs, t, st.name))
     return RawRun(plan, initial, stages, series, time.perf_counter() - t0, T)
 
 
@@ -659,8 +667,9 @@ def warm_up(plan: Plan, pos: np.ndarray, vel: np.ndarray, rf_phases=None, noise_
     from .kernels import lag_phases
 
     t0 = time.perf_counter()
-    p = np.ascontiguousarray(pos[:, :, :1])
-    v = np.ascontiguousarray(vel[:, :, :1])
+    # copies (ascontiguousarray would hand back the run's own state when T = 1)
+    p = np.array(pos[:, :, :1], order="C", copy=True)
+    v = np.array(vel[:, :, :1], order="C", copy=True)
     ph = None if rf_phases is None else np.asarray(rf_phases)[:1]
     if plan.lag_n > 0:
         lag_phases(p, plan.masses, plan.charges, plan.lag_n)
@@ -810,6 +819,24 @@ def _poly_coefficients(plan: Plan, te: np.ndarray, theta: np.ndarray | None = No
     return terms[0][1].layout.exps, np.ascontiguousarray(coef)
 
 
+SERIES_VALUES = ("L_hbar", "lag_rad", "mode_n", "status")
+
+
+def series_values(obs: dict, t: float, stage: str) -> dict:
+    """What a time-series point needs of each trajectory (its statistics are
+    taken later, :func:`series_point`, on the values of every part of a
+    split run merged in index order)."""
+    out = {k: obs[k] for k in SERIES_VALUES}
+    out.update({"_t_s": t, "_stage": stage, "_mode_labels": list(obs["_modes"].labels)})
+    return out
+
+
+def series_point(values: dict) -> dict:
+    """The ensemble statistics of one time-series point from the
+    trajectories' values (:func:`series_values`)."""
+    return _series_point(values, values["_t_s"], values["_stage"])
+
+
 def _series_point(obs: dict, t: float, stage: str) -> dict:
     from .observables import usable
 
@@ -823,4 +850,4 @@ def _series_point(obs: dict, t: float, stage: str) -> dict:
             "lag_std_rad": float(np.std(lag, ddof=1)) if lag.size > 1 else np.nan,
             "lag_absmax_rad": float(np.max(np.abs(lag))) if lag.size else np.nan,
             "mode_n_mean": np.nanmean(e, axis=0) if e.size else np.full(obs["mode_n"].shape[1], np.nan),
-            "mode_labels": list(obs["_modes"].labels)}
+            "mode_labels": list(obs["_modes"].labels) if "_modes" in obs else list(obs["_mode_labels"])}

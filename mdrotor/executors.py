@@ -10,6 +10,8 @@ outcome as it finishes (in any order) and ``close(abort)``:
   its share of the cores so that the machine is not oversubscribed;
 * :class:`DaskExecutor`: the workers of an existing Dask distributed
   cluster (``--scheduler ADDRESS``; optional dependency ``distributed``).
+  ``mdrotor run --scheduler`` uses its :meth:`DaskExecutor.map` to spread
+  one run's trajectory chunks (:func:`mdrotor.runner.run_chunk`).
 
 A run's result depends only on its config and seed, never on the executor,
 the number of workers or threads, or the order in which runs finish.
@@ -189,16 +191,28 @@ class DaskExecutor:
         self._futs = []
 
     def run(self, tasks):
-        from distributed import as_completed
+        tasks = list(tasks)
+        for _, outcome in self.map(run_task, tasks, [t.name for t in tasks]):
+            yield outcome
 
+    def map(self, fn, items, names=None):
+        """Submit ``fn(item)`` for every item; yield ``(position, result)`` as
+        each finishes (in any order). A worker's exception is raised here;
+        what is still pending is cancelled when the caller stops early."""
         import uuid
 
-        futs = [self.client.submit(run_task, t, pure=False, key=f"mdrotor-{t.name.replace('/', '-')}-{uuid.uuid4().hex}")
-                for t in tasks]
+        from distributed import as_completed
+
+        items = list(items)
+        names = names if names is not None else [str(i) for i in range(len(items))]
+        tag = uuid.uuid4().hex
+        futs = [self.client.submit(fn, it, pure=False, key=f"mdrotor-{str(nm).replace('/', '-')}-{tag}")
+                for it, nm in zip(items, names)]
+        where = {f.key: i for i, f in enumerate(futs)}
         self._futs = futs
         try:
             for f in as_completed(futs):
-                yield f.result()
+                yield where[f.key], f.result()
         finally:
             pending = [f for f in futs if not f.done()]
             if pending:

@@ -22,9 +22,15 @@ At an observation time every trajectory gets:
   While the pinning is on, the frame is the pinning's (w = 2 pi f_rot(t),
   the pinning static in it) and the libration is one of the modes. When it
   is off, each trajectory is measured about the crystal rotating at its own
-  w; equilibria are computed on a grid of w spanning the ensemble (spacing
-  <= 1 kHz, at most 32 nodes) and interpolated linearly, modes taken from
-  the nearest node (their frequencies change by ~1e-4 relative per kHz).
+  w (in the lab frame when w / 2 pi is nearer 0 than W_GRID_HZ / 2); the
+  equilibria come from a fixed lattice of frame rates, the multiples of
+  W_GRID_HZ (1 kHz), computed when first used and kept on the plan
+  (:func:`lattice_node`), interpolated linearly between the two nodes
+  around w, the modes taken from the nearer node (their frequencies change
+  by ~1e-4 relative per kHz). A trajectory's outputs depend on the plan and
+  its own state alone, never on the other trajectories of the run (so runs
+  can be split into chunks and across machines); only the mode table listed
+  with an observation is chosen over the ensemble (:func:`listed_frame`).
 
 Status flags (:class:`Status`, the one owner of the bits): 1 slipped, 2 lost
 ion, 4 reordered, 8 non-finite (0: ok). Trajectories with a lost ion or a
@@ -69,6 +75,7 @@ def usable(status) -> np.ndarray:
     """Mask of the trajectories that enter the statistics: finite and bound
     (no ion lost). ``status``: the integer status array."""
     return (np.asarray(status) & int(EXCLUDED)) == 0
+# spacing of the lattice of frame rates at which free crystals are measured (Hz)
 W_GRID_HZ = 1000.0
 
 
@@ -82,45 +89,121 @@ class ModeFrame:
     pinned: bool
 
 
-def mode_frame(plan, t_s: float, w_traj: np.ndarray, pinned: bool) -> ModeFrame:
-    """Equilibria and modes to measure trajectories at time t."""
-    from .statics import compute_crystal, normal_modes
+def pinned_frame(plan, t_s: float) -> ModeFrame:
+    """The pinning's frame at time t (the schedule's f_rot(t), the pinning
+    static in it): one equilibrium and its modes, the libration among them."""
+    from .statics import compute_crystal
 
     sched = plan.schedule
-    if pinned:
-        f = float(sched.f_rot_hz(t_s)) if sched is not None else plan.f0_hz
-        theta = float(sched.theta_rad(t_s)) if sched is not None else 0.0
-        scales = plan.pin_scales(t_s)
-        pot = plan.potential(f, theta, scales)
-        start = rotate_positions(plan.crystal0.positions_m, theta - plan.theta0)
-        cr = compute_crystal(pot, f, start=start)
-        return ModeFrame(np.array([f]), cr.positions_m[None], [cr.modes], True)
-    ok = np.isfinite(w_traj)
-    wmin, wmax = (np.min(w_traj[ok]), np.max(w_traj[ok])) if np.any(ok) else (0.0, 0.0)
-    if len(plan.masses) == 1 or max(abs(wmin), abs(wmax)) < TWO_PI * W_GRID_HZ:
-        # not rotating (or a single ion): the lab frame, static anisotropy and stray field included
-        cr = compute_crystal(plan.potential(0.0, 0.0, np.zeros(len(plan.pin_orders))), 0.0, start=plan.crystal0.positions_m)
-        return ModeFrame(np.array([0.0]), cr.positions_m[None], [cr.modes], False)
-    # L / I_inst scatters around the rate of the relative equilibrium with
-    # the same L by the thermal stretch of I: widen the grid to cover it
-    pad = 0.03 * max(abs(wmin), abs(wmax)) + TWO_PI * W_GRID_HZ
-    w_lim = 0.98 * plan.omega_radial_min
-    wmin, wmax = max(wmin - pad, -w_lim), min(wmax + pad, w_lim)
-    k = int(np.clip(1 + np.ceil((wmax - wmin) / (TWO_PI * W_GRID_HZ)), 1, 32))
-    fs = np.linspace(wmin, wmax, k) / TWO_PI
-    r_list, modes = [], []
+    f = float(sched.f_rot_hz(t_s)) if sched is not None else plan.f0_hz
+    theta = float(sched.theta_rad(t_s)) if sched is not None else 0.0
+    pot = plan.potential(f, theta, plan.pin_scales(t_s))
+    start = rotate_positions(plan.crystal0.positions_m, theta - plan.theta0)
+    cr = compute_crystal(pot, f, start=start)
+    return ModeFrame(np.array([f]), cr.positions_m[None], [cr.modes], True)
+
+
+def lattice_limit(plan) -> int:
+    """Largest lattice index |j| whose frame rate j W_GRID_HZ is below
+    0.98 of the lowest radial secular frequency (faster crystals fly apart
+    and are flagged lost)."""
+    return int(np.floor(0.98 * plan.omega_radial_min / (TWO_PI * W_GRID_HZ)))
+
+
+def lattice_node(plan, j: int) -> tuple:
+    """The free (unpinned) crystal in the frame rotating at j W_GRID_HZ:
+    ``(f_hz, r_eq (N, 3), modes, I_com)``. Node 0 is the lab frame (static
+    anisotropy and stray field included); every other node is the
+    centrifugally stretched relative equilibrium, relaxed from the t = 0
+    crystal and turned back to its orientation and labels. Each node depends
+    on the plan and j alone; computed when first used, then kept on the plan
+    (``plan.frame_nodes``), so a trajectory's phonon numbers never depend on
+    which other trajectories are measured with it."""
+    from .frame import alignment_angle_of
+    from .statics import compute_crystal, normal_modes
+
+    cache = plan.frame_nodes
+    j = int(j)
+    if j in cache:
+        return cache[j]
+    f = j * W_GRID_HZ
+    zeros = np.zeros(len(plan.pin_orders))
     start = plan.crystal0.positions_m
-    for f in fs:
-        pot = plan.potential(f, 0.0, np.zeros(len(plan.pin_orders)))
+    m = plan.masses
+    if j == 0:
+        cr = compute_crystal(plan.potential(0.0, 0.0, zeros), 0.0, start=start)
+        r, modes = cr.positions_m, cr.modes
+    else:
+        pot = plan.potential(f, 0.0, zeros)
         r = compute_crystal(pot, f, start=start).positions_m
-        # same orientation and labels as the previous node (rotating an
+        # same orientation and labels as the t = 0 crystal (rotating an
         # equilibrium of this rotation-symmetric potential gives another one)
-        phi = alignment_angle((start[:, 0] + 1j * start[:, 1])[:, None], (r[:, 0] + 1j * r[:, 1])[:, None], plan.masses)[0]
-        r = rotate_positions(r, -phi)
-        start = r
-        r_list.append(r)
-        modes.append(normal_modes(replace(pot, omega_frame=TWO_PI * f), r))
-    return ModeFrame(fs, np.array(r_list), modes, False)
+        r = rotate_positions(r, -alignment_angle_of(start, r, m))
+        modes = normal_modes(replace(pot, omega_frame=TWO_PI * f), r)
+    rc = r - np.sum(m[:, None] * r, axis=0) / np.sum(m)
+    i_com = float(np.sum(m * (rc[:, 0] ** 2 + rc[:, 1] ** 2)))
+    cache[j] = (f, r, modes, i_com)
+    return cache[j]
+
+
+def free_rates(plan, lcom: np.ndarray, icom: np.ndarray, good: np.ndarray):
+    """Each free trajectory's own rotation rate and the lattice nodes it is
+    measured between.
+
+    The rate is that of the relative equilibrium with the same L_com,
+    I_eq(w) w = L_com (I_eq(w) w increases with w), interpolated linearly
+    between the two lattice nodes that bracket it; the bracket starts at the
+    instantaneous L_com / I_com and moves one node at a time. Returns
+    ``(w (T,) rad/s, lower node (T,) int)``; trajectories not ``good`` get
+    their instantaneous rate and node 0.
+    """
+    n_traj = len(lcom)
+    w_inst = np.where(icom > 0, lcom / np.where(icom > 0, icom, 1.0), 0.0)
+    w = w_inst.copy()
+    lo = np.zeros(n_traj, dtype=np.int64)
+    jmax = lattice_limit(plan)
+    if jmax < 1:
+        return w, lo
+    wg = TWO_PI * W_GRID_HZ
+
+    def g(j):  # I_eq(w_j) w_j at node j
+        f, _, _, i_com = lattice_node(plan, j)
+        return i_com * TWO_PI * f
+
+    for b in np.nonzero(good)[0]:
+        j = int(np.clip(np.floor(w_inst[b] / wg), -jmax, jmax - 1))
+        for _ in range(2 * jmax):
+            if lcom[b] < g(j) and j > -jmax:
+                j -= 1
+            elif lcom[b] > g(j + 1) and j + 1 < jmax:
+                j += 1
+            else:
+                break
+        g0, g1 = g(j), g(j + 1)
+        x = min(max((lcom[b] - g0) / (g1 - g0), 0.0), 1.0)
+        w[b] = wg * (j + x)
+        lo[b] = j
+    return w, lo
+
+
+def listed_frame(plan, t_s: float, f_rot_hz: np.ndarray, status: np.ndarray) -> tuple:
+    """The modes listed with an observation and their frame: ``(modes,
+    ("rotating", f) or ("lab", 0.0))``. While pinned, the pinning's frame;
+    when free, the lattice node nearest the median rate of the usable
+    trajectories (each trajectory is measured in the frame of its own rate;
+    this only chooses the frequencies shown), node 0 being the lab frame.
+    A choice over the ensemble: made once on the whole run's arrays."""
+    if plan.pinned_at(t_s):
+        fr = pinned_frame(plan, t_s)
+        f = float(fr.f_hz[0])
+        return fr.modes[0], (("rotating", f) if f != 0.0 else ("lab", 0.0))
+    ok = usable(status) & np.isfinite(f_rot_hz)
+    j = 0
+    if len(plan.masses) > 1 and np.any(ok):
+        jmax = lattice_limit(plan)
+        j = int(np.clip(np.rint(np.median(f_rot_hz[ok]) / W_GRID_HZ), -jmax, jmax)) if jmax >= 1 else 0
+    f, _, modes, _ = lattice_node(plan, j)
+    return modes, (("rotating", f) if j != 0 else ("lab", 0.0))
 
 
 def v_rigid_gen(r_eq: np.ndarray, wf: np.ndarray) -> np.ndarray:
@@ -156,7 +239,7 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     w = np.where(icom > 0, lcom / np.where(icom > 0, icom, 1.0), 0.0)
     lost = np.any(safe_pos[0] ** 2 + safe_pos[1] ** 2 + safe_pos[2] ** 2 > plan.loss_radius_m**2, axis=0)
     out = {"L_hbar": lz / HBAR, "L_com_hbar": lcom / HBAR, "f_rot_hz": w / TWO_PI,
-           "lost": lost, "nonfinite": nonfinite}
+           "lost": lost, "nonfinite": nonfinite, "_t_s": t_s}
     # lag and slips (from the kernel's unwrapped phase)
     if plan.lag_n > 0:
         n = plan.lag_n
@@ -173,42 +256,47 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     lost |= np.abs(w) >= 0.98 * plan.omega_radial_min
     out["lost"] = lost
     good = ~nonfinite & ~lost
-    frame = mode_frame(plan, t_s, np.where(good, w, np.nan), pinned)
-    if not pinned and len(frame.f_hz) > 1:  # (a single node is the lab frame or a rigid ensemble)
-        # the crystal's own rate: the relative equilibrium with the same L,
-        # I_eq(w) w = L_com, inverted on the grid (I_eq(w) w increases with w)
-        w_nodes = TWO_PI * frame.f_hz
-        r = frame.r_eq
-        rc = r - np.sum(m[None, :, None] * r, axis=1, keepdims=True) / np.sum(m)
-        i_nodes = np.sum(m[None, :] * (rc[:, :, 0] ** 2 + rc[:, :, 1] ** 2), axis=1)
-        w = np.interp(lcom, i_nodes * w_nodes, w_nodes)
-        out["f_rot_hz"] = w / TWO_PI
-    n_modes = len(frame.modes[0].omega)
-    mode_n = np.full((n_traj, n_modes), np.nan)
     reordered = np.zeros(n_traj, dtype=bool)
     sqm = np.sqrt(m)
     z = safe_pos[0] + 1j * safe_pos[1]
     zc = np.sum(m[:, None] * z, axis=0) / np.sum(m)
+    # each trajectory's frame, from the plan and the trajectory alone: while
+    # pinned the pinning's; when free the lab (own rate nearer 0 than the
+    # first lattice node) or its own rate, the equilibrium interpolated
+    # between the two lattice nodes around it, the modes of the nearer
+    lo_node = np.zeros(n_traj, dtype=np.int64)
+    hi_node = np.zeros(n_traj, dtype=np.int64)
+    weight = np.zeros(n_traj)
     if pinned:
-        node = np.zeros(n_traj, dtype=np.int64)
-        weight = np.zeros(n_traj)
+        frame = pinned_frame(plan, t_s)
+        nodes = {0: (frame.r_eq[0], frame.modes[0])}
         f_frame = np.full(n_traj, frame.f_hz[0])
     else:
-        k = len(frame.f_hz)
-        if k == 1:
-            node = np.zeros(n_traj, dtype=np.int64)
-            weight = np.zeros(n_traj)
-        else:
-            x = (w / TWO_PI - frame.f_hz[0]) / (frame.f_hz[1] - frame.f_hz[0])
-            node = np.clip(np.floor(x).astype(np.int64), 0, k - 2)
-            weight = np.clip(x - node, 0.0, 1.0)
-        f_frame = w / TWO_PI
-        if len(frame.f_hz) == 1 and frame.f_hz[0] == 0.0:
-            f_frame = np.zeros(n_traj)  # lab frame
-    kk = len(frame.f_hz)
-    nxt = np.minimum(node + 1, kk - 1)
-    r_eq = (1 - weight)[:, None, None] * frame.r_eq[node] + weight[:, None, None] * frame.r_eq[nxt]  # (T, N, 3)
-    nearest = np.where(weight > 0.5, nxt, node)
+        f_frame = np.zeros(n_traj)  # the lab frame unless rotating
+        if len(m) > 1 and lattice_limit(plan) >= 1:
+            w, lo = free_rates(plan, lcom, icom, good)
+            out["f_rot_hz"] = w / TWO_PI
+            x = w / (TWO_PI * W_GRID_HZ) - lo
+            rot = good & (np.abs(w) >= 0.5 * TWO_PI * W_GRID_HZ)
+            lo_node = np.where(rot, lo, 0)
+            hi_node = np.where(rot, lo + 1, 0)
+            weight = np.where(rot, np.clip(x, 0.0, 1.0), 0.0)
+            # the lab node (anisotropy, stray field) is not interpolated towards
+            lo_node = np.where(rot & (lo_node == 0), hi_node, lo_node)
+            hi_node = np.where(rot & (hi_node == 0), lo_node, hi_node)
+            f_frame = np.where(rot, w / TWO_PI, 0.0)
+        nodes = {}
+        for j in np.unique(np.r_[lo_node, hi_node, 0]):
+            _, r_j, modes_j, _ = lattice_node(plan, int(j))
+            nodes[int(j)] = (r_j, modes_j)
+    keys = sorted(nodes)
+    stack = np.array([nodes[j][0] for j in keys])
+    r_lo = stack[np.searchsorted(keys, lo_node)]
+    r_hi = stack[np.searchsorted(keys, hi_node)]
+    r_eq = (1 - weight)[:, None, None] * r_lo + weight[:, None, None] * r_hi  # (T, N, 3)
+    nearest = np.where(weight > 0.5, hi_node, lo_node)
+    n_modes = len(nodes[0][1].omega)
+    mode_n = np.full((n_traj, n_modes), np.nan)
     z_eq = (r_eq[:, :, 0] + 1j * r_eq[:, :, 1]).T  # (N, T)
     z_eq_c = z_eq - np.sum(m[:, None] * z_eq, axis=0) / np.sum(m)
     phi = alignment_angle(z_eq_c, z - zc, m)
@@ -250,10 +338,10 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
                                 + (phi - phi_well)[:, None, None] * v_rigid_gen(r_eq, wf))
     dxi = dxi.reshape(n_traj, -1)
     dpi = dpi.reshape(n_traj, -1)
-    for kn in range(kk):
+    for kn in np.unique(nearest[good]):
         sel = good & (nearest == kn)
         if np.any(sel):
-            md = frame.modes[kn]
+            md = nodes[int(kn)][1]
             qn, pn = md.normal_coordinates(dxi[sel], dpi[sel])
             if window_s:
                 x = md.omega * window_s
@@ -268,11 +356,11 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     status |= np.where(reordered, int(Status.REORDERED), 0)
     status |= np.where(nonfinite, int(Status.NONFINITE), 0)
     out["status"] = status
-    mid = len(frame.modes) // 2
-    out["_modes"] = frame.modes[mid]
-    # the frame of the listed modes: the pinning's (or the middle node of the
-    # trajectories' own rates when free), or the lab frame when nothing rotates
-    f_listed = float(frame.f_hz[mid])
-    out["_frame"] = ("rotating", f_listed) if f_listed != 0.0 else ("lab", 0.0)
+    if pinned:
+        f_listed = float(frame.f_hz[0])
+        out["_modes"] = frame.modes[0]
+        out["_frame"] = ("rotating", f_listed) if f_listed != 0.0 else ("lab", 0.0)
+    else:
+        out["_modes"], out["_frame"] = listed_frame(plan, t_s, out["f_rot_hz"], status)
     return out
 

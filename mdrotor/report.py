@@ -668,7 +668,8 @@ def _frame_of(res, obs) -> tuple[str, float]:
 # -- stand-in until every result states its mode frame ----------------------
 # Results written before the mode frame was stored (attributes ``frame`` and
 # ``frame_f_rot_hz`` on the modes groups) get it derived here, following the
-# rule of mdrotor.observables.mode_frame. Remove this helper once no such file
+# rule observables.mode_frame followed when they were written (free crystals in
+# the lab below W_GRID_HZ over the whole ensemble). Remove this helper once no such file
 # is to be read (the results module then owns the frame alone).
 def _frame_from_schedule(res, obs) -> tuple[str, float]:
     """Frame of an observation without stored frame attributes: while the

@@ -6,6 +6,7 @@ import datetime as _dt
 import json
 import sys
 import time
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -21,7 +22,8 @@ NO_STATISTICS = "none: no trajectory is finite and bound at the end"
 
 
 def run(cfg, *, trajectories: int | None = None, seed: int | None = None, threads: int | None = None,
-        chunk: int | None = None, progress: bool = False, order: np.ndarray | None = None):
+        chunk: int | None = None, progress: bool = False, order: np.ndarray | None = None,
+        scheduler=None, split: int | None = None):
     """Monte-Carlo spin-up / release run.
 
     Parameters
@@ -33,6 +35,15 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
     order : array of int, optional
         Trajectory indices to run, in this order (default 0..T-1). Each
         trajectory's result depends only on (seed, index).
+    scheduler : str or mdrotor.executors.DaskExecutor, optional
+        Address of a running Dask scheduler (or an executor connected to
+        one): the trajectories are integrated there in chunks of ``split``
+        consecutive indices (:func:`run_chunk`) and merged in index order.
+        The result is bit-identical to a local run of the same config and
+        seed.
+    split : int, optional
+        Trajectories per chunk of a run spread over a cluster (default
+        about four chunks per worker).
 
     Returns
     -------
@@ -44,7 +55,7 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         Before any work, when the run's per-trajectory arrays would not fit
         in the memory available (:func:`resource_estimate`).
     """
-    from .engine import initial_states, integrate, laser_keys, make_plan
+    from .engine import make_plan
     from .result import Result, observation_from_raw
 
     opts = cfg.run
@@ -55,33 +66,24 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
     threads = threads if threads is not None else opts.threads
     _set_threads(threads)
     chunk = int(chunk if chunk is not None else opts.chunk)
-    if chunk == 0:  # auto: about four work items per thread; results do not depend on it
-        chunk = int(np.clip(n_traj // (4 * _get_threads()), 32, 256))
     plan = make_plan(cfg)
     pre = _preflight(plan)
-    idx = np.arange(n_traj) if order is None else np.asarray(order)
-    pos, vel = initial_states(plan, seed, idx)
-    phases = plan.rf_phases(seed, idx) if plan.rf else None
-    compile_s = _warm_up(plan, pos, vel, seed, idx, phases)
-    noise_state = plan.noise.new_state(seed, idx) if plan.noise is not None else None
-    bar = None
-    if progress:
-        from tqdm import tqdm
-
-        bar = tqdm(total=plan.n_steps * len(idx), unit="traj-step", unit_scale=True, file=sys.stderr,
-                   desc="mdrotor run", leave=False)
-    try:
-        raw = integrate(plan, pos, vel, chunk=chunk, progress=bar, rf_phases=phases, noise_state=noise_state,
-                        laser_keys=laser_keys(seed, idx) if plan.lasers else None)
-    finally:
-        if bar is not None:
-            bar.close()
-    if order is not None:  # back to index order
-        inv = np.argsort(idx)
-        for obs in [raw.initial, *raw.stages.values()]:
-            for k, v in obs.items():
-                if isinstance(v, np.ndarray) and v.shape[:1] == (len(idx),):
-                    obs[k] = v[inv]
+    if scheduler is not None:
+        if order is not None:
+            raise ValueError("a run spread over a cluster runs the trajectories in index order")
+        raw, compile_s, n_workers = _run_split(cfg, plan, seed, n_traj, scheduler, split, chunk, progress)
+    else:
+        if chunk == 0:  # auto: about four work items per thread; results do not depend on it
+            chunk = auto_chunk(n_traj, _get_threads())
+        idx = np.arange(n_traj) if order is None else np.asarray(order)
+        raw, compile_s = _integrate_indices(plan, seed, idx, chunk, progress)
+        n_workers = 0
+        if order is not None:  # back to index order
+            inv = np.argsort(idx)
+            for obs in [raw.initial, *raw.stages.values()]:
+                for k, v in obs.items():
+                    if isinstance(v, np.ndarray) and v.shape[:1] == (len(idx),):
+                        obs[k] = v[inv]
     sched = cfg.schedule
     bounds = sched.boundaries_s
     stages = {name: observation_from_raw(name, float(bounds[i + 1]), obs)
@@ -112,6 +114,9 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         "preflight_margin_min": pre["margin_min"],
         "preflight_warnings": "\n".join(pre["warnings"]),
     }
+    if n_workers:  # spread over a Dask cluster: the parts' sizes (results do not depend on them)
+        attrs["dask_workers"] = n_workers
+        attrs["split_trajectories"] = int(raw.split)
     # the file is marked when no statistics could be made (the CLI exits 3)
     attrs["statistics"] = "ok" if stages[sched.stages[-1].name].summary["n_ok"] > 0 else NO_STATISTICS
     if raw.wall_s > 0:
@@ -146,6 +151,169 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         if block:
             extra["laser"] = block
     return Result(attrs, initial, stages, series, schedule, extra)
+
+
+def auto_chunk(n_traj: int, threads: int) -> int:
+    """The kernel's trajectories per work item: about four per thread (32 to
+    256); results do not depend on it."""
+    return int(np.clip(n_traj // (4 * threads), 32, 256))
+
+
+def _integrate_indices(plan, seed: int, idx: np.ndarray, chunk: int, progress: bool, series_raw: bool = False):
+    """Initial states and the whole schedule for trajectories ``idx`` (in
+    this process): ``(RawRun, seconds spent compiling the kernels)``."""
+    from .engine import initial_states, integrate, laser_keys
+
+    pos, vel = initial_states(plan, seed, idx)
+    phases = plan.rf_phases(seed, idx) if plan.rf else None
+    compile_s = _warm_up(plan, pos, vel, seed, idx, phases)
+    noise_state = plan.noise.new_state(seed, idx) if plan.noise is not None else None
+    bar = None
+    if progress:
+        from tqdm import tqdm
+
+        bar = tqdm(total=plan.n_steps * len(idx), unit="traj-step", unit_scale=True, file=sys.stderr,
+                   desc="mdrotor run", leave=False)
+    try:
+        raw = integrate(plan, pos, vel, chunk=chunk, progress=bar, rf_phases=phases, noise_state=noise_state,
+                        laser_keys=laser_keys(seed, idx) if plan.lasers else None, series_raw=series_raw)
+    finally:
+        if bar is not None:
+            bar.close()
+    return raw, compile_s
+
+
+# ---------------------------------------------------------------------------
+# one run in chunks of trajectories (a Dask cluster)
+# ---------------------------------------------------------------------------
+CHUNKS_PER_WORKER = 4
+_PLANS: dict = {}  # a worker's plans, by config (each chunk of a run needs the same one)
+
+
+@dataclass
+class Chunk:
+    """Trajectories ``start`` .. ``stop - 1`` of a run of ``cfg`` with ``seed``;
+    ``kernel_chunk``: the kernel's work item (0: automatic)."""
+
+    cfg: object
+    seed: int
+    start: int
+    stop: int
+    kernel_chunk: int = 0
+
+
+def _plan_for(cfg):
+    import hashlib
+    import pickle
+
+    from .engine import make_plan
+
+    key = hashlib.sha256(pickle.dumps(cfg)).hexdigest()
+    if key not in _PLANS:
+        _PLANS.clear()  # one run at a time
+        _PLANS[key] = make_plan(cfg)
+    return _PLANS[key]
+
+
+def run_chunk(task: Chunk) -> dict:
+    """Integrate one chunk of a run (in whichever process or cluster worker
+    it lands): the trajectories' own values at every observation and series
+    point, without any statistic over them (those are taken once the chunks
+    are merged, :func:`merge_chunks`). The worker's plan is made once per
+    config and reused for its next chunks."""
+    from .executors import _DASK_LOCK, _dask_worker_threads
+
+    with _DASK_LOCK:
+        threads = _dask_worker_threads()
+        if threads is not None:
+            _set_threads(threads)
+        plan = _plan_for(task.cfg)
+        idx = np.arange(task.start, task.stop)
+        chunk = task.kernel_chunk or auto_chunk(len(idx), _get_threads())
+        raw, compile_s = _integrate_indices(plan, task.seed, idx, chunk, False, series_raw=True)
+    keep = lambda obs: {k: v for k, v in obs.items() if k not in ("_modes", "_frame")}  # noqa: E731
+    return {"start": task.start, "stop": task.stop, "initial": keep(raw.initial),
+            "stages": {k: keep(v) for k, v in raw.stages.items()}, "series": raw.series,
+            "wall_s": raw.wall_s, "compile_s": compile_s}
+
+
+def _merge_obs(plan, parts: list) -> dict:
+    """One observation from its chunks (in index order): every per-trajectory
+    array joined; the listed modes and their frame chosen on the whole
+    (:func:`mdrotor.observables.listed_frame`)."""
+    from .observables import listed_frame
+
+    if not parts[0]:
+        return {}
+    out = {k: (np.concatenate([p[k] for p in parts]) if isinstance(v, np.ndarray) else v)
+           for k, v in parts[0].items()}
+    if "f_rot_hz" in out:
+        out["_modes"], out["_frame"] = listed_frame(plan, out["_t_s"], out["f_rot_hz"], out["status"])
+    return out
+
+
+def merge_chunks(plan, parts: list, n_traj: int):
+    """The RawRun of a whole run from its chunks' outputs (:func:`run_chunk`),
+    in index order; refuses chunks that do not cover 0 .. n_traj - 1 once."""
+    from .engine import RawRun, series_point
+
+    parts = sorted(parts, key=lambda p: p["start"])
+    if [p["start"] for p in parts] != [0] + [p["stop"] for p in parts[:-1]] or parts[-1]["stop"] != n_traj:
+        raise RuntimeError("the chunks of a split run do not cover its trajectories exactly once")
+    initial = _merge_obs(plan, [p["initial"] for p in parts])
+    stages = {name: _merge_obs(plan, [p["stages"][name] for p in parts]) for name in parts[0]["stages"]}
+    series = []
+    for j, first in enumerate(parts[0]["series"]):
+        vals = {k: (np.concatenate([p["series"][j][k] for p in parts]) if isinstance(v, np.ndarray) else v)
+                for k, v in first.items()}
+        series.append(series_point(vals))
+    return RawRun(plan, initial, stages, series, 0.0, n_traj)
+
+
+def split_ranges(n_traj: int, size: int) -> list:
+    """Consecutive index ranges [start, stop) of at most ``size`` trajectories."""
+    size = max(1, int(size))
+    return [(a, min(a + size, n_traj)) for a in range(0, n_traj, size)]
+
+
+def _run_split(cfg, plan, seed: int, n_traj: int, scheduler, split, kernel_chunk: int, progress: bool):
+    """Spread the run's trajectories over a Dask cluster in chunks and merge
+    them: ``(RawRun, largest compile time of a chunk, number of workers)``."""
+    from .errors import InputError
+    from .executors import DaskExecutor
+
+    own = isinstance(scheduler, str)
+    ex = DaskExecutor(scheduler) if own else scheduler
+    try:
+        workers = max(1, ex.workers)
+        if split is not None and split < 1:
+            raise InputError("--split", f"expected a positive number of trajectories per chunk, got {split}", "command line")
+        size = int(split) if split else max(1, -(-n_traj // (CHUNKS_PER_WORKER * workers)))
+        ranges = split_ranges(n_traj, size)
+        tasks = [Chunk(cfg, seed, a, b, kernel_chunk) for a, b in ranges]
+        bar = None
+        if progress:
+            from tqdm import tqdm
+
+            bar = tqdm(total=n_traj, unit="traj", file=sys.stderr, desc=f"mdrotor run ({workers} Dask workers)", leave=False)
+        t0 = time.perf_counter()
+        parts = []
+        try:
+            for _, out in ex.map(run_chunk, tasks, [f"chunk-{a}-{b}" for a, b in ranges]):
+                parts.append(out)
+                if bar is not None:
+                    bar.update(out["stop"] - out["start"])
+        finally:
+            if bar is not None:
+                bar.close()
+        wall = time.perf_counter() - t0
+    finally:
+        if own:
+            ex.close()
+    raw = merge_chunks(plan, parts, n_traj)
+    raw.wall_s = wall
+    raw.split = size
+    return raw, max(p["compile_s"] for p in parts), workers
 
 
 def _preflight(plan) -> dict:
@@ -555,6 +723,8 @@ def cli_run(args) -> int:
     cfg = load_config(args.config, ov)
     if args.trajectories is not None and args.trajectories < 1:
         raise InputError("--trajectories", "expected a positive number of trajectories", "command line")
+    if getattr(args, "split", None) is not None and (args.split < 1 or not getattr(args, "scheduler", None)):
+        raise InputError("--split", "expected a positive number of trajectories per chunk, with --scheduler", "command line")
     if args.seed is not None and not 0 <= args.seed < 2**64:
         raise InputError("--seed", "expected a seed in [0, 2^64)", "command line")
     out = Path(args.output) if args.output else Path(Path(args.config).stem + ".h5")
@@ -565,7 +735,17 @@ def cli_run(args) -> int:
     check_disk(cfg, n_traj, out)
     show = not args.quiet and sys.stderr.isatty()
     t0 = time.perf_counter()
-    res = run(cfg, trajectories=args.trajectories, seed=args.seed, threads=args.threads, progress=show)
+    scheduler = getattr(args, "scheduler", None)
+    if scheduler:
+        from .executors import DaskExecutor
+
+        scheduler = DaskExecutor(scheduler)  # reached (or refused) before any work
+    try:
+        res = run(cfg, trajectories=args.trajectories, seed=args.seed, threads=args.threads, progress=show,
+                  scheduler=scheduler, split=getattr(args, "split", None))
+    finally:
+        if scheduler:
+            scheduler.close()
     if res.attrs.get("notes"):
         print(f"mdrotor: warning: {res.attrs['notes']}", file=sys.stderr)
     for w in str(res.attrs.get("preflight_warnings", "")).split("\n"):

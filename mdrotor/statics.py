@@ -351,7 +351,19 @@ class Modes:
         eqx, eqp = self.e_q[:, :n3], self.e_q[:, n3:]
         epx, epp = self.e_p[:, :n3], self.e_p[:, n3:]
         # Q = zeta^T J e_P = xi . epp - pi . epx ; P = -(xi . eqp - pi . eqx)
+        if dxi.ndim == 2:  # per trajectory, whatever the batch (rows_dot)
+            return (rows_dot(dxi, epp.T) - rows_dot(dpi, epx.T), -(rows_dot(dxi, eqp.T) - rows_dot(dpi, eqx.T)))
         return dxi @ epp.T - dpi @ epx.T, -(dxi @ eqp.T - dpi @ eqx.T)
+
+
+def rows_dot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """a (T, K) @ b (K, M), each row summed over K in the same order whatever
+    T, so that a trajectory's numbers do not depend on how many are measured
+    with it (a BLAS product may split the sum differently for another T)."""
+    out = a[:, :1] * b[:1, :]
+    for k in range(1, a.shape[1]):
+        out += a[:, k:k + 1] * b[k:k + 1, :]
+    return out
 
 
 def normal_modes(pot: Potential, r0: np.ndarray, *, zero_tol: float = 1e-6) -> Modes:

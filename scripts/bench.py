@@ -25,6 +25,10 @@ What is measured, all in one run:
    hbar) and released, libration nbar = 3; process CPU time of building
    the model and propagating it, against one minute on one core.
 7. The targets: met or missed, with the ratio.
+8. One run spread over a local Dask cluster of 2 single-threaded workers
+   (``mdrotor run --scheduler``) against the same run on 2 threads in one
+   process, and the overhead of one chunk (``--dask-only`` for this alone;
+   skipped without the optional ``distributed``).
 
 Usage::
 
@@ -717,6 +721,80 @@ def machine_info() -> dict:
             "loadavg_start": os.getloadavg()}
 
 
+def dask_case() -> dict:
+    """The demo crystal (2 x 40Ca+, quadrupole pinning) spun up to 100 kHz
+    and released: the run that the Dask split is timed on."""
+    with open(ROOT / "configs" / "demo.toml", "rb") as fh:
+        raw = tomllib.load(fh)
+    raw["stage"] = [{"name": "spin-up", "duration": "40 us", "f_rot": {"to": "100 kHz", "shape": "smoothstep"}},
+                    {"name": "release", "duration": "20 us", "pinning": {"to": 0.0, "shape": "cosine"}}]
+    raw.pop("observe", None)
+    return raw
+
+
+def bench_dask(n_traj: int, repeats: int) -> dict:
+    """One run spread over a local Dask cluster of 2 single-threaded worker
+    processes (``mdrotor.run(cfg, scheduler=...)``) against the same run in
+    this process on 2 threads (``--threads 2``), and the overhead of a chunk:
+    many chunks of one trajectory over a 1-step schedule, wall time x
+    workers / chunks (task round trip, initial state, observations, merge)."""
+    from distributed import LocalCluster
+
+    from mdrotor.config import from_dict
+
+    cfg = from_dict(dask_case(), "dask case", base_dir=ROOT / "configs")
+    tiny_raw = dask_case()
+    tiny_raw["stage"] = [{"name": "hold", "duration": "5 ns"}]
+    tiny = from_dict(tiny_raw, "one step", base_dir=ROOT / "configs")
+    out = {"case": "demo crystal, spin-up to 100 kHz (40 us) and release (20 us)", "trajectories": n_traj}
+    best_local = math.inf
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        res = mdrotor.run(cfg, trajectories=n_traj, threads=2)
+        best_local = min(best_local, time.perf_counter() - t0)
+        out["steps"] = int(res.attrs["n_steps"])
+        out["local_loop_s"] = min(out.get("local_loop_s", math.inf), float(res.attrs["wall_s"]))
+    out["local_total_s"] = best_local
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+        addr = cluster.scheduler_address
+        mdrotor.run(cfg, trajectories=8, scheduler=addr, split=2)   # compile and cache the plan on both workers
+        mdrotor.run(tiny, trajectories=8, scheduler=addr, split=1)
+        best_split, best_loop = math.inf, math.inf
+        for _ in range(repeats):
+            t0 = time.perf_counter()
+            res = mdrotor.run(cfg, trajectories=n_traj, scheduler=addr)
+            best_split = min(best_split, time.perf_counter() - t0)
+            best_loop = min(best_loop, float(res.attrs["wall_s"]))
+            out["chunks"] = -(-n_traj // int(res.attrs["split_trajectories"]))
+        n_chunks = 64
+        best_tiny = math.inf
+        for _ in range(repeats):
+            res = mdrotor.run(tiny, trajectories=n_chunks, scheduler=addr, split=1)
+            best_tiny = min(best_tiny, float(res.attrs["wall_s"]))
+    out["dask_total_s"] = best_split
+    out["dask_loop_s"] = best_loop
+    out["local_rate"] = n_traj * out["steps"] / out["local_loop_s"]
+    out["dask_rate"] = n_traj * out["steps"] / out["dask_loop_s"]
+    out["dask_over_local"] = out["dask_rate"] / out["local_rate"]
+    out["chunk_overhead_s"] = best_tiny * 2 / n_chunks
+    return out
+
+
+def dask_markdown(d: dict) -> str:
+    return "\n".join([
+        f"One run across a local Dask cluster ({d['case']}; {d['trajectories']} trajectories x {d['steps']} steps):",
+        "",
+        "| | wall of the integration | trajectory-steps/s | whole call |",
+        "|---|---|---|---|",
+        f"| this process, 2 threads | {g3(d['local_loop_s'])} s | {g3(d['local_rate'])} | {g3(d['local_total_s'])} s |",
+        f"| 2 Dask workers x 1 thread, {d['chunks']} chunks | {g3(d['dask_loop_s'])} s | {g3(d['dask_rate'])} "
+        f"({d['dask_over_local']:.2f}x) | {g3(d['dask_total_s'])} s |",
+        "",
+        f"Overhead per chunk (64 chunks of one trajectory and one step, wall x 2 workers / chunks): "
+        f"{d['chunk_overhead_s'] * 1e3:.3g} ms.",
+    ])
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0],
                                  formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -724,6 +802,8 @@ def main(argv=None) -> int:
     ap.add_argument("--json", action="store_true", help="one JSON object on stdout (the table goes to stderr)")
     ap.add_argument("--out", metavar="FILE.json", help="also write the JSON object to this file")
     ap.add_argument("--engine-only", action="store_true", help="only the whole-engine table (noise, lasers, RF)")
+    ap.add_argument("--dask-only", action="store_true",
+                    help="only one run spread over a local 2-worker Dask cluster against --threads 2")
     ap.add_argument("--memory-child", nargs=3, metavar=("STEPS", "TRAJ", "DT_S"), help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
 
@@ -747,6 +827,14 @@ def main(argv=None) -> int:
     result = {"machine": machine_info(), "settings": {k: (list(v) if isinstance(v, tuple) else v)
                                                       for k, v in sizes.items()},
               "kernel": [], "numpy": [], "solve_ivp": [], "memory": []}
+    if args.dask_only:
+        result["dask"] = bench_dask(512 if args.quick else 4096, 1 if args.quick else 3)
+        result["wall_s"] = time.perf_counter() - t_start
+        result["machine"]["loadavg_end"] = os.getloadavg()
+        print(dask_markdown(result["dask"]))
+        if args.out:
+            Path(args.out).write_text(json.dumps(result, indent=1, default=float) + "\n")
+        return 0
     if args.engine_only:
         result["engine"] = []
         for label, raw in engine_cases():
@@ -800,11 +888,20 @@ def main(argv=None) -> int:
     log(f"    {result['quantum']['cpu_s']:.3g} s CPU")
     log("memory (subprocesses)")
     result["memory"] = bench_memory(sizes["mem_steps"], sizes["mem_traj"], demo_dt)
+    try:
+        import distributed  # noqa: F401  (the optional cluster extra)
+    except ImportError:
+        log("Dask split: skipped (distributed is not installed)")
+    else:
+        log("Dask split (a local cluster of 2 workers)")
+        result["dask"] = bench_dask(512 if args.quick else 4096, 1 if args.quick else 3)
     result["targets"] = targets(result)
     result["wall_s"] = time.perf_counter() - t_start
     result["machine"]["loadavg_end"] = os.getloadavg()
     result["machine"]["threading_layer"] = numba.threading_layer()
     table = markdown(result)
+    if "dask" in result:
+        table += "\n\n" + dask_markdown(result["dask"])
     text = json.dumps(result, indent=1, default=float)
     if args.out:
         Path(args.out).write_text(text + "\n")

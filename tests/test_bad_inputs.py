@@ -250,6 +250,11 @@ BAD = [
      ["electrodes", "l.toml", "--config", "c.toml", "--waveform", "w.csv", "--rate", "inf MHz"], "--rate", "finite"),
     ("inf --f-rot", {"c.toml": GOOD}, ["crystal", "c.toml", "--f-rot", "inf kHz"], "--f-rot", "finite"),
     ("nan --diffusion", {"c.toml": GOOD}, ["rotor", "c.toml", "--diffusion", "nan"], "--diffusion", "finite"),
+    ("run --split without --scheduler", {"c.toml": GOOD}, RUN + ["--split", "2"], "--split", "with --scheduler"),
+    ("run --split 0", {"c.toml": GOOD}, RUN + ["--split", "0", "--scheduler", "tcp://127.0.0.1:1"], "--split",
+     "positive number"),
+    ("run with no scheduler at the address", {"c.toml": GOOD}, RUN + ["--scheduler", "tcp://127.0.0.1:1"], "--scheduler",
+     "cannot reach a Dask scheduler"),
     ("compare-trap --set inf", {"c.toml": DRIVEN}, ["compare-trap", "c.toml", "--quiet", "--set",
                                                    "initial.temperature='inf mK'"], "initial.temperature", "finite"),
 ]
