@@ -1,5 +1,6 @@
 """Shared test fixtures: the configs folder and the small forced-oscillator run."""
 
+import copy
 import tomllib
 from pathlib import Path
 
@@ -60,17 +61,59 @@ seed = 1
 
 
 def two_ion_config(**sections) -> dict:
-    """The two-ion base config (FORCED_OSCILLATOR_TOML) as a fresh dict.
+    """The two-ion base config (FORCED_OSCILLATOR_TOML) as a fresh dict: the
+    one factory for the tests' two 40Ca+ ions in the 1.2 / 2.9 MHz trap.
 
-    Each keyword replaces that section (``stage=[...]``, ``run={...}``);
-    ``None`` drops it."""
+    Each keyword replaces that whole section (``stage=[...]``, ``run={...}``,
+    ``trap={...}``) or adds it (``rotation``, ``noise``, ``laser``);
+    ``None`` drops it (``pinning=None``: no pinning)."""
     d = tomllib.loads(FORCED_OSCILLATOR_TOML)
     for name, value in sections.items():
         if value is None:
             d.pop(name, None)
         else:
-            d[name] = value
+            d[name] = copy.deepcopy(value)
     return d
+
+
+def two_ion_toml(**sections) -> str:
+    """:func:`two_ion_config` as TOML text, for the command-line tests."""
+    return toml_text(two_ion_config(**sections))
+
+
+def _toml_value(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (int, float)):
+        return repr(v)
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{ " + ", ".join(f"{_toml_key(k)} = {_toml_value(x)}" for k, x in v.items()) + " }"
+    raise TypeError(f"no TOML form for {v!r}")
+
+
+def _toml_key(k: str) -> str:
+    return k if k.replace("_", "").replace("-", "").isalnum() else _toml_value(k)
+
+
+def toml_text(d: dict) -> str:
+    """A config dict as TOML: tables as [section], arrays of tables as
+    [[section]], anything nested inside them inline."""
+    out = [f"{_toml_key(k)} = {_toml_value(v)}" for k, v in d.items() if not isinstance(v, (dict, list))]
+    for k, v in d.items():
+        if isinstance(v, dict):
+            out.append(f"[{_toml_key(k)}]")
+            out += [f"{_toml_key(kk)} = {_toml_value(vv)}" for kk, vv in v.items()]
+        elif isinstance(v, list) and v and all(isinstance(x, dict) for x in v):
+            for item in v:
+                out.append(f"[[{_toml_key(k)}]]")
+                out += [f"{_toml_key(kk)} = {_toml_value(vv)}" for kk, vv in item.items()]
+        elif isinstance(v, list):
+            out.insert(0, f"{_toml_key(k)} = {_toml_value(v)}")
+    return "\n".join(out) + "\n"
 
 
 @pytest.fixture

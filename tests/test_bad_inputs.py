@@ -20,31 +20,13 @@ import pytest
 
 from mdrotor.cli import main
 
-GOOD = """
-[species]
-ion = "40Ca+"
-[crystal]
-ions = 2
-[trap]
-f_radial = "1.0 MHz"
-f_axial = "2.5 MHz"
-[pinning]
-order = 2
-strength = "5e4 V/m^2"
-[[stage]]
-name = "spin-up"
-duration = "1 ms"
-f_rot = { to = "100 kHz", shape = "smoothstep" }
-[[stage]]
-name = "release"
-duration = "0.2 ms"
-pinning = { to = 0.0, shape = "cosine" }
-[initial]
-temperature = "0.5 mK"
-[run]
-trajectories = 10
-seed = 1
-"""
+from conftest import two_ion_toml
+
+GOOD = two_ion_toml(
+    trap={"f_radial": "1.0 MHz", "f_axial": "2.5 MHz"}, pinning={"order": 2, "strength": "5e4 V/m^2"},
+    stage=[{"name": "spin-up", "duration": "1 ms", "f_rot": {"to": "100 kHz", "shape": "smoothstep"}},
+           {"name": "release", "duration": "0.2 ms", "pinning": {"to": 0.0, "shape": "cosine"}}],
+    initial={"temperature": "0.5 mK"}, run={"trajectories": 10, "seed": 1})
 
 DRIVEN = GOOD.replace('f_axial = "2.5 MHz"', 'f_axial = "2.5 MHz"\nf_drive = "30 MHz"')
 

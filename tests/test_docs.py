@@ -8,6 +8,7 @@ of an unknown key, which lists the keys it allows. A new key therefore
 fails here until it is documented.
 """
 
+import copy
 import re
 from pathlib import Path
 
@@ -148,3 +149,70 @@ def test_readme_links_every_docs_page():
     assert pages, "docs/ has no pages"
     missing = [p for p in pages if f"(docs/{p})" not in readme]
     assert not missing, f"README.md does not link {missing}"
+
+
+# ---------------------------------------------------------------------------
+# Layout files
+# ---------------------------------------------------------------------------
+def _layout_doc_keys() -> dict:
+    """Keys per table in docs/layouts.md's example (commented alternatives
+    included): {"layout": {...}, "electrode": {...}, "electrode.sector": {...}, ...}."""
+    text = (DOCS / "layouts.md").read_text()
+    block = text.split("```toml", 1)[1].split("```", 1)[0]
+    keys, table = {"": set()}, ""
+    for line in block.splitlines():
+        head = re.match(r"^\[+([a-z_]+)\]+", line)
+        if head:
+            table = head.group(1)
+            keys.setdefault(table, set())
+            continue
+        m = re.match(r"^#?\s*([a-z_]+)\s*=\s*(.*)$", line)
+        if not m:
+            continue
+        keys[table].add(m.group(1))
+        inner = re.match(r"^\{([^}]*)\}", m.group(2))
+        if inner:
+            keys.setdefault(f"{table}.{m.group(1)}", set()).update(re.findall(r"([a-z_]+)\s*=", inner.group(1)))
+        keys[table].update(re.findall(r"\(\+ optional ([a-z_]+) =", line))
+    keys[""].update(k for k in keys if k and "." not in k)
+    return keys
+
+
+def test_every_layout_key_is_documented():
+    # the layout parser's keys, read from its refusals of an unknown key in each table
+    import tomllib
+
+    from mdrotor.electrodes.layout import parse_layout
+
+    base = tomllib.loads((ROOT / "configs" / "electrodes" / "ring8_triangle3.toml").read_text())
+    shapes = {"rect": {"x": [-10, 10], "y": [-10, 10]}, "sector": {"r_inner": 1, "r_outer": 2, "start": "0 deg",
+              "stop": "10 deg"}, "annulus": {"r_inner": 1, "r_outer": 2}, "disc": {"radius": 1}}
+
+    def allowed(edit) -> set:
+        data = copy.deepcopy(base)
+        edit(data)
+        with pytest.raises(InputError) as e:
+            parse_layout(data, "l.toml")
+        msg = e.value.line()
+        assert "bogus" in msg and "unknown key" in msg, msg
+        return set(re.findall(r"[a-z_]+", msg.split("expected one of", 1)[1]))
+
+    found = {
+        "": allowed(lambda d: d.update(bogus=1)),
+        "layout": allowed(lambda d: d["layout"].update(bogus=1)),
+        "trap": allowed(lambda d: d.setdefault("trap", {}).update(bogus=1)),
+        "rf": allowed(lambda d: d["rf"].update(bogus=1)),
+        "design": allowed(lambda d: d.setdefault("design", {"ions": 3, "order": 3, "strength": "1e10 V/m^3"})
+                          .update(bogus=1)),
+        "electrode": allowed(lambda d: d["electrode"][0].update(bogus=1)),
+        "segments": allowed(lambda d: d["segments"][0].update(bogus=1)),
+    }
+    for shape, value in shapes.items():
+        def put(d, shape=shape, value=value):
+            el = {"name": "x", "role": "dc", "limit": "1 V", shape: dict(value, bogus=1)}
+            d["electrode"] = [el]
+        found[f"electrode.{shape}"] = allowed(put)
+    documented = _layout_doc_keys()
+    missing = [f"{t}.{k}" if t else k for t, ks in found.items() for k in sorted(ks) if k not in documented.get(t, set())]
+    assert not missing, f"layout keys missing from docs/layouts.md: {missing}"
+

@@ -25,6 +25,8 @@ from mdrotor.frame import angular_momentum
 from mdrotor.kernels import _laser_kick
 from mdrotor.species import get_species
 
+from conftest import two_ion_config, two_ion_toml
+
 HBAR, KB = sc.hbar, sc.k
 TWO_PI = 2 * np.pi
 GAMMA = TWO_PI * 22.4e6            # 40Ca+ 397 nm (species table, from memory)
@@ -388,11 +390,10 @@ def _rotating_pair(direction, trajectories, s=0.1, f_hz=200e3):
     for 2e4 trajectories)."""
     from mdrotor.frame import rotate_states
 
-    d = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2},
-         "trap": {"f_radial": "1.2 MHz", "f_axial": "2.9 MHz"}, "rotation": {"f_start": f"{f_hz} Hz"},
-         "stage": [{"name": "free", "duration": f"{1 / f_hz} s"}],
-         "initial": {"temperature": "0 K", "wigner": False}, "run": {"trajectories": trajectories, "seed": 2},
-         "laser": [{"name": "b", "detuning": "-11.2 MHz", "saturation": s, "direction": direction}]}
+    d = two_ion_config(pinning=None, rotation={"f_start": f"{f_hz} Hz"},
+                       stage=[{"name": "free", "duration": f"{1 / f_hz} s"}],
+                       initial={"temperature": "0 K", "wigner": False}, run={"trajectories": trajectories, "seed": 2},
+                       laser=[{"name": "b", "detuning": "-11.2 MHz", "saturation": s, "direction": direction}])
     plan = make_plan(mdrotor.load_config(d))
     r0 = plan.crystal0.positions_m
     v0 = np.zeros_like(r0)
@@ -482,13 +483,12 @@ def test_bit_identical_across_threads_chunks_and_order():
     ion): 1 and 2 threads, different chunk sizes and trajectory orders give
     bit-identical results (common practice, no source: counter-based random
     streams, J.K. Salmon et al., SC11 (2011), from memory)."""
-    d = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2},
-         "trap": {"f_radial": "1.2 MHz", "f_axial": "2.9 MHz"}, "rotation": {"f_start": "100 kHz"},
-         "stage": [{"name": "cool", "duration": "3 us"}, {"name": "dark", "duration": "1 us"}],
-         "initial": {"temperature": "1 mK"}, "run": {"trajectories": 24, "seed": 9},
-         "laser": [{"name": "b", "detuning": "-11.2 MHz", "saturation": 0.5, "direction": [0.6, 0.0, 0.8],
-                    "waist": "20 um", "emission": {"pattern": "linear", "axis": [0, 0, 1]},
-                    "stages": {"cool": 1.0, "dark": 0.0}}]}
+    d = two_ion_config(pinning=None, rotation={"f_start": "100 kHz"},
+                       stage=[{"name": "cool", "duration": "3 us"}, {"name": "dark", "duration": "1 us"}],
+                       initial={"temperature": "1 mK"}, run={"trajectories": 24, "seed": 9},
+                       laser=[{"name": "b", "detuning": "-11.2 MHz", "saturation": 0.5, "direction": [0.6, 0.0, 0.8],
+                               "waist": "20 um", "emission": {"pattern": "linear", "axis": [0, 0, 1]},
+                               "stages": {"cool": 1.0, "dark": 0.0}}])
     cfg = mdrotor.load_config(d)
     before = numba.get_num_threads()
     try:
@@ -507,10 +507,8 @@ def test_a_beam_switched_off_changes_nothing():
     """A beam at zero intensity (a stage scale of 0, or saturation 0) leaves
     the run bit-identical to the same config without it: the laser is a kick
     outside the deterministic step, and a zero coefficient switches it off."""
-    d = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2},
-         "trap": {"f_radial": "1.2 MHz", "f_axial": "2.9 MHz"}, "rotation": {"f_start": "100 kHz"},
-         "stage": [{"name": "free", "duration": "2 us"}],
-         "initial": {"temperature": "1 mK"}, "run": {"trajectories": 8, "seed": 3}}
+    d = two_ion_config(pinning=None, rotation={"f_start": "100 kHz"}, stage=[{"name": "free", "duration": "2 us"}],
+                       initial={"temperature": "1 mK"}, run={"trajectories": 8, "seed": 3})
     plain = mdrotor.run(mdrotor.load_config(d))
     for beam in ({"stages": ["free"], "saturation": 0.0}, {"stages": {"free": 0.0}, "saturation": 1.0}):
         d2 = dict(d, laser=[{"name": "b", "detuning": "-10 MHz", "direction": [1, 0, 0], **beam}])
@@ -560,30 +558,9 @@ def test_run_and_rotor_outputs(tmp_path, capsys):
     from mdrotor.cli import main
 
     cfg = tmp_path / "c.toml"
-    cfg.write_text("""
-[species]
-ion = "40Ca+"
-[crystal]
-ions = 2
-[trap]
-f_radial = "1.2 MHz"
-f_axial = "2.9 MHz"
-[rotation]
-f_start = "150 kHz"
-[[stage]]
-name = "free"
-duration = "4 us"
-[initial]
-temperature = "0.5 mK"
-[run]
-trajectories = 16
-seed = 2
-[[laser]]
-name = "cool"
-detuning = "-11 MHz"
-saturation = 0.3
-direction = [0.6, 0.8, 0]
-""")
+    cfg.write_text(two_ion_toml(pinning=None, rotation={"f_start": "150 kHz"}, stage=[{"name": "free", "duration": "4 us"}],
+                                initial={"temperature": "0.5 mK"}, run={"trajectories": 16, "seed": 2},
+                                laser=[{"name": "cool", "detuning": "-11 MHz", "saturation": 0.3, "direction": [0.6, 0.8, 0]}]))
     out = tmp_path / "r.h5"
     assert main(["run", str(cfg), "-o", str(out), "--quiet"]) == 0
     text = capsys.readouterr().out

@@ -10,6 +10,8 @@ from mdrotor.electrodes.multipoles import solid_harmonics
 
 from pathlib import Path
 
+from conftest import two_ion_config
+
 CONFIGS = Path(__file__).resolve().parents[1] / "configs"
 LAYOUT = CONFIGS / "electrodes" / "ring6_string2.toml"
 
@@ -42,10 +44,10 @@ def test_polynomial_matches_full_electrode_field():
 
 
 def _cfg(layout=True, **over):
-    d = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2}, "trap": {"f_radial": "2.23 MHz", "f_axial": "4.46 MHz"},
-         "pinning": {"order": 2, "strength": "1e6 V/m^2"},
-         "stage": [{"name": "spin-up", "duration": "40 us", "f_rot": {"to": "50 kHz", "shape": "smoothstep"}}],
-         "initial": {"temperature": "0.5 mK"}, "run": {"trajectories": 60, "seed": 8}}
+    d = two_ion_config(trap={"f_radial": "2.23 MHz", "f_axial": "4.46 MHz"},
+                       pinning={"order": 2, "strength": "1e6 V/m^2"},
+                       stage=[{"name": "spin-up", "duration": "40 us", "f_rot": {"to": "50 kHz", "shape": "smoothstep"}}],
+                       initial={"temperature": "0.5 mK"}, run={"trajectories": 60, "seed": 8})
     if layout:
         d["pinning"]["layout"] = "electrodes/ring6_string2.toml"
     d.update(over)

@@ -7,6 +7,8 @@ from scipy import constants as sc
 import mdrotor
 from mdrotor.noise import diffusion_constant, tone_torque, turchette_heating_rate
 
+from conftest import two_ion_config
+
 HBAR = sc.hbar
 TWO_PI = 2 * np.pi
 
@@ -173,13 +175,12 @@ def test_fitted_D_compared_over_its_own_window():
     (2000 trajectories from rest: the variance has a 3 % standard error).
     Weak noise, as the rigid-rotor derivation assumes: sigma_L ~ 50 hbar of
     L ~ 7000 hbar moves 2 f_rot by ~2 kHz, well inside the 20 kHz width."""
-    d = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2}, "trap": {"f_radial": "1.2 MHz", "f_axial": "2.9 MHz"},
-         "rotation": {"f_start": "150 kHz"},
-         "stage": [{"name": "quiet", "duration": "1 us"}, {"name": "free", "duration": "10 us"}],
-         "initial": {"temperature": "0 K", "wigner": False}, "run": {"trajectories": 2000, "seed": 23},
-         "noise": {"multipole": {"order": 2, "stages": ["free"],
-                                 "psd": {"kind": "lorentzian", "level": "0.8 V^2/m^4/Hz", "f_center": "300 kHz",
-                                         "width": "20 kHz"}}}}
+    d = two_ion_config(pinning=None, rotation={"f_start": "150 kHz"},
+                       stage=[{"name": "quiet", "duration": "1 us"}, {"name": "free", "duration": "10 us"}],
+                       initial={"temperature": "0 K", "wigner": False}, run={"trajectories": 2000, "seed": 23},
+                       noise={"multipole": {"order": 2, "stages": ["free"],
+                                            "psd": {"kind": "lorentzian", "level": "0.8 V^2/m^4/Hz", "f_center": "300 kHz",
+                                                    "width": "20 kHz"}}})
     res = mdrotor.run(mdrotor.load_config(d))
     nz = res.extra["noise"]
     assert nz["stage"] == "free" and nz["D_window_lead_s"] == 0.0
@@ -243,11 +244,11 @@ def test_window_lead_counts_earlier_free_noisy_stages():
     from mdrotor.engine import make_plan
     from mdrotor.noise import _torque_lead
 
-    base = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2}, "trap": {"f_radial": "1.2 MHz", "f_axial": "2.9 MHz"},
-            "rotation": {"f_start": "150 kHz"}, "initial": {"temperature": "0 K", "wigner": False},
-            "run": {"trajectories": 1, "seed": 1},
-            "stage": [{"name": "a", "duration": "2 us"}, {"name": "b", "duration": "3 us"}, {"name": "c", "duration": "5 us"}],
-            "noise": {"multipole": {"order": 2, "psd": {"kind": "white", "level": "1 V^2/m^4/Hz"}}}}
+    base = two_ion_config(pinning=None, rotation={"f_start": "150 kHz"},
+                          initial={"temperature": "0 K", "wigner": False}, run={"trajectories": 1, "seed": 1},
+                          stage=[{"name": "a", "duration": "2 us"}, {"name": "b", "duration": "3 us"},
+                                 {"name": "c", "duration": "5 us"}],
+                          noise={"multipole": {"order": 2, "psd": {"kind": "white", "level": "1 V^2/m^4/Hz"}}})
     plan = make_plan(mdrotor.load_config(base))
     assert _torque_lead(plan, plan.noise, 2) == pytest.approx(5e-6)
     base["noise"]["multipole"]["stages"] = ["b", "c"]

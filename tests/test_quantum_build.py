@@ -17,37 +17,17 @@ from mdrotor import quantum_rotor as qr
 from mdrotor.errors import InputError, PhysicsError
 from mdrotor.species import get_species
 
-from conftest import CONFIGS
+from conftest import CONFIGS, two_ion_toml
 
 # Two 40Ca+ ions pinned weakly (libration ~20 kHz, I w_lib / hbar ~ 1000) so
 # that a hot libration (nbar = 20) needs only ~200 rotor levels and a few
 # hundred angular momenta while its anharmonicity stays ~1 %: the classical
 # limit, checked against the ensemble.
-WEAK_PAIR = """
-[species]
-ion = "40Ca+"
-[crystal]
-ions = 2
-[trap]
-f_radial = "1.2 MHz"
-f_axial = "2.9 MHz"
-[pinning]
-order = 2
-strength = "1700 V/m^2"
-[[stage]]
-name = "release"
-duration = "0.25 ms"
-pinning = { to = 0.0, shape = "cosine" }
-[[stage]]
-name = "free"
-duration = "0.05 ms"
-[initial]
-temperature = "0 K"
-occupations = { libration = 20 }
-[run]
-trajectories = 400
-seed = 5
-"""
+WEAK_PAIR = two_ion_toml(
+    pinning={"order": 2, "strength": "1700 V/m^2"},
+    stage=[{"name": "release", "duration": "0.25 ms", "pinning": {"to": 0.0, "shape": "cosine"}},
+           {"name": "free", "duration": "0.05 ms"}],
+    initial={"temperature": "0 K", "occupations": {"libration": 20}}, run={"trajectories": 400, "seed": 5})
 
 
 def pair_moment_2():

@@ -19,36 +19,15 @@ from mdrotor.errors import InputError
 from mdrotor.optimize import load_optimize, run_optimize
 from mdrotor.sweep import load_sweep, read_table, run_sweep
 
+from conftest import two_ion_toml
+
 # Two 40Ca+ ions pinned by a rotating quadrupole, spun up to 20 kHz in 10 us,
 # released in 5 us and left to rotate for 5 us: a small stored result.
-BASE = """
-[species]
-ion = "40Ca+"
-[crystal]
-ions = 2
-[trap]
-f_radial = "1.2 MHz"
-f_axial = "2.9 MHz"
-[pinning]
-order = 2
-strength = "2e5 V/m^2"
-[[stage]]
-name = "spin-up"
-duration = "10 us"
-f_rot = { to = "20 kHz", shape = "smoothstep" }
-[[stage]]
-name = "release"
-duration = "5 us"
-pinning = { to = 0.0, shape = "cosine" }
-[[stage]]
-name = "free"
-duration = "5 us"
-[initial]
-temperature = "0.5 mK"
-[run]
-trajectories = 20
-seed = 3
-"""
+BASE = two_ion_toml(
+    stage=[{"name": "spin-up", "duration": "10 us", "f_rot": {"to": "20 kHz", "shape": "smoothstep"}},
+           {"name": "release", "duration": "5 us", "pinning": {"to": 0.0, "shape": "cosine"}},
+           {"name": "free", "duration": "5 us"}],
+    initial={"temperature": "0.5 mK"}, run={"trajectories": 20, "seed": 3})
 SERIES = '[observe]\nseries_interval = "1 us"\n'
 NOISE = '[[noise.multipole]]\norder = 2\npsd = { kind = "white", level = "100 V^2/m^4/Hz" }\n'
 

@@ -8,7 +8,7 @@ import math
 import h5py
 import numpy as np
 import pytest
-from conftest import FORCED_OSCILLATOR_TOML
+from conftest import FORCED_OSCILLATOR_TOML, two_ion_toml
 from scipy.stats import norm
 
 import mdrotor
@@ -18,31 +18,10 @@ from mdrotor.observables import Status, usable
 from mdrotor.stats import ONE_SIGMA, fraction_interval, summarize
 
 # a pinned spin-up to 20 kHz, then the pinning ramped off: a free rotor at the end
-CFG = """
-[species]
-ion = "40Ca+"
-[crystal]
-ions = 2
-[trap]
-f_radial = "1.2 MHz"
-f_axial = "2.9 MHz"
-[pinning]
-order = 2
-strength = "2e5 V/m^2"
-[[stage]]
-name = "spin-up"
-duration = "20 us"
-f_rot = { to = "20 kHz", shape = "smoothstep" }
-[[stage]]
-name = "release"
-duration = "10 us"
-pinning = { to = 0.0, shape = "cosine" }
-[initial]
-temperature = "0.5 mK"
-[run]
-trajectories = 16
-seed = 3
-"""
+CFG = two_ion_toml(
+    stage=[{"name": "spin-up", "duration": "20 us", "f_rot": {"to": "20 kHz", "shape": "smoothstep"}},
+           {"name": "release", "duration": "10 us", "pinning": {"to": 0.0, "shape": "cosine"}}],
+    initial={"temperature": "0.5 mK"}, run={"trajectories": 16, "seed": 3})
 
 
 def _no_nan(obj):

@@ -12,6 +12,8 @@ from mdrotor.cli import main
 from mdrotor.engine import NO_LASER, NO_NOISE, NO_POLY, _Stepper, initial_states, make_plan
 from mdrotor.kernels import advance
 
+from conftest import two_ion_config
+
 M = 40 * sc.atomic_mass
 TWO_PI = 2 * np.pi
 
@@ -175,10 +177,10 @@ def test_excess_micromotion_from_stray_field():
 
 
 def _two_ion_rotating(f_drive, f_rot="150 kHz", duration="40 us", n=4, dt=None):
-    d = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2},
-         "trap": {"model": "rf", "f_radial": "1.0 MHz", "f_axial": "2.5 MHz", "f_drive": f_drive},
-         "rotation": {"f_start": f_rot}, "stage": [{"name": "free", "duration": duration}],
-         "initial": {"temperature": "0 K", "wigner": False}, "run": {"trajectories": n, "seed": 3}}
+    d = two_ion_config(pinning=None,
+                       trap={"model": "rf", "f_radial": "1.0 MHz", "f_axial": "2.5 MHz", "f_drive": f_drive},
+                       rotation={"f_start": f_rot}, stage=[{"name": "free", "duration": duration}],
+                       initial={"temperature": "0 K", "wigner": False}, run={"trajectories": n, "seed": 3})
     if dt:
         d["run"]["dt"] = dt
     return mdrotor.load_config(d)
@@ -222,12 +224,10 @@ def test_pseudo_vs_rf_spin_up_and_release():
     and release (the pseudopotential approximation, Leibfried et al. 2003)."""
     from mdrotor.compare import compare_trap
 
-    d = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2},
-         "trap": {"f_radial": "1.0 MHz", "f_axial": "2.5 MHz", "f_drive": "40 MHz"},
-         "pinning": {"order": 2, "strength": "2e5 V/m^2"},
-         "stage": [{"name": "spin-up", "duration": "40 us", "f_rot": {"to": "60 kHz", "shape": "smoothstep"}},
-                   {"name": "release", "duration": "20 us", "pinning": {"to": 0.0, "shape": "cosine"}}],
-         "initial": {"temperature": "0.5 mK"}, "run": {"trajectories": 120, "seed": 21}}
+    d = two_ion_config(trap={"f_radial": "1.0 MHz", "f_axial": "2.5 MHz", "f_drive": "40 MHz"},
+                       stage=[{"name": "spin-up", "duration": "40 us", "f_rot": {"to": "60 kHz", "shape": "smoothstep"}},
+                              {"name": "release", "duration": "20 us", "pinning": {"to": 0.0, "shape": "cosine"}}],
+                       initial={"temperature": "0.5 mK"}, run={"trajectories": 120, "seed": 21})
     cfg = mdrotor.load_config(d)
     assert 0.08 < cfg.trap.q[0] < 0.12
     cmp = compare_trap(cfg)
@@ -245,11 +245,11 @@ def test_rotating_two_ion_stretch_frequency_rf_vs_pseudo():
     versus beta^2, amplitude, the stepper). The RF stretch frequency, fitted
     to the radius sampled once per RF period, agrees with the pseudopotential
     mode to within the size of the leading correction, q^2 / 8 (q ~ 0.08)."""
-    d = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2},
-         "trap": {"model": "rf", "f_radial": "1.0 MHz", "f_axial": "2.5 MHz", "f_drive": "40 MHz"},
-         "rotation": {"f_start": "150 kHz"}, "stage": [{"name": "free", "duration": "40 us"}],
-         "initial": {"temperature": "0 K", "wigner": False, "occupations": {"in-plane": 30}},
-         "run": {"trajectories": 1, "seed": 3, "dt": f"{1 / 40e6 / 128} s"}}
+    d = two_ion_config(pinning=None,
+                       trap={"model": "rf", "f_radial": "1.0 MHz", "f_axial": "2.5 MHz", "f_drive": "40 MHz"},
+                       rotation={"f_start": "150 kHz"}, stage=[{"name": "free", "duration": "40 us"}],
+                       initial={"temperature": "0 K", "wigner": False, "occupations": {"in-plane": 30}},
+                       run={"trajectories": 1, "seed": 3, "dt": f"{1 / 40e6 / 128} s"})
     cfg = mdrotor.load_config(d)
     q = cfg.trap.q[0]
     plan = make_plan(cfg)
@@ -278,11 +278,11 @@ def test_rotating_two_ion_stretch_frequency_rf_vs_pseudo():
 
 def _rotating_pair(model="rf", pinning=None, temperature="0 K", trajectories=64, duration="2 us", seed=3):
     """Two 40Ca+ rotating at 100 kHz from t = 0, q ~ 0.089 (37 MHz drive)."""
-    d = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2},
-         "trap": {"model": model, "f_radial": "1.0 MHz", "f_axial": "2.5 MHz", "f_drive": "37 MHz"},
-         "rotation": {"f_start": "100 kHz"}, "stage": [{"name": "free", "duration": duration}],
-         "initial": {"temperature": temperature, "wigner": temperature != "0 K"},
-         "run": {"trajectories": trajectories, "seed": seed}}
+    d = two_ion_config(pinning=None,
+                       trap={"model": model, "f_radial": "1.0 MHz", "f_axial": "2.5 MHz", "f_drive": "37 MHz"},
+                       rotation={"f_start": "100 kHz"}, stage=[{"name": "free", "duration": duration}],
+                       initial={"temperature": temperature, "wigner": temperature != "0 K"},
+                       run={"trajectories": trajectories, "seed": seed})
     if pinning:
         d["pinning"] = pinning
     return mdrotor.load_config(d)
@@ -396,9 +396,9 @@ def test_anisotropic_rotating_start_says_what_it_assumes():
     """An in-plane anisotropic trap has no periodic RF orbit for a rotating
     crystal: the run says that it starts on the orbit of the rotation-averaged
     trap (common practice, no source)."""
-    d = {"species": {"ion": "40Ca+"}, "crystal": {"ions": 2},
-         "trap": {"model": "rf", "f_drive": "37 MHz", "a": [-0.002, 0.0, 0.002], "q": [0.10, -0.08, -0.02]},
-         "rotation": {"f_start": "50 kHz"}, "stage": [{"name": "free", "duration": "1 us"}],
-         "initial": {"temperature": "0 K", "wigner": False}, "run": {"trajectories": 2, "seed": 3}}
+    d = two_ion_config(pinning=None,
+                       trap={"model": "rf", "f_drive": "37 MHz", "a": [-0.002, 0.0, 0.002], "q": [0.10, -0.08, -0.02]},
+                       rotation={"f_start": "50 kHz"}, stage=[{"name": "free", "duration": "1 us"}],
+                       initial={"temperature": "0 K", "wigner": False}, run={"trajectories": 2, "seed": 3})
     plan = make_plan(mdrotor.load_config(d))
     assert any("no periodic RF orbit" in s and "q_x != q_y" in s and "a_x != a_y" in s for s in plan.notes)

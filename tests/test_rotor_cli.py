@@ -8,29 +8,12 @@ from scipy import constants as sc
 
 from mdrotor.cli import main
 
-NOISY = """
-[species]
-ion = "40Ca+"
-[crystal]
-ions = 2
-[trap]
-f_radial = "1.2 MHz"
-f_axial = "2.9 MHz"
-[rotation]
-f_start = "150 kHz"
-[[stage]]
-name = "free"
-duration = "20 us"
-[initial]
-temperature = "0 K"
-wigner = false
-[run]
-trajectories = 300
-seed = 4
-[[noise.multipole]]
-order = 2
-psd = { kind = "white", level = "100 V^2/m^4/Hz" }
-"""
+from conftest import two_ion_toml
+
+NOISY = two_ion_toml(
+    pinning=None, rotation={"f_start": "150 kHz"}, stage=[{"name": "free", "duration": "20 us"}],
+    initial={"temperature": "0 K", "wigner": False}, run={"trajectories": 300, "seed": 4},
+    noise={"multipole": [{"order": 2, "psd": {"kind": "white", "level": "100 V^2/m^4/Hz"}}]})
 
 KEYS = ("moment_of_inertia_kg_m2", "hbar_over_I_hz", "exchange_time_s", "revival_time_s", "statistics",
         "allowed_L_mod", "allowed_L_residue", "diffusion_hbar2_per_s", "coherence_time_s")

@@ -9,33 +9,12 @@ import pytest
 import mdrotor
 from mdrotor.cli import main
 
-CFG = """
-[species]
-ion = "40Ca+"
-[crystal]
-ions = 2
-[trap]
-f_radial = "1.2 MHz"
-f_axial = "2.9 MHz"
-[pinning]
-order = 2
-strength = "2e5 V/m^2"
-[[stage]]
-name = "spin-up"
-duration = "30 us"
-f_rot = { to = "20 kHz", shape = "smoothstep" }
-[[stage]]
-name = "release"
-duration = "10 us"
-pinning = { to = 0.0, shape = "cosine" }
-[initial]
-temperature = "0.5 mK"
-[run]
-trajectories = 24
-seed = 3
-[observe]
-series_interval = "5 us"
-"""
+from conftest import two_ion_toml
+
+CFG = two_ion_toml(
+    stage=[{"name": "spin-up", "duration": "30 us", "f_rot": {"to": "20 kHz", "shape": "smoothstep"}},
+           {"name": "release", "duration": "10 us", "pinning": {"to": 0.0, "shape": "cosine"}}],
+    initial={"temperature": "0.5 mK"}, run={"trajectories": 24, "seed": 3}, observe={"series_interval": "5 us"})
 
 
 @pytest.fixture
