@@ -29,8 +29,11 @@ At an observation time every trajectory gets:
   around w, the modes taken from the nearer node (their frequencies change
   by ~1e-4 relative per kHz). A trajectory's outputs depend on the plan and
   its own state alone, never on the other trajectories of the run (so runs
-  can be split into chunks and across machines); only the mode table listed
-  with an observation is chosen over the ensemble (:func:`listed_frame`).
+  can be split into chunks and across machines). The columns of the mode
+  table (:func:`free_columns`, :func:`listed_frame`) are the modes of the
+  node nearest the schedule's rate; a trajectory's modes go to the columns
+  with the same meaning (:func:`column_map`: in an anisotropic trap the lab
+  frame's libration is no mode of a rotating frame and stays NaN there).
 
 Status flags (:class:`Status`, the one owner of the bits): 1 slipped, 2 lost
 ion, 4 reordered, 8 non-finite (0: ok). Trajectories with a lost ion or a
@@ -186,22 +189,55 @@ def free_rates(plan, lcom: np.ndarray, icom: np.ndarray, good: np.ndarray):
     return w, lo
 
 
+def free_columns(plan, t_s: float) -> int:
+    """The lattice node whose modes are the columns of an observation of the
+    free crystal at t: the node nearest the schedule's own rotation rate at
+    t, node 0 (the lab frame) when the schedule does not rotate. From the
+    plan alone, so every trajectory, chunk and worker of a run writes the
+    same columns; each trajectory is still measured in the frame of its own
+    rate and its modes are put in these columns (:func:`column_map`)."""
+    if len(plan.masses) == 1:
+        return 0
+    jmax = lattice_limit(plan)
+    if jmax < 1:
+        return 0
+    f = float(plan.schedule.f_rot_hz(t_s)) if plan.schedule is not None else plan.f0_hz
+    return int(np.clip(np.rint(f / W_GRID_HZ), -jmax, jmax))
+
+
+def column_map(columns, modes) -> np.ndarray:
+    """For each mode of ``modes``, its column among ``columns`` (-1: no
+    column). Same count: one to one, in order. The lab frame of an
+    anisotropic trap has one mode more than a rotating frame, the libration
+    about the anisotropy, which is the free rotation itself (no mode) in a
+    rotating frame: it is the column a rotating trajectory leaves empty (NaN),
+    and the mode an at-rest trajectory measured against rotating columns
+    leaves out. Otherwise modes go to the column with the same label."""
+    cl, ml = list(columns.labels), list(modes.labels)
+    if len(cl) == len(ml):
+        return np.arange(len(ml))
+    if len(cl) == len(ml) + 1 and "libration" in cl:
+        return np.array([k for k in range(len(cl)) if cl[k] != "libration"])
+    if len(ml) == len(cl) + 1 and "libration" in ml:
+        out, c = np.full(len(ml), -1), 0
+        for k, lab in enumerate(ml):
+            if lab != "libration":
+                out[k], c = c, c + 1
+        return out
+    return np.array([cl.index(lab) if lab in cl else -1 for lab in ml])
+
+
 def listed_frame(plan, t_s: float, f_rot_hz: np.ndarray, status: np.ndarray) -> tuple:
-    """The modes listed with an observation and their frame: ``(modes,
-    ("rotating", f) or ("lab", 0.0))``. While pinned, the pinning's frame;
-    when free, the lattice node nearest the median rate of the usable
-    trajectories (each trajectory is measured in the frame of its own rate;
-    this only chooses the frequencies shown), node 0 being the lab frame.
-    A choice over the ensemble: made once on the whole run's arrays."""
+    """The modes listed with an observation (its columns) and their frame:
+    ``(modes, ("rotating", f) or ("lab", 0.0))``. While pinned, the
+    pinning's frame; when free, the lattice node of :func:`free_columns` (the
+    schedule's rate; each trajectory is measured in the frame of its own
+    rate). From the plan alone; ``f_rot_hz`` and ``status`` are not used."""
     if plan.pinned_at(t_s):
         fr = pinned_frame(plan, t_s)
         f = float(fr.f_hz[0])
         return fr.modes[0], (("rotating", f) if f != 0.0 else ("lab", 0.0))
-    ok = usable(status) & np.isfinite(f_rot_hz)
-    j = 0
-    if len(plan.masses) > 1 and np.any(ok):
-        jmax = lattice_limit(plan)
-        j = int(np.clip(np.rint(np.median(f_rot_hz[ok]) / W_GRID_HZ), -jmax, jmax)) if jmax >= 1 else 0
+    j = free_columns(plan, t_s)
     f, _, modes, _ = lattice_node(plan, j)
     return modes, (("rotating", f) if j != 0 else ("lab", 0.0))
 
@@ -270,6 +306,7 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     if pinned:
         frame = pinned_frame(plan, t_s)
         nodes = {0: (frame.r_eq[0], frame.modes[0])}
+        j_col = 0
         f_frame = np.full(n_traj, frame.f_hz[0])
     else:
         f_frame = np.zeros(n_traj)  # the lab frame unless rotating
@@ -286,7 +323,8 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
             hi_node = np.where(rot & (hi_node == 0), lo_node, hi_node)
             f_frame = np.where(rot, w / TWO_PI, 0.0)
         nodes = {}
-        for j in np.unique(np.r_[lo_node, hi_node, 0]):
+        j_col = free_columns(plan, t_s)
+        for j in np.unique(np.r_[lo_node, hi_node, 0, j_col]):
             _, r_j, modes_j, _ = lattice_node(plan, int(j))
             nodes[int(j)] = (r_j, modes_j)
     keys = sorted(nodes)
@@ -295,7 +333,8 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     r_hi = stack[np.searchsorted(keys, hi_node)]
     r_eq = (1 - weight)[:, None, None] * r_lo + weight[:, None, None] * r_hi  # (T, N, 3)
     nearest = np.where(weight > 0.5, hi_node, lo_node)
-    n_modes = len(nodes[0][1].omega)
+    columns = nodes[j_col][1]
+    n_modes = len(columns.omega)
     mode_n = np.full((n_traj, n_modes), np.nan)
     z_eq = (r_eq[:, :, 0] + 1j * r_eq[:, :, 1]).T  # (N, T)
     z_eq_c = z_eq - np.sum(m[:, None] * z_eq, axis=0) / np.sum(m)
@@ -347,7 +386,11 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
                 x = md.omega * window_s
                 qn = qn / (np.sin(x) / x)
                 pn = pn / np.sinc(x / (2 * np.pi)) ** 2
-            mode_n[sel] = 0.5 * (qn * qn + pn * pn) / HBAR - (0.5 if plan.wigner else 0.0)
+            cols = column_map(columns, md)
+            keep = cols >= 0
+            block = np.full((int(np.sum(sel)), n_modes), np.nan)
+            block[:, cols[keep]] = (0.5 * (qn * qn + pn * pn) / HBAR - (0.5 if plan.wigner else 0.0))[:, keep]
+            mode_n[sel] = block
     out["reordered"] = reordered
     out["mode_n"] = mode_n
     status = np.zeros(n_traj, dtype=np.int64)

@@ -8,7 +8,7 @@ import pytest
 from scipy import constants as sc
 
 from mdrotor import config, engine
-from mdrotor.observables import Status, observe, usable
+from mdrotor.observables import Status, lattice_node, observe, usable
 
 from conftest import two_ion_config
 
@@ -86,3 +86,39 @@ def test_lost_and_nonfinite_are_flagged_and_left_out(observed):
     # the bits as result files describe them
     assert Status.describe() == "1 slipped, 2 lost ion, 4 reordered, 8 non-finite"
     assert [int(s) for s in (Status.SLIPPED, Status.LOST, Status.REORDERED, Status.NONFINITE)] == [1, 2, 4, 8]
+
+
+@pytest.mark.parametrize("f_sched_hz", [0.0, 50e3])
+def test_mode_columns_in_an_anisotropic_trap_come_from_the_schedule(f_sched_hz):
+    # A free crystal in a trap with a static radial anisotropy: at rest it
+    # librates about the anisotropy (one mode more in the lab frame), while
+    # rotating that libration is the free rotation itself and no mode. The
+    # columns of the observation follow the schedule's rate, whatever the mix
+    # of trajectories (at rest and rotating) measured together, and each
+    # trajectory's modes land in the columns of the same meaning.
+    # Mode counting: a free rotation is a zero mode of the rotating frame
+    # (H. Goldstein, Classical Mechanics, ch. 6, cyclic coordinates).
+    stages = [{"name": "spin-up", "duration": "20 us", "f_rot": {"to": f"{f_sched_hz} Hz", "shape": "linear"}},
+              {"name": "release", "duration": "5 us", "pinning": {"to": 0.0, "shape": "linear"}}]
+    trap = {"f_radial": "1.2 MHz", "f_axial": "2.9 MHz", "radial_split": "20 kHz"}
+    plan = engine.make_plan(config.from_dict(two_ion_config(trap=trap, stage=stages), "split.toml"))
+    t_end = 25e-6
+    assert not plan.pinned_at(t_end)
+    _, r_rest, lab_modes, _ = lattice_node(plan, 0)
+    assert "libration" in lab_modes.labels
+    r = r_rest
+    w = 2 * math.pi * 50e3
+    pos = np.repeat(r.T[:, :, None], 2, axis=2).copy()
+    vel = np.zeros_like(pos)
+    vel[0, :, 0] = -w * r[:, 1]          # 0: turning rigidly at 50 kHz
+    vel[1, :, 0] = w * r[:, 0]
+    lag_u = np.full((1, 2), plan.lag_u_ref)
+    out = observe(plan, pos, vel, t_end, lag_u)
+    cols = list(out["_modes"].labels)
+    assert out["mode_n"].shape == (2, len(cols))
+    assert ("libration" in cols) == (f_sched_hz == 0.0)
+    rest, spin = out["mode_n"][1], out["mode_n"][0]
+    # at rest, at the equilibrium, T = 0 without Wigner sampling: every mode empty
+    assert np.all(np.isfinite(rest)) and np.max(np.abs(rest)) < 1e-6
+    for k, lab_k in enumerate(cols):
+        assert np.isfinite(spin[k]) == (lab_k != "libration")
