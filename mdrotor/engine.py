@@ -32,9 +32,10 @@ HBAR = sc.hbar
 KB = sc.k
 K_COULOMB = 1.0 / (4.0 * np.pi * sc.epsilon_0)
 BLOCK_STEPS = 2048
-# the kernel's "no noise" arrays (fixed ndim so that one compiled kernel serves both)
-NO_NOISE = (np.zeros((0, 3, 0)), np.zeros(0, dtype=np.int64), np.zeros((0, 0, 0)), np.zeros((0, 0, 0)),
-            np.zeros(3), np.zeros((0, 2)), np.zeros(1, dtype=np.uint64), 0)
+# the kernel's "no noise" arrays (fixed ndim so that one compiled kernel serves both; see kernels.advance)
+NO_NOISE = (np.zeros(0, dtype=np.int64), np.zeros((0, 3)), np.zeros(1, dtype=np.uint64), 0, np.zeros(0, dtype=np.int64),
+            np.zeros(0), np.zeros(0, dtype=np.int64), np.zeros((0, 4)), np.zeros((0, 1)), np.zeros(0, dtype=np.int64),
+            np.zeros((0, 9)), np.zeros((0, 2, 1)))
 NO_POLY = (np.zeros((0, 3), dtype=np.int64), np.zeros((1, 0)))
 # the kernel's "no laser" arrays (see kernels.advance)
 NO_LASER = (np.zeros((0, 3)), np.zeros((0, 5)), np.zeros((0, 3)), np.zeros((0, 0)), np.zeros((0, 3, 3)),
@@ -274,8 +275,9 @@ def laser_keys(seed: int, indices) -> np.ndarray:
     """Each trajectory's 64-bit key for the laser's recoil kicks (drawn in the
     kernel from a counter hash of the key and (step, beam, ion)): a function
     of (seed, trajectory index) only."""
-    return np.array([np.random.SeedSequence(seed, spawn_key=(int(i), LASER_STREAM)).generate_state(1, np.uint64)[0]
-                     for i in indices], dtype=np.uint64)
+    from .sampling import counter_keys
+
+    return counter_keys(seed, indices, LASER_STREAM)
 
 
 def laser_arrays(plan: Plan, stage: str):
@@ -595,8 +597,9 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
     """Run the whole schedule on the given states (modified in place).
 
     ``rf_phases`` (T,): each trajectory's RF phase at t = 0 (RF model only).
-    ``noise_state``: from ``plan.noise.new_state(seed, indices)`` when the
-    config has noise. ``laser_keys``: from :func:`laser_keys` when it has
+    ``noise_state``: from ``plan.noise.kernel_state(seed, indices)`` when the
+    config has noise (each trajectory's keys and colored-noise state, carried
+    across blocks and stages). ``laser_keys``: from :func:`laser_keys` when it has
     beams; each stage's observation then carries ``_laser_photons`` (T, N),
     every ion's expected photon count over the stage. ``series_raw``: keep
     each time-series point as the trajectories' own values
@@ -691,11 +694,8 @@ class _Stepper:
         # beams: each trajectory's key and every ion's expected photon count since the last reset
         self.laser_keys = laser_keys
         self.photons = np.zeros((len(plan.masses), n_traj)) if laser_keys is not None else NO_LASER[7]
+        # each trajectory's keys and colored-noise states (noise.KernelNoiseState), advanced by the kernel
         self.noise_state = noise_state
-        # each trajectory's key for the white kicks drawn in the kernel (stream 3)
-        self.white_keys = (np.array([np.random.SeedSequence(noise_state.seed, spawn_key=(int(i), 3)).generate_state(1, np.uint64)[0]
-                                     for i in noise_state.indices], dtype=np.uint64)
-                           if noise_state is not None else NO_NOISE[6])
         self.chunk = chunk
         self.lag_u = np.zeros((2, n_traj))
         # a lag update every spp/4 steps: the pinning turns by at most 2 pi / 4 per order n in between
@@ -734,20 +734,11 @@ class _Stepper:
         noise = NO_NOISE
         model = plan.noise
         if model is not None and noise_step0 is not None and model.active(sched.stages[stage].name):
-            name = sched.stages[stage].name
-            field, orders, g_re, g_im = NO_NOISE[:4]
-            if model.has_colored:  # Ornstein-Uhlenbeck parts and tones, from each trajectory's generator
-                blk = model.generate(self.noise_state, t_start_s=sched.boundaries_s[stage], dt_s=dt, step0=noise_step0,
-                                     n_steps=n, stage=name, white=False)
-                if blk.field_v_per_m is not None:
-                    field = blk.field_v_per_m
-                if blk.g_re is not None:
-                    g_re, g_im = blk.g_re, blk.g_im
-            if model.has_multipole:
-                orders = np.asarray(model.orders, dtype=np.int64)
-            w_field, w_g = model.white_sd(dt, name)
+            # white kicks, colored modes (their states carried in noise_state) and tones, all drawn in the kernel
             step = int(sum(plan.stage_steps[:stage])) + int(noise_step0)
-            noise = (field, orders, g_re, g_im, w_field, w_g, self.white_keys, step)
+            noise = model.kernel_arrays(self.noise_state, t_start_s=sched.boundaries_s[stage], dt_s=dt,
+                                        step0=noise_step0, n_steps=n, global_step0=step,
+                                        stage=sched.stages[stage].name)
         laser = NO_LASER
         if plan.lasers and noise_step0 is not None and self.laser_keys is not None:
             arrays = laser_arrays(plan, sched.stages[stage].name)

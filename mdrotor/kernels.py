@@ -292,70 +292,203 @@ SQRT3 = math.sqrt(3.0)
 
 
 @njit(cache=True)
-def _uniform(key, counter):
-    """A uniform number in [0, 1) from the 64-bit key and counter: the
-    SplitMix64 output function (G.L. Steele, D. Lea, C.H. Flood, OOPSLA 2014)
-    applied to key + counter x golden ratio. A pure function of (key,
-    counter): no generator state, so chunks and threads cannot change it."""
+def _hash64(key, counter):
+    """The SplitMix64 output function of key + counter x golden ratio (the
+    bits behind :func:`_uniform`)."""
     z = key + counter * np.uint64(0x9E3779B97F4A7C15)
     z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
     z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
-    z = z ^ (z >> np.uint64(31))
-    return float(z >> np.uint64(11)) * (1.0 / 9007199254740992.0)
+    return z ^ (z >> np.uint64(31))
 
 
 @njit(cache=True)
-def _noise_step(b0, s, step, n_field, n_gre, n_gim, w_field, w_g, keys, fe, ge):
-    """The noise values of step s for the chunk's trajectories: the
-    pre-generated coloured parts and tones (:mod:`mdrotor.noise`) plus the
-    white parts, drawn here as uniform kicks of the white variance
-    S_w / (2 dt) (any distribution with that variance gives the same white
-    spectrum; uniform kicks in place of Gaussian ones: B. Duenweg and W.
-    Paul, Int. J. Mod. Phys. C 2, 817 (1991)). fe (3, B), ge (K, 2, B)."""
-    nb = fe.shape[1]
-    counter = np.uint64(step * 16)
-    for u in range(3):
-        if n_field.shape[0] > 0:
+def _uniform(key, counter):
+    """A uniform number in [0, 1) from the 64-bit key and counter: the
+    SplitMix64 output function (G.L. Steele, D. Lea, C.H. Flood, OOPSLA 2014)
+    applied to key + counter x golden ratio (:func:`_hash64`). A pure function
+    of (key, counter): no generator state, so chunks and threads cannot change it."""
+    return float(_hash64(key, counter) >> np.uint64(11)) * (1.0 / 9007199254740992.0)
+
+
+UNIFORM_BITS = 21   # three uniform numbers from each 64-bit hash
+_U_CENTRE = 1.5 - 2.0 ** -(UNIFORM_BITS + 1)   # the mean of 1 + k 2^-21, k = 0 .. 2^21 - 1
+_U_SCALE = 2.0 * math.sqrt(3.0)                # (1 + k 2^-21 - centre) 2 sqrt(3): unit variance
+
+
+@njit(cache=True)
+def normals(keys, first, n):
+    """(n, T) standard normal numbers, column b from ``keys[b]`` and the
+    counters ``first - 2 j``, ``first - 2 j - 1`` of pair j (Box-Muller: G.E.P.
+    Box and M.E. Muller, Ann. Math. Stat. 29, 610 (1958)). The noise draws its
+    stationary initial states here, from counters counted down from 2^64 - 1,
+    far from the step counters it counts up from 0."""
+    T = keys.shape[0]
+    out = np.empty((n, T))
+    for b in range(T):
+        for j in range((n + 1) // 2):
+            c = np.uint64(first) - np.uint64(2 * j)
+            u1 = 1.0 - _uniform(keys[b], c)              # (0, 1]
+            u2 = _uniform(keys[b], c - np.uint64(1))
+            r = math.sqrt(-2.0 * math.log(u1))
+            out[2 * j, b] = r * math.cos(2.0 * math.pi * u2)
+            if 2 * j + 1 < n:
+                out[2 * j + 1, b] = r * math.sin(2.0 * math.pi * u2)
+    return out
+
+
+@njit(cache=True)
+def _innovations(keys, b0, step, us):
+    """The noise's uniform numbers of one step, us (3 H, B), zero mean and unit
+    variance: hash h of trajectory b (key ``keys[b0 + b]``, counter step H +
+    h) gives rows 3 h, 3 h + 1, 3 h + 2 from its bits 43-63, 22-42 and 1-21:
+    each 21-bit integer k becomes (k - (2^21 - 1) / 2) sqrt(3) / 2^20
+    (symmetric about 0, variance 1 - 2^-42), through the double 1 + k 2^-21
+    built from its bits (cheaper than an integer conversion)."""
+    n_hash = us.shape[0] // 3
+    nb = us.shape[1]
+    ub = us.view(np.uint64)
+    c0 = np.uint64(step) * np.uint64(n_hash)
+    one = np.uint64(0x3FF0000000000000)
+    mant = np.uint64(0x000FFFFF80000000)   # the mantissa's top 21 bits
+    for h in range(n_hash):
+        c = c0 + np.uint64(h)
+        for b in range(nb):
+            x = _hash64(keys[b0 + b], c)
+            ub[3 * h, b] = ((x >> np.uint64(12)) & mant) | one
+            ub[3 * h + 1, b] = ((x << np.uint64(9)) & mant) | one
+            ub[3 * h + 2, b] = ((x << np.uint64(30)) & mant) | one
+    for r in range(3 * n_hash):
+        for b in range(nb):
+            us[r, b] = (us[r, b] - _U_CENTRE) * _U_SCALE
+
+
+@njit(cache=True)
+def _noise_step(b0, s, step, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr_loc, c_tgt, c_par, zc_loc, us, nv):
+    """The noise values of step s for the chunk's trajectories, nv (3 + 2 K, B):
+    rows 0-2 the uniform field (V/m), rows 3 + 2 p and 4 + 2 p g_re and g_im
+    of the multipole order p (V/m^n); each the average of the process over
+    the step (the arrays: :meth:`mdrotor.noise.NoiseModel.kernel_arrays`).
+
+    * Tones: deterministic, the same for every trajectory, ``tones[s]``
+      (n_steps, 3 + 2 K), or no rows when none is on.
+    * White parts: nv[w_tgt[i]] += w_sd[i] u, u of unit variance: kicks of
+      the white variance S_w / (2 dt), to which the colored modes'
+      independent parts are added (uniform numbers in place of Gaussian
+      ones: any distribution with that variance gives the same white
+      spectrum, B. Duenweg and W. Paul, Int. J. Mod. Phys. C 2, 817 (1991)).
+    * Colored parts, Ornstein-Uhlenbeck modes advanced here, the step
+      average from the exact joint update of a mode and its integral: a
+      real mode j with state z (zr_loc[j], the process at PSD scale 1) and
+      one innovation u adds m z + c u to nv[r_tgt[j]] and steps z <- e z +
+      l u, r_par[j] = (e, l, m, c); a rotating mode (z = zc_loc[j, 0] + i
+      zc_loc[j, 1], innovations u1, u2) adds Re(m z) + c1 u1 + c2 u2 and
+      steps z <- e z + (l00 u1 + i (l10 u1 + l11 u2)), c_par[j] = (Re e, Im
+      e, l00, l10, l11, Re m, Im m, c1, c2).
+
+    The step's numbers u come from :func:`_innovations`: row i for white
+    slot i (W of them), row W + j for real mode j, rows W + M_r + 2 j and
+    W + M_r + 2 j + 1 for rotating mode j. Uniform innovations give every
+    mode the exact second moments (so the PSD) of the Gaussian process; a
+    slow mode, a sum of many innovations, is Gaussian to the central limit."""
+    nb = nv.shape[1]
+    n_t = nv.shape[0]
+    if tones.shape[0] > 0:
+        for t in range(n_t):
+            v = tones[s, t]
             for b in range(nb):
-                fe[u, b] = n_field[s, u, b0 + b]
-        else:
+                nv[t, b] = v
+    else:
+        for t in range(n_t):
             for b in range(nb):
-                fe[u, b] = 0.0
-        w = w_field[u] * SQRT3
+                nv[t, b] = 0.0
+    n_w = w_sd.shape[0]
+    n_r = r_par.shape[0]
+    n_c = c_par.shape[0]
+    if n_w + n_r + n_c == 0:
+        return
+    _innovations(keys, b0, step, us)
+    for i in range(n_w):
+        w = w_sd[i]
+        t = w_tgt[i]
         if w != 0.0:
-            c = counter + np.uint64(u)
             for b in range(nb):
-                fe[u, b] += w * (2.0 * _uniform(keys[b0 + b], c) - 1.0)
-    for p in range(ge.shape[0]):
-        for part in range(2):
-            if n_gre.shape[0] > 0:
-                src = n_gre if part == 0 else n_gim
-                for b in range(nb):
-                    ge[p, part, b] = src[s, p, b0 + b]
-            else:
-                for b in range(nb):
-                    ge[p, part, b] = 0.0
-            w = w_g[p, part] * SQRT3
-            if w != 0.0:
-                c = counter + np.uint64(3 + 2 * p + part)
-                for b in range(nb):
-                    ge[p, part, b] += w * (2.0 * _uniform(keys[b0 + b], c) - 1.0)
+                nv[t, b] += w * us[i, b]
+    for j in range(n_r):
+        e = r_par[j, 0]
+        l = r_par[j, 1]
+        m = r_par[j, 2]
+        c = r_par[j, 3]
+        t = r_tgt[j]
+        k = n_w + j
+        for b in range(nb):
+            u = us[k, b]
+            z = zr_loc[j, b]
+            nv[t, b] += m * z + c * u
+            zr_loc[j, b] = e * z + l * u
+    for j in range(n_c):
+        er = c_par[j, 0]
+        ei = c_par[j, 1]
+        l00 = c_par[j, 2]
+        l10 = c_par[j, 3]
+        l11 = c_par[j, 4]
+        mr = c_par[j, 5]
+        mi = c_par[j, 6]
+        c1 = c_par[j, 7]
+        c2 = c_par[j, 8]
+        t = c_tgt[j]
+        k = n_w + n_r + 2 * j
+        for b in range(nb):
+            u1 = us[k, b]
+            u2 = us[k + 1, b]
+            zre = zc_loc[j, 0, b]
+            zim = zc_loc[j, 1, b]
+            nv[t, b] += mr * zre - mi * zim + c1 * u1 + c2 * u2
+            zc_loc[j, 0, b] = er * zre - ei * zim + l00 * u1
+            zc_loc[j, 1, b] = er * zim + ei * zre + l10 * u1 + l11 * u2
 
 
 @njit(cache=True)
-def _noise_field_accel(qm, fe, ex, ey, ez):
+def _n_hashes(w_sd, r_par, c_par):
+    """Hashes per step: three uniform numbers each (see _innovations)."""
+    return (w_sd.shape[0] + r_par.shape[0] + 2 * c_par.shape[0] + 2) // 3
+
+
+@njit(cache=True)
+def noise_series(n_steps, tones, keys, step0, w_tgt, w_sd, r_tgt, r_par, z_real, c_tgt, c_par, z_rot):
+    """The noise values (n_steps, 3 + 2 K, T) that :func:`advance` applies
+    over ``n_steps`` steps from the global step ``step0``, from the same
+    per-step function (:func:`_noise_step`); K from the tones' width (3 + 2
+    K columns); z_real (M_r, T) and z_rot (M_c, 2, T) are advanced in place.
+    For tests and diagnostics: a run never stores them."""
+    T = keys.shape[0]
+    n_t = tones.shape[1]
+    out = np.empty((n_steps, n_t, T))
+    us = np.empty((3 * _n_hashes(w_sd, r_par, c_par), T))
+    nv = np.empty((n_t, T))
+    zr = z_real.copy()
+    zc = z_rot.copy()
+    for s in range(n_steps):
+        _noise_step(0, s, step0 + s, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr, c_tgt, c_par, zc, us, nv)
+        out[s] = nv
+    z_real[:] = zr
+    z_rot[:] = zc
+    return out
+
+
+@njit(cache=True)
+def _noise_field_accel(qm, nv, ex, ey, ez):
     """(Q/m) E(s): the uniform noise field's acceleration for the step."""
     n_ions, nb = ex.shape
     for i in range(n_ions):
         f = qm[i]
         for b in range(nb):
-            ex[i, b] = f * fe[0, b]
-            ey[i, b] = f * fe[1, b]
-            ez[i, b] = f * fe[2, b]
+            ex[i, b] = f * nv[0, b]
+            ey[i, b] = f * nv[1, b]
+            ez[i, b] = f * nv[2, b]
 
 
 @njit(cache=True)
-def _noise_accel(px, py, qm, n_orders, ge, ex, ey, ez, nx, ny, nz, zr, zi):
+def _noise_accel(px, py, qm, n_orders, nv, ex, ey, ez, nx, ny, nz, zr, zi):
     """Noise accelerations (nx, ny, nz) at the current positions: the uniform
     field's (ex, ey, ez), plus -(Q/m) grad Re[g_n z^n] for each multipole
     order (the pinning formula with C = g_n, :mod:`mdrotor.multipole`)."""
@@ -380,8 +513,8 @@ def _noise_accel(px, py, qm, n_orders, ge, ex, ey, ez, nx, ny, nz, zr, zi):
                     zi[b] = zr[b] * y + zi[b] * x
                     zr[b] = t
             for b in range(nb):
-                cr = ge[p, 0, b]
-                ci = ge[p, 1, b]
+                cr = nv[3 + 2 * p, b]
+                ci = nv[4 + 2 * p, b]
                 nx[i, b] -= f * (cr * zr[b] - ci * zi[b])
                 ny[i, b] += f * (cr * zi[b] + ci * zr[b])
 
@@ -501,18 +634,22 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
         (1 while the pinning is strong enough to define a lag) at the step
         ends; lag_stride: steps between updates; lag_u : (2, T) [unwrapped
         phase arg(M_n) - n theta, last raw phase], updated in place.
-    noise : tuple (n_field, n_orders, n_gre, n_gim, w_field, w_g, keys, step0)
-        Noise values held constant over each step (:mod:`mdrotor.noise`):
-        the coloured parts and tones pre-generated, uniform field
-        (n_steps, 3, T) in V/m (or shape (0, 3, 0) for none), multipole
-        orders (K,) and their g_re, g_im (n_steps, K, T) in V/m^n (or (0,
-        0, 0)); the white parts drawn here (see _noise_step): per-step
-        standard deviations w_field (3,) and w_g (K, 2), each trajectory's
-        64-bit key (T,), and the global index of the block's first step
-        (the counter). Step s's values give one kick after the
-        deterministic step, dt times the noise acceleration at the step's end
-        (a first-order splitting, exact for the impulse of a uniform field;
-        a white process has no timing within a step to resolve).
+    noise : tuple (n_orders, tones, keys, step0, w_tgt, w_sd, r_tgt, r_par, z_real, c_tgt, c_par, z_rot)
+        Noise values held constant over each step (:mod:`mdrotor.noise`),
+        all computed here per step (see _noise_step): multipole orders
+        (K,); the tones' step averages (n_steps, 3 + 2 K), or no rows; each
+        trajectory's 64-bit key (T,) and the global index of the block's
+        first step (the counters of the draws); the white slots' targets
+        (W,) and per-step standard deviations (W,); the colored
+        Ornstein-Uhlenbeck modes: real modes' targets (M_r,), coefficients
+        (M_r, 4) and states z_real (M_r, T), rotating modes' targets (M_c,),
+        coefficients (M_c, 9) and states z_rot (M_c, 2, T); the states are
+        advanced in place. Targets are rows of the noise values: 0-2 the
+        field's x, y, z, 3 + 2 p and 4 + 2 p g_re and g_im of order p. Step s's values give one
+        kick after the deterministic step, dt times the noise acceleration
+        at the step's end (a first-order splitting, exact for the impulse of
+        a uniform field; a white process has no timing within a step to
+        resolve).
     laser : tuple (khat, par, centre, vrec, emit, keys, step0, photons)
         Doppler-cooling beams (:mod:`mdrotor.laser`), L of them (L = 0:
         none): khat (L, 3) unit vectors, par (L, 5) (|k|, Gamma, delta,
@@ -537,10 +674,26 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
     for j in range(poly_exps.shape[0]):
         poly_deg = max(poly_deg, poly_exps[j, 0], poly_exps[j, 1], poly_exps[j, 2])
     masses, charges, lag_n, lag_theta, lag_track, lag_stride, lag_u = lag
-    n_field, n_orders, n_gre, n_gim, w_field, w_g, keys, step0 = noise
+    n_orders, tones, keys, step0, w_tgt, w_sd, r_tgt, r_par, z_real, c_tgt, c_par, z_rot = noise
     l_khat, l_par, l_centre, l_vrec, l_emit, l_keys, l_step0, l_photons = laser
     n_beams = l_khat.shape[0]
-    has_white_field = w_field[0] != 0.0 or w_field[1] != 0.0 or w_field[2] != 0.0
+    has_field = False
+    for j in range(w_tgt.shape[0]):
+        if w_tgt[j] < 3 and w_sd[j] != 0.0:
+            has_field = True
+    for j in range(r_tgt.shape[0]):
+        if r_tgt[j] < 3:
+            has_field = True
+    for j in range(c_tgt.shape[0]):
+        if c_tgt[j] < 3:
+            has_field = True
+    for st in range(tones.shape[0]):
+        if tones[st, 0] != 0.0 or tones[st, 1] != 0.0 or tones[st, 2] != 0.0:
+            has_field = True
+    has_multipole = n_orders.shape[0] > 0
+    n_mr = r_par.shape[0]
+    n_mc = c_par.shape[0]
+    n_hash = _n_hashes(w_sd, r_par, c_par)
     use_rf = False
     for i in range(rf2.shape[0]):
         for u in range(3):
@@ -587,10 +740,17 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
         ex = np.zeros((n_ions, nb))
         ey = np.zeros((n_ions, nb))
         ez = np.zeros((n_ions, nb))
-        has_field = n_field.shape[0] > 0 or has_white_field
-        has_multipole = n_orders.shape[0] > 0
-        fe = np.zeros((3, nb))
-        ge = np.zeros((n_orders.shape[0], 2, nb))
+        nv = np.zeros((3 + 2 * n_orders.shape[0], nb))
+        us = np.empty((3 * n_hash, nb))
+        zr_loc = np.empty((n_mr, nb))
+        zc_loc = np.empty((n_mc, 2, nb))
+        for j in range(n_mr):
+            for b in range(nb):
+                zr_loc[j, b] = z_real[j, b0 + b]
+        for j in range(n_mc):
+            for b in range(nb):
+                zc_loc[j, 0, b] = z_rot[j, 0, b0 + b]
+                zc_loc[j, 1, b] = z_rot[j, 1, b0 + b]
         n_ph = np.empty(nb if n_beams > 0 else 0)
         sd_ph = np.empty(nb if n_beams > 0 else 0)
         if use_rf:
@@ -601,9 +761,10 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
             _poly_accel(px, py, pz, ax, ay, az, qm, poly_exps, poly_coef[0], xp, yp, zp)
         for s in range(n_steps):
             if has_field or has_multipole:
-                _noise_step(b0, s, step0 + s, n_field, n_gre, n_gim, w_field, w_g, keys, fe, ge)
+                _noise_step(b0, s, step0 + s, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr_loc, c_tgt, c_par, zc_loc,
+                            us, nv)
             if has_field:
-                _noise_field_accel(qm, fe, ex, ey, ez)
+                _noise_field_accel(qm, nv, ex, ey, ez)
             for k in range(n_sub):
                 h = fracs[k] * dt
                 _kick_drift(px, py, pz, vx, vy, vz, ax, ay, az, 0.5 * h, h)
@@ -618,7 +779,7 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
             # the step's noise impulse, dt times the noise acceleration at the
             # step's end (a kick after the deterministic step)
             if has_multipole:
-                _noise_accel(px, py, qm, n_orders, ge, ex, ey, ez, nx, ny, nz, zr, zi)
+                _noise_accel(px, py, qm, n_orders, nv, ex, ey, ez, nx, ny, nz, zr, zi)
                 _kick(vx, vy, vz, nx, ny, nz, dt)
             elif has_field:
                 _kick(vx, vy, vz, ex, ey, ez, dt)
@@ -640,3 +801,10 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
                 vel[0, i, b0 + b] = vx[i, b]
                 vel[1, i, b0 + b] = vy[i, b]
                 vel[2, i, b0 + b] = vz[i, b]
+        for j in range(n_mr):
+            for b in range(nb):
+                z_real[j, b0 + b] = zr_loc[j, b]
+        for j in range(n_mc):
+            for b in range(nb):
+                z_rot[j, 0, b0 + b] = zc_loc[j, 0, b]
+                z_rot[j, 1, b0 + b] = zc_loc[j, 1, b]

@@ -232,6 +232,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import NamedTuple
 
 import numpy as np
@@ -248,6 +249,7 @@ __all__ = [
     "NoiseModel",
     "NoiseState",
     "NoiseBlock",
+    "KernelNoiseState",
     "DiffusionConstant",
     "parse_noise",
     "model_from_config",
@@ -272,6 +274,7 @@ FIT_DENSITIES = (2, 3, 4, 6)       # OU corners per decade, tried in turn
 FIT_EXTENSION_DECADES = 1.5        # corners reach this far beyond the band
 FIT_TOLERANCE = 2e-3               # largest relative error accepted in the band
 DRAW_BUDGET_BYTES = 32 * 2**20     # random normals held at once by generate()
+NOISE_STREAM = 3                   # counter keys (mdrotor.sampling.counter_keys) of the kernel's draws
 
 _SRC = "mdrotor.noise"
 
@@ -618,6 +621,37 @@ class NoiseState:
         return len(self.indices)
 
 
+@dataclass(eq=False)
+class KernelNoiseState:
+    """What the compiled kernel carries for each trajectory from block to
+    block and stage to stage (:meth:`NoiseModel.kernel_state`).
+
+    Attributes
+    ----------
+    seed : int
+    indices : (T,) int64
+        The trajectories' indices in the run.
+    keys : (T,) uint64
+        Counter keys of every draw (white kicks, colored innovations,
+        initial states; stream 3), :func:`mdrotor.sampling.counter_keys`.
+    z_real : (M_r, T) float64
+        Real OU modes' states (the process at PSD scale 1), in the order of
+        :meth:`NoiseModel.kernel_layout`.
+    z_rot : (M_c, 2, T) float64
+        Rotating modes' states (real and imaginary parts).
+    """
+
+    seed: int
+    indices: np.ndarray
+    keys: np.ndarray
+    z_real: np.ndarray
+    z_rot: np.ndarray
+
+    @property
+    def n_trajectories(self) -> int:
+        return len(self.indices)
+
+
 # ---------------------------------------------------------------------------
 # OU step coefficients
 # ---------------------------------------------------------------------------
@@ -776,23 +810,6 @@ class NoiseModel:
         """Any Ornstein-Uhlenbeck (Lorentzian or power-law) part or tone."""
         return any(len(s.spectrum.variance) for s in self.sources) or bool(self.tones)
 
-    def white_sd(self, dt_s: float, stage: str | None = None):
-        """Per-step standard deviations of the white parts, sqrt(scale S_w / (2 dt)):
-        ``(field (3,) V/m, multipole (K, 2) V/m^n for g_re, g_im of each order)``.
-        The engine draws these kicks inside the kernel (:mod:`mdrotor.kernels`)."""
-        field = np.zeros(3)
-        mult = np.zeros((len(self.orders), 2))
-        for src in self.sources:
-            w = src.spectrum.white_level * src.scale(stage)
-            if w <= 0:
-                continue
-            sd = math.sqrt(w / (2.0 * dt_s))
-            if src.target == "field":
-                field[src.channel] = math.hypot(field[src.channel], sd)
-            else:
-                mult[src.channel, src.part] = math.hypot(mult[src.channel, src.part], sd)
-        return field, mult
-
     def active(self, stage: str | None) -> bool:
         """True if any noise or tone is on during ``stage``.
 
@@ -942,7 +959,175 @@ class NoiseModel:
         out["total"] = DiffusionConstant(total, total / HBAR**2)
         return out
 
-    # -- time-domain synthesis -------------------------------------------------
+    # -- the compiled kernel's arrays -------------------------------------------
+    @property
+    def n_targets(self) -> int:
+        """Rows of the kernel's noise values: the field's x, y, z, then g_re,
+        g_im of each order in :attr:`orders`."""
+        return 3 + 2 * len(self.orders)
+
+    @staticmethod
+    def _target(src) -> int:
+        return src.channel if src.target == "field" else 3 + 2 * src.channel + src.part
+
+    @cached_property
+    def _kernel_modes(self) -> tuple:
+        """(real, rotating): per OU mode (source index, gamma rad/s, Omega
+        rad/s, variance), sources in order, each source's modes in its
+        spectrum's order."""
+        real, rot = [], []
+        for si, src in enumerate(self.sources):
+            sp = src.spectrum
+            for fw, fc, var in zip(sp.corner_hz, sp.center_hz, sp.variance):
+                (real if fc == 0.0 else rot).append((si, TWO_PI * fw, TWO_PI * fc, var))
+        return tuple(real), tuple(rot)
+
+    def kernel_layout(self) -> tuple:
+        """Targets (rows of the kernel's noise values, see :attr:`n_targets`)
+        of the real modes (M_r,) and of the rotating modes (M_c,), int64."""
+        real, rot = self._kernel_modes
+        tr = np.array([self._target(self.sources[m[0]]) for m in real], dtype=np.int64)
+        tc = np.array([self._target(self.sources[m[0]]) for m in rot], dtype=np.int64)
+        return tr, tc
+
+    @cached_property
+    def _coefficient_cache(self) -> dict:
+        return {}
+
+    def _unit_coefficients(self, dt_s: float) -> tuple:
+        """Per mode at PSD scale 1: the real modes' (e, l, m, c, r) and the
+        rotating modes' (Re e, Im e, l00, l10, l11, Re m, Im m, c1, c2, r),
+        r the variance of the step average's part independent of the state
+        and the innovations (see :meth:`kernel_coefficients`)."""
+        got = self._coefficient_cache.get(dt_s)
+        if got is not None:
+            return got
+        real, rot = self._kernel_modes
+        rp = np.zeros((len(real), 5))
+        for j, (_, gam, _, var) in enumerate(real):
+            decay, mean, cov = ou_step_covariance(gam, 0.0, var, dt_s)
+            L = _cholesky(cov[np.ix_([0, 2], [0, 2])])
+            rp[j] = (decay.real, L[0, 0], mean.real, L[1, 0], L[1, 1] ** 2)
+        cp = np.zeros((len(rot), 10))
+        for j, (_, gam, om, var) in enumerate(rot):
+            decay, mean, cov = ou_step_covariance(gam, om, var, dt_s)
+            L = _cholesky(cov)
+            cp[j] = (decay.real, decay.imag, L[0, 0], L[1, 0], L[1, 1], mean.real, mean.imag, L[2, 0], L[2, 1],
+                     L[2, 2] ** 2)
+        if len(self._coefficient_cache) > 16:
+            self._coefficient_cache.clear()
+        self._coefficient_cache[dt_s] = (rp, cp)
+        return rp, cp
+
+    def white_targets(self) -> np.ndarray:
+        """The kernel's white slots: the targets (rows of the noise values,
+        :attr:`n_targets`) that any noise source drives, int64, ascending.
+        Fixed for the model, so the counters of the draws are too."""
+        return np.array(sorted({self._target(s) for s in self.sources}), dtype=np.int64)
+
+    def kernel_coefficients(self, dt_s: float, stage: str | None = None) -> tuple:
+        """The compiled kernel's per-step coefficients (:func:`mdrotor.kernels._noise_step`).
+
+        The exact joint update of an OU mode and its step average
+        (:func:`ou_step_covariance`), written with one innovation per real
+        mode: ``(xi, eta)`` has the Cholesky factor ``L``, ``xi = l u1``,
+        ``eta = c u1 + r^(1/2) u2`` with ``l = L00``, ``c = L10``, ``r =
+        L11^2``, u1, u2 independent of unit variance, so
+
+            avg_k = m z_k + c u1 + r^(1/2) u2,      z_{k+1} = e z_k + l u1
+
+        (``e = e^{-gamma dt}``, ``m = phi(gamma dt)``). The last term is
+        independent of everything else and of the other steps: white, so it
+        joins the white kick of the mode's target, whose per-step variance
+        becomes ``scale (S_w / (2 dt) + sum r)``. A rotating mode does the
+        same with two innovations (``(Re xi, Im xi, Re eta)`` from the 3 x 3
+        factor). The state is the process at PSD scale 1; the stage's scale
+        multiplies the mode's contribution by ``scale^(1/2)``. The same
+        second moments as :meth:`generate`: the same PSD.
+
+        Returns
+        -------
+        w_sd : (W,) array
+            White per-step standard deviation of each of
+            :meth:`white_targets` (V/m for the field, V/m^n for order n).
+        r_par : (M_r, 4) array
+            ``(e, l, a m, a c)`` per real mode, ``a = scale^(1/2)``.
+        c_par : (M_c, 9) array
+            ``(Re e, Im e, l00, l10, l11, a Re m, a Im m, a L20, a L21)``
+            per rotating mode.
+        """
+        rp, cp = self._unit_coefficients(float(dt_s))
+        real, rot = self._kernel_modes
+        white = np.zeros(self.n_targets)
+        for src in self.sources:
+            white[self._target(src)] += src.scale(stage) * src.spectrum.white_level / (2.0 * dt_s)
+        r_par = rp[:, :4].copy()
+        for j, mode in enumerate(real):
+            a2 = self.sources[mode[0]].scale(stage)
+            r_par[j, 2:4] *= math.sqrt(a2)
+            white[self._target(self.sources[mode[0]])] += a2 * rp[j, 4]
+        c_par = cp[:, :9].copy()
+        for j, mode in enumerate(rot):
+            a2 = self.sources[mode[0]].scale(stage)
+            c_par[j, 5:9] *= math.sqrt(a2)
+            white[self._target(self.sources[mode[0]])] += a2 * cp[j, 9]
+        return np.sqrt(white[self.white_targets()]), r_par, c_par
+
+    def tone_values(self, t_start_s: float, dt_s: float, step0: int, n_steps: int, stage: str | None = None) -> np.ndarray:
+        """The tones' step averages over steps ``step0 .. step0 + n_steps - 1``
+        (``[t_k, t_k + dt)``, ``t_k = t_start_s + dt_s k``), (n_steps,
+        :attr:`n_targets`), the same for every trajectory; (0, n_targets)
+        when no tone is on during ``stage``."""
+        on = [t for t in self.tones if t.on(stage) and t.amplitude != 0]
+        if not on or n_steps <= 0:
+            return np.zeros((0, self.n_targets))
+        out = np.zeros((n_steps, self.n_targets))
+        t_mid = t_start_s + dt_s * (step0 + np.arange(n_steps) + 0.5)
+        for tone in on:
+            re, im = tone.step_average(t_mid, dt_s)
+            if tone.target == "field":
+                out[:, tone.channel] += re
+                continue
+            if re is not None:
+                out[:, 3 + 2 * tone.channel] += re
+            if im is not None:
+                out[:, 4 + 2 * tone.channel] += im
+        return out
+
+    def kernel_state(self, seed: int, indices) -> KernelNoiseState:
+        """Each trajectory's key and stationary initial OU states for the
+        compiled kernel (the run's noise). The states are drawn from the
+        stationary distribution, Gaussian with the mode's variance (per part
+        for a rotating mode), by Box-Muller from the key's counter hash
+        (:func:`mdrotor.kernels.normals`): a function of (seed, trajectory
+        index) only."""
+        from .kernels import normals
+        from .sampling import counter_keys
+
+        idx = np.asarray(indices, dtype=np.int64).reshape(-1)
+        keys = counter_keys(seed, idx, NOISE_STREAM)
+        real, rot = self._kernel_modes
+        n_r, n_c = len(real), len(rot)
+        g = normals(keys, np.uint64(2**64 - 1), n_r + 2 * n_c) if n_r + n_c else np.zeros((0, len(idx)))
+        sd_r = np.sqrt(np.array([m[3] for m in real], dtype=float))
+        sd_c = np.sqrt(np.array([m[3] for m in rot], dtype=float))
+        z_real = np.ascontiguousarray(g[:n_r] * sd_r[:, None])
+        z_rot = np.ascontiguousarray(g[n_r:].reshape(n_c, 2, len(idx)) * sd_c[:, None, None])
+        return KernelNoiseState(int(seed), idx, keys, z_real, z_rot)
+
+    def kernel_arrays(self, state: KernelNoiseState, *, t_start_s: float, dt_s: float, step0: int, n_steps: int,
+                      global_step0: int, stage: str | None = None) -> tuple:
+        """The kernel's ``noise`` tuple (:func:`mdrotor.kernels.advance`) for
+        ``n_steps`` steps of ``stage`` from its step ``step0`` (time as in
+        :meth:`tone_values`), the run's global step ``global_step0`` (the
+        counter of the draws)."""
+        r_tgt, c_tgt = self.kernel_layout()
+        w_sd, r_par, c_par = self.kernel_coefficients(dt_s, stage)
+        tones = self.tone_values(t_start_s, dt_s, step0, n_steps, stage)
+        return (np.asarray(self.orders, dtype=np.int64), tones, state.keys, int(global_step0), self.white_targets(),
+                w_sd, r_tgt, r_par, state.z_real, c_tgt, c_par, state.z_rot)
+
+    # -- numpy reference synthesis ----------------------------------------------
     def new_state(self, seed: int, indices) -> NoiseState:
         """Generator state for trajectories ``indices`` of a run with ``seed``.
 

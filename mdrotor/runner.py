@@ -167,7 +167,7 @@ def _integrate_indices(plan, seed: int, idx: np.ndarray, chunk: int, progress: b
     pos, vel = initial_states(plan, seed, idx)
     phases = plan.rf_phases(seed, idx) if plan.rf else None
     compile_s = _warm_up(plan, pos, vel, seed, idx, phases)
-    noise_state = plan.noise.new_state(seed, idx) if plan.noise is not None else None
+    noise_state = plan.noise.kernel_state(seed, idx) if plan.noise is not None else None
     bar = None
     if progress:
         from tqdm import tqdm
@@ -339,7 +339,7 @@ def _warm_up(plan, pos, vel, seed, idx, phases) -> float:
 
     if pos.shape[2] == 0:
         return 0.0
-    ns = plan.noise.new_state(seed, idx[:1]) if plan.noise is not None else None
+    ns = plan.noise.kernel_state(seed, idx[:1]) if plan.noise is not None else None
     return warm_up(plan, pos, vel, phases, ns)
 
 

@@ -31,8 +31,17 @@ KB = sc.k
 
 def trajectory_rng(seed: int, index: int, stream: int = 0) -> np.random.Generator:
     """The generator of trajectory ``index`` (stream 0: initial state,
-    stream 1: noise)."""
+    stream 1: the noise's numpy reference synthesis, stream 2: RF phase)."""
     return np.random.Generator(np.random.PCG64DXSM(np.random.SeedSequence(seed, spawn_key=(index, stream))))
+
+
+def counter_keys(seed: int, indices, stream: int) -> np.ndarray:
+    """Each trajectory's 64-bit key (T,) for the kernels' counter-based draws
+    (:func:`mdrotor.kernels._uniform`): ``SeedSequence(seed, spawn_key=(index,
+    stream))``, a function of (seed, trajectory index, stream) only. Streams:
+    3 white noise, 4 laser, 5 colored noise."""
+    return np.array([np.random.SeedSequence(int(seed), spawn_key=(int(i), int(stream))).generate_state(1, np.uint64)[0]
+                     for i in np.asarray(indices).reshape(-1)], dtype=np.uint64)
 
 
 def mode_occupations(modes, temperature_k: float, selectors=(), wigner: bool = True) -> np.ndarray:

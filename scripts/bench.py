@@ -561,7 +561,7 @@ def bench_engine(label, raw, n_traj, n_steps, repeats, threads, seed=1) -> dict:
     phases = plan.rf_phases(seed, idx) if plan.rf else None
     best = best_cpu = math.inf
     for r in range(repeats + 1):  # the first call compiles
-        noise_state = plan.noise.new_state(seed, idx) if plan.noise is not None else None
+        noise_state = plan.noise.kernel_state(seed, idx) if plan.noise is not None else None
         stepper = engine._Stepper(plan, n_traj, auto_chunk(n_traj, threads), phases, noise_state,
                                   laser_keys=engine.laser_keys(seed, idx) if plan.lasers else None)
         pos, vel = pos0.copy(), vel0.copy()
