@@ -64,10 +64,7 @@ a sum of independent pieces:
 * white level ``S_w``: the step average of white noise is Gaussian with
   variance ``S_w / (2 dt)``, independent between steps (a discrete white
   kick, momentum ``Q E_k dt``; this reproduces the heating rate of
-  Turchette et al., below). In runs the engine draws this part inside the
-  kernel instead (``generate(..., white=False)`` plus
-  :meth:`NoiseModel.white_sd`): uniform kicks of the same variance from a
-  counter-based hash, see :func:`mdrotor.kernels._noise_step`;
+  Turchette et al., below);
 * Ornstein-Uhlenbeck (OU) modes, real (``dx = -gamma x dt + noise``, one-sided
   PSD ``(4 sigma^2 / gamma) / (1 + (2 pi f / gamma)^2)``) or rotating complex
   (``dz = -(gamma - i Omega) z dt + noise``, ``x = Re z``, PSD
@@ -96,27 +93,46 @@ complex rate ``lambda = gamma - i Omega``): with ``mu = lambda dt``,
     <xi eta*> = 4 a sigma^2 [phi(mu) - phi(2a)] / conj(mu)
 
 (``xi``, ``eta`` circular complex Gaussians; the real mode uses the real
-parts, whose covariances are half of these). The recursion is run with
-``scipy.signal.lfilter`` whose final state is carried to the next block, so
-the samples do not depend on how the time axis is cut into blocks.
-In the band the dynamics responds to (``f << 1/dt``) the sampled sequence
-has the configured PSD times ``sinc^2(f dt)`` plus aliases, within 0.3 %
-for ``f dt <= 1/40`` (the engine's default time step).
+parts, whose covariances are half of these). In the band the dynamics
+responds to (``f << 1/dt``) the sampled sequence has the configured PSD
+times ``sinc^2(f dt)`` plus aliases, within 0.3 % for ``f dt <= 1/40`` (the
+engine's default time step).
 
-Randomness: trajectory ``b`` of a run with seed ``s`` draws from
+*In a run* the compiled kernel computes every sample per step
+(:func:`mdrotor.kernels._noise_step`, with the arrays of
+:meth:`NoiseModel.kernel_arrays`). ``eta`` is split into its part along
+``xi`` and a remainder independent of everything else and of the other
+steps (:meth:`NoiseModel.kernel_coefficients`): the remainder is white and
+joins the white kick of the same component, so a real mode takes one
+random number per step and a rotating mode two. The random numbers are
+uniform, of unit variance, from a counter-based hash of each trajectory's
+key (``SeedSequence(seed, spawn_key=(index, 3))``) and the run's global step
+index, three per hash (:func:`mdrotor.kernels._innovations`): white
+components first (:meth:`NoiseModel.white_targets`), then the real modes,
+then the rotating modes, in source order. Any distribution with these
+variances gives the same second moments, so the same PSD and rates
+(uniform kicks: B. Duenweg and W. Paul, Int. J. Mod. Phys. C 2, 817
+(1991)); a slow mode, a sum of many innovations, is Gaussian to the
+central limit. The OU states are carried per trajectory across blocks and
+stages (:class:`KernelNoiseState`) and start from the stationary
+distribution, Gaussian, by Box-Muller from the same hash
+(:func:`mdrotor.kernels.normals`). Results are bit-identical whatever the
+block lengths, the trajectory chunks, the order or the thread count. Cost
+per step and trajectory: one hash per three random numbers and a few
+multiplications per mode; a power law over D decades uses at most 2 D + 7
+modes per component (x, y, z or re, im), fewer after the fit drops unused
+corners (9 for 50 kHz to 5 MHz, alpha = 1).
+
+*The numpy reference* (:meth:`NoiseModel.new_state`,
+:meth:`NoiseModel.generate`; the tests compare its PSD and the kernel's
+with the configured one) draws Gaussian numbers from
 ``mdrotor.sampling.trajectory_rng(s, b, stream=1)``: first the stationary
-initial OU states, then per block an array ``(n_steps, n_normals)`` of
-standard normals in a fixed order (entries in config order; per entry and
-axis/part: white, then per real mode (xi, eta), then per rotating mode
-(Re xi, Im xi, Re eta)). Results are bit-identical whatever the block
-lengths, the trajectory chunks or the thread count.
-
-Cost: per step and trajectory, 1 normal for a white component, 2 per real
-OU mode, 3 per rotating mode. A power law over D decades uses at most
-2 D + 7 modes per component (x, y, z or re, im), fewer after the fit
-drops unused corners (11 for 1 kHz to 10 MHz, alpha = 1). Drawing the
-normals dominates: with such a power law on x, y, z (68 normals) generation
-takes about 2 us per step and trajectory on one core.
+initial OU states, then per block an array ``(n_steps, n_normals)`` in a
+fixed order (entries in config order; per entry and axis/part: white, then
+per real mode (xi, eta), then per rotating mode (Re xi, Im xi, Re eta)),
+and runs the recursion with ``scipy.signal.lfilter``, whose final state is
+carried to the next block. About 1 us per step and trajectory for a 1/f
+band of two decades on x, y, z: a run does not use it.
 
 Heating of the centre-of-mass motion
 ------------------------------------
@@ -805,11 +821,6 @@ class NoiseModel:
     def n_normals_per_step(self) -> int:
         return sum(s.n_normals for s in self.sources)
 
-    @property
-    def has_colored(self) -> bool:
-        """Any Ornstein-Uhlenbeck (Lorentzian or power-law) part or tone."""
-        return any(len(s.spectrum.variance) for s in self.sources) or bool(self.tones)
-
     def active(self, stage: str | None) -> bool:
         """True if any noise or tone is on during ``stage``.
 
@@ -982,6 +993,13 @@ class NoiseModel:
                 (real if fc == 0.0 else rot).append((si, TWO_PI * fw, TWO_PI * fc, var))
         return tuple(real), tuple(rot)
 
+    @property
+    def n_kernel_states(self) -> int:
+        """Doubles of OU state per trajectory in the kernel: one per real
+        mode, two per rotating mode."""
+        real, rot = self._kernel_modes
+        return len(real) + 2 * len(rot)
+
     def kernel_layout(self) -> tuple:
         """Targets (rows of the kernel's noise values, see :attr:`n_targets`)
         of the real modes (M_r,) and of the rotating modes (M_c,), int64."""
@@ -1129,7 +1147,8 @@ class NoiseModel:
 
     # -- numpy reference synthesis ----------------------------------------------
     def new_state(self, seed: int, indices) -> NoiseState:
-        """Generator state for trajectories ``indices`` of a run with ``seed``.
+        """The numpy reference's generator state for trajectories ``indices``
+        (a run uses :meth:`kernel_state`).
 
         Draws the stationary initial OU states from
         ``trajectory_rng(seed, index, stream=1)``."""
@@ -1162,8 +1181,10 @@ class NoiseModel:
         return NoiseState(int(seed), idx, rngs, z_real, zi_real, z_rot, zi_rot)
 
     def generate(self, state: NoiseState, *, t_start_s: float, dt_s: float, step0: int, n_steps: int,
-                 stage: str | None = None, white: bool = True) -> NoiseBlock:
-        """Noise samples for the next ``n_steps`` steps of every trajectory of ``state``.
+                 stage: str | None = None) -> NoiseBlock:
+        """Noise samples for the next ``n_steps`` steps of every trajectory of
+        ``state``: the numpy reference synthesis (the tests compare it and the
+        compiled kernel's, :meth:`kernel_arrays`, with the configured PSD).
 
         Parameters
         ----------
@@ -1194,7 +1215,7 @@ class NoiseModel:
         if coeffs is None:
             coeffs = [_coefficients(s, dt_s) for s in self.sources]
             state.cache = {dt_s: coeffs}
-        n_norm = self.n_normals_per_step - (0 if white else sum(1 for s in self.sources if s.spectrum.white_level > 0))
+        n_norm = self.n_normals_per_step
         if n_steps > 0 and n_norm > 0:
             tc = max(1, min(T, DRAW_BUDGET_BYTES // (8 * n_steps * n_norm)))
             for c0 in range(0, T, tc):
@@ -1204,7 +1225,7 @@ class NoiseModel:
                     state.rngs[b].standard_normal(out=draws[b - c0])
                 col = 0
                 for si, (src, cf) in enumerate(zip(self.sources, coeffs)):
-                    y, col = _run_source(src, cf, state, si, draws, col, c0, c1, new_dt, white)
+                    y, col = _run_source(src, cf, state, si, draws, col, c0, c1, new_dt)
                     a = math.sqrt(src.scale(stage))
                     if a != 1.0:
                         y *= a
@@ -1230,14 +1251,13 @@ class NoiseModel:
                           float(t_start_s), float(dt_s), int(step0), int(n_steps))
 
 
-def _run_source(src, cf, state, si, draws, col, c0, c1, new_dt, white=True):
-    """Samples (Tc, n_steps) of one source for trajectories c0:c1; advances its state.
-    ``white=False`` leaves the white part out (the engine draws it in the kernel)."""
+def _run_source(src, cf, state, si, draws, col, c0, c1, new_dt):
+    """Samples (Tc, n_steps) of one source for trajectories c0:c1; advances its state."""
     from scipy.signal import lfilter
 
     tc, n = draws.shape[0], draws.shape[1]
     y = np.zeros((tc, n))
-    if white and src.spectrum.white_level > 0:
+    if src.spectrum.white_level > 0:
         y += cf.white_sd * draws[:, :, col]
         col += 1
     zr, zir = state.z_real[si], state.zi_real[si]

@@ -356,14 +356,13 @@ def resource_estimate(cfg, n_traj: int) -> dict:
     phonon numbers, plus three flags); the temporary arrays of one
     observation (about 60 N doubles, 90 N in the RF model, where the state is
     also filtered over two RF periods, and 512 bytes of bookkeeping); with
-    coloured noise, one block of noise samples (``engine.BLOCK_STEPS`` steps
-    of the field and of each multipole order, plus a quarter for the draws).
+    noise, the kernel's per-trajectory state (a key, each Ornstein-Uhlenbeck
+    mode's state and the normal numbers that start it, :meth:`mdrotor.noise.
+    NoiseModel.kernel_state`).
     The file holds the observations at t = 0, at every stage end and again
     under /final. The peaks measured with tracemalloc (docs/results.md, "Memory
     and file size") stay below this estimate by 0 to 40 %.
     """
-    from .engine import BLOCK_STEPS
-
     n = len(cfg.masses_kg)
     m = 3 * n
     s = len(cfg.schedule.stages) if cfg.schedule is not None else 1
@@ -374,8 +373,8 @@ def resource_estimate(cfg, n_traj: int) -> dict:
         from .noise import model_from_config
 
         model = model_from_config(cfg)
-        if not model.is_empty and model.has_colored:
-            noise = int(1.25 * _F8 * BLOCK_STEPS * (3 + 2 * len(model.orders)))
+        if not model.is_empty:
+            noise = _F8 * (2 + 2 * model.n_kernel_states)
     mem = _F8 * 6 * n + (s + 1) * per_obs + temp + noise
     disk = (s + 2) * _F8 * (6 + m)
     return {"memory_per_trajectory_bytes": mem, "file_per_trajectory_bytes": disk,
