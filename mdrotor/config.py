@@ -20,7 +20,7 @@ from . import units
 from .errors import InputError, PhysicsError
 from .inputfiles import read_text
 from .multipole import MultipoleTerm
-from .schedule import Schedule, Stage, parse_profile
+from .schedule import Schedule, Stage, parse_profile, stage_scales
 from .trap import Trap
 
 # allowed keys per section (anything else is a typo and is refused)
@@ -561,35 +561,6 @@ def _unit_vector(v, key, source, what) -> np.ndarray:
     return u / norm
 
 
-def _stage_scales(v, key, names, source):
-    """A laser's intensity multiplier per stage: a table {stage = multiplier}
-    (unlisted stages 1) or a list of the stages in which it is on (elsewhere
-    0); the same shape as a noise entry's ``stages``."""
-    if v is None:
-        return {}, 1.0
-    if isinstance(v, list):
-        for i, st in enumerate(v):
-            _stage_name(st, f"{key}[{i}]", names, source)
-        return {st: 1.0 for st in v}, 0.0
-    if not isinstance(v, dict):
-        raise InputError(key, "expected a table { stage = intensity multiplier } or a list of stage names", source)
-    out = {}
-    for st, x in v.items():
-        _stage_name(st, f"{key}.{st}", names, source)
-        val = units.number(x, f"{key}.{st}", source, "a non-negative intensity multiplier, e.g. 1.0")
-        if val < 0:
-            raise InputError(f"{key}.{st}", f"expected a non-negative intensity multiplier, got {x!r}", source)
-        out[st] = val
-    return out, 1.0
-
-
-def _stage_name(st, key, names, source):
-    if not isinstance(st, str):
-        raise InputError(key, f"expected a stage name, got {st!r}", source)
-    if st not in names:
-        raise InputError(key, f"no stage named {st!r}; the stages are {list(names)}", source)
-
-
 def _lasers(raw, species, schedule, source) -> tuple:
     """The ``[[laser]]`` beams (:class:`mdrotor.laser.Beam`)."""
     from .laser import PATTERNS, Beam, emission_tensor
@@ -692,7 +663,7 @@ def _lasers(raw, species, schedule, source) -> tuple:
             a = _unit_vector(axis, f"{sec}.emission.axis", source, "the dipole axis")
             tensor = emission_tensor(pattern, a)
             label = f"{pattern} dipole along [{', '.join(f'{x:.4g}' for x in a)}]"
-        scales, default = _stage_scales(it.get("stages"), f"{sec}.stages", stage_names, source)
+        scales, default = stage_scales(it.get("stages"), f"{sec}.stages", stage_names, source, "intensity multiplier")
         ions = tuple(j for j, s in enumerate(species) if s.name == sp_name)
         out.append(Beam(name, sp_name, ions, lam, gam, det, sat, direction, waist, centre, tensor, label, scales,
                         default, sec))

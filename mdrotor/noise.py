@@ -256,6 +256,7 @@ from scipy import constants as sc
 
 from . import units
 from .errors import InputError
+from .schedule import check_stage_name, stage_scales
 
 __all__ = [
     "PsdTerm",
@@ -1353,7 +1354,7 @@ def parse_noise(raw, source: str = "<dict>", stage_names=()) -> NoiseModel:
         if not isinstance(axes, list) or not axes or any(a not in AXES for a in axes) or len(set(axes)) != len(axes):
             raise InputError(f"{key}.axes", f"expected a non-empty list of distinct axes from ['x', 'y', 'z'], got {axes!r}", source)
         spec = _spectrum(_require(it, "psd", key, source, "a PSD term or a list of terms"), f"{key}.psd", 0, source)
-        scales, default = _stage_scales(it.get("stages"), f"{key}.stages", names, source)
+        scales, default = stage_scales(it.get("stages"), f"{key}.stages", names, source, "PSD scale", " (amplitude squared)")
         for a in axes:
             sources.append(NoiseSource("field", AXES.index(a), 0, 0, spec, scales, default, key))
     multi = []
@@ -1361,7 +1362,7 @@ def parse_noise(raw, source: str = "<dict>", stage_names=()) -> NoiseModel:
         _check_keys(it, key, MULTIPOLE_KEYS, source)
         order = _order(_require(it, "order", key, source, "the multipole order n >= 2"), f"{key}.order", source)
         spec = _spectrum(_require(it, "psd", key, source, "a PSD term or a list of terms"), f"{key}.psd", order, source)
-        scales, default = _stage_scales(it.get("stages"), f"{key}.stages", names, source)
+        scales, default = stage_scales(it.get("stages"), f"{key}.stages", names, source, "PSD scale", " (amplitude squared)")
         multi.append((order, spec, scales, default, key))
     tones_raw = []
     for key, it in _items(raw.get("tone"), "noise.tone", source):
@@ -1465,32 +1466,6 @@ def _spectrum(spec, key, order, source) -> Spectrum:
     return Spectrum.from_terms(terms)
 
 
-def _stage_scales(v, key, names, source):
-    if v is None:
-        return {}, 1.0
-    if isinstance(v, list):
-        for i, s in enumerate(v):
-            _stage_name(s, f"{key}[{i}]", names, source)
-        return {s: 1.0 for s in v}, 0.0
-    if not isinstance(v, dict):
-        raise InputError(key, "expected a table { stage = PSD scale } or a list of stage names", source)
-    out = {}
-    for s, x in v.items():
-        _stage_name(s, f"{key}.{s}", names, source)
-        val = _number(x, f"{key}.{s}", source, "a non-negative PSD scale (amplitude squared), e.g. 1.0")
-        if val < 0:
-            raise InputError(f"{key}.{s}", f"expected a non-negative PSD scale (amplitude squared), got {x!r}", source)
-        out[s] = val
-    return out, 1.0
-
-
-def _stage_name(s, key, names, source):
-    if not isinstance(s, str):
-        raise InputError(key, f"expected a stage name, got {s!r}", source)
-    if s not in names:
-        raise InputError(key, f"no stage named {s!r}; the stages are {list(names)}", source)
-
-
 def _tone(it, key, names, source) -> dict:
     _check_keys(it, key, TONE_KEYS, source)
     target = _require(it, "target", key, source, "'field' or 'multipole'")
@@ -1528,7 +1503,7 @@ def _tone(it, key, names, source) -> dict:
         if not isinstance(st, list):
             raise InputError(f"{key}.stages", "expected a list of stage names during which the tone is on", source)
         for i, s in enumerate(st):
-            _stage_name(s, f"{key}.stages[{i}]", names, source)
+            check_stage_name(s, f"{key}.stages[{i}]", names, source)
         d["stages"] = tuple(st)
     return d
 

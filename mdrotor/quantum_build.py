@@ -16,14 +16,9 @@ thermal state from a :class:`mdrotor.config.Config`:
   each rotation rate, scaled by the schedule's multiplier to the power
   that the curve itself shows between full and half strength (1 for a
   first-order moment, 3 for a triangle under a quadrupole);
-* the exchange-allowed ladder: the crystal's rotational symmetry (the
-  largest ``N`` such that a turn by ``2 pi / N`` maps every ion onto an ion
-  of the same species) and the permutation that turn makes: ``c`` cycles of
-  ``N`` ions, of which those made of fermions contribute the sign
-  ``(-1)^(N-1)`` each. Its rule is :func:`mdrotor.rotor.allowed_L_ladder`'s
-  for one ring of ``N``, applied with the statistics of the whole
-  permutation (fermionic if an odd number of fermion cycles, bosonic
-  otherwise);
+* the exchange-allowed ladder of the unpinned crystal at rest
+  (:func:`mdrotor.rotor.allowed_L_ladder`, the one owner of the rule; also
+  :func:`config_ladder`, which ``mdrotor rotor`` and the report use);
 * angular-momentum diffusion of the config's noise
   (:meth:`mdrotor.noise.NoiseModel.rotor_diffusion`, per stage, at the
   schedule's ``f_rot``) as kicks of ``+-n`` quanta for an order-n multipole
@@ -59,7 +54,6 @@ from .quantum_rotor import (KickChannel, Ladder, PinningComponent, RotationalEne
 HBAR = sc.hbar
 KB = sc.k
 TWO_PI = 2.0 * np.pi
-SYMMETRY_REL = 1e-6      # positions equal within this fraction of the crystal's radius
 STRETCH_NODES = 10
 NOISE_NODES = 33         # rate samples per stage
 MAX_HARMONIC = 24        # highest order of the held curve's energy kept
@@ -147,72 +141,17 @@ def _crystals(cfg, f_nodes_hz):
     return out
 
 
-# --------------------------------------------------------------------------
-# symmetry and the allowed ladder
-# --------------------------------------------------------------------------
-def crystal_symmetry(positions_m, species) -> tuple[int, int, list]:
-    """Rotational symmetry of a crystal about the axis through its centre of mass.
+def config_ladder(cfg):
+    """The exchange-allowed ladder of a config's crystal.
 
-    Returns ``(N, cycles, orbits)``: the largest ``N`` such that a turn by
-    ``2 pi / N`` maps every ion onto an ion of the same species (positions
-    equal within ``SYMMETRY_REL`` of the crystal's radius), the number of
-    cycles of the permutation it makes (ions on the axis are fixed points),
-    and each cycle's species name. ``N = 1`` if there is no such turn.
-    """
-    r = np.asarray(positions_m, dtype=float)
-    m = np.array([s.mass_kg for s in species])
-    names = [s.name for s in species]
-    z, zz = frame.complex_xy(r, m), r[:, 2]
-    scale = float(np.max(np.abs(z))) if len(z) else 0.0
-    if scale == 0.0:
-        return 1, 0, []
-    tol = SYMMETRY_REL * scale
-    off = np.nonzero(np.abs(z) > pinning.AXIS_REL * scale)[0]
-    for N in range(len(off), 1, -1):
-        if len(off) % N:
-            continue
-        zr = z * np.exp(2j * math.pi / N)
-        image = {}
-        for i in off:
-            d = np.abs(z[off] - zr[i]) + np.abs(zz[off] - zz[i])
-            j = int(off[int(np.argmin(d))])
-            if d.min() > tol or names[j] != names[i]:
-                break
-            image[int(i)] = j
-        else:
-            if len(set(image.values())) != len(off):
-                continue
-            seen, orbits = set(), []
-            for i in off:
-                if int(i) in seen:
-                    continue
-                k, n = int(i), 0
-                while k not in seen:
-                    seen.add(k)
-                    k = image[k]
-                    n += 1
-                orbits.append(names[int(i)])
-            return N, len(orbits), orbits
-    return 1, 0, []
-
-
-def allowed_ladder(positions_m, species) -> tuple[Ladder, int, int, str]:
-    """The exchange-allowed ladder of a crystal (module docstring).
-
-    Returns ``(ladder, N, cycles, statistics)``.
+    :func:`mdrotor.rotor.allowed_L_ladder` of the crystal without pinning at
+    rest (rotation-averaged anisotropy, no stray field), the free rotor whose
+    symmetry the ladder describes; the same crystal :func:`build` takes.
+    Returns a :class:`mdrotor.rotor.ExchangeLadder`.
     """
     from .rotor import allowed_L_ladder
 
-    N, cycles, orbits = crystal_symmetry(positions_m, species)
-    if N == 1:
-        return Ladder(1, 0), 1, 0, "distinguishable"
-    stats = {s.name: s.statistics for s in species}
-    if any(stats[o] not in ("boson", "fermion") for o in orbits):
-        return Ladder(1, 0), N, cycles, "unknown"
-    n_fermion = sum(1 for o in orbits if stats[o] == "fermion")
-    stat = "fermion" if n_fermion % 2 else "boson"
-    mod, res = allowed_L_ladder(N, stat, identical=True)
-    return Ladder(int(mod), int(res)), N, cycles, stat
+    return allowed_L_ladder(_crystals(cfg, [0.0])[0], cfg.species)
 
 
 # --------------------------------------------------------------------------
@@ -400,6 +339,7 @@ def build(cfg, *, stretch: bool = True, cut: float = 1e-4) -> QuantumSetup:
         pinning (not supported by the quantum model), rotation faster than
         the confinement.
     """
+    from .rotor import allowed_L_ladder
     from .sampling import mode_occupations
     from .statics import compute_crystal, model_potential
 
@@ -432,7 +372,8 @@ def build(cfg, *, stretch: bool = True, cut: float = 1e-4) -> QuantumSetup:
                            "has no rotation of its own", src)
     energy = (RotationalEnergy(I0, tuple(float(x) for x in (TWO_PI * f_nodes) ** 2), tuple(float(x) for x in I_nodes))
               if len(f_nodes) > 1 else RotationalEnergy(I0))
-    ladder, N, cycles, stat = allowed_ladder(crystals[0], cfg.species)
+    ex = allowed_L_ladder(crystals[0], cfg.species)
+    ladder, N, cycles, stat = Ladder(ex.modulus, ex.residue), ex.symmetry_order, ex.cycles, ex.statistics
     if stat == "unknown":
         notes.append("the exchange statistics of a species is unknown: every L allowed")
     grid = np.linspace(0.0, sched.duration_s, 2001)

@@ -37,6 +37,9 @@ def add_quantum_parser(sub) -> None:
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
                    help="override a config key (configs only; repeatable)")
+    p.add_argument("-o", "--output", default=None, metavar="OUT.h5",
+                   help="also write the result (P(L) per stage end, lines, ensemble histograms, distances, verdict) "
+                        "to this HDF5 file; mdrotor report OUT.h5 draws it")
     p.add_argument("--json", action="store_true", help="print one JSON object instead of text")
 
 
@@ -88,7 +91,7 @@ def _ensemble_run(cfg, trajectories, progress):
 
 def quantum_report(source, *, overrides=(), trajectories=None, ensemble: bool = True, tol: float = 1e-3,
                    cut: float = 1e-4, records=None, seed=None, stretch: bool = True, progress: bool = False,
-                   max_columns: int = 512) -> dict:
+                   max_columns: int = 512, output=None) -> dict:
     """The quantum rotor of ``source`` beside its ensemble, as a JSON-ready dict.
 
     Parameters
@@ -108,6 +111,10 @@ def quantum_report(source, *, overrides=(), trajectories=None, ensemble: bool = 
         config's ``run.seed``.
     progress : bool
         Progress bar of the ensemble run on stderr.
+    output : path, optional
+        Also write the result to this HDF5 file
+        (:func:`mdrotor.store.save_quantum`); refused before any work when
+        it cannot be written.
     """
     import numpy as np
 
@@ -118,6 +125,10 @@ def quantum_report(source, *, overrides=(), trajectories=None, ensemble: bool = 
     from .quantum_rotor import evolve, sideband_lines
 
     samples = None
+    if output is not None:
+        from .store import check_writable
+
+        check_writable(output)
     if hasattr(source, "trap"):
         cfg, kind = source, "config"
     else:
@@ -192,6 +203,10 @@ def quantum_report(source, *, overrides=(), trajectories=None, ensemble: bool = 
         out["verdict"] = fin["verdict"]
         out["verdict_reason"] = fin["reason"]
         out["verdict_stage"] = stages[-1]["name"]
+    if output is not None:
+        from .store import save_quantum
+
+        save_quantum(out, output, cfg.text)
     return out
 
 
@@ -280,7 +295,7 @@ def cli_quantum(args) -> int:
     d = quantum_report(args.source, overrides=args.overrides, trajectories=args.trajectories,
                        ensemble=not args.no_ensemble, tol=tol, cut=cut, records=args.records, seed=args.seed,
                        stretch=not args.rigid, progress=not args.quiet and not args.json,
-                       max_columns=args.max_columns)
+                       max_columns=args.max_columns, output=args.output)
     if args.json:
         print(json.dumps(d))
     else:

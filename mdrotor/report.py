@@ -16,7 +16,7 @@ optional group it needs):
   stages shaded and named (``/schedule``);
 * :func:`L_histogram_figure` -- the final L distribution with Poisson error
   bars, mean and spread, and a zoom on a few quanta around the mean with the
-  allowed-L ladder (:func:`mdrotor.rotor.allowed_L_ladder`);
+  allowed-L ladder of the crystal's symmetry (:func:`mdrotor.rotor.allowed_L_ladder`);
 * :func:`L_stages_figure` -- the same histogram at t = 0 and at every stage end;
 * :func:`series_figure` -- L mean and spread, lag envelope and mode phonons
   versus time (``/series``);
@@ -27,6 +27,9 @@ optional group it needs):
 * :func:`coherence_figure` -- Ramsey and echo contrast versus time with the
   exchange and revival times (:mod:`mdrotor.coherence`), for the diffusion
   constant given, else fitted from the run's noise, else analytic.
+
+:func:`quantum_figure` draws a quantum-rotor file (``mdrotor quantum -o``):
+P(L) on the allowed ladder beside the ensemble's histogram, with the verdict.
 
 Sweep and optimisation figures: :func:`sweep_figures` (every metric versus
 each axis: line plots for one axis, heat maps for two, a chosen slice of
@@ -55,6 +58,7 @@ from .errors import InputError
 __all__ = [
     "MissingData", "file_kind", "schedule_figure", "L_histogram_figure", "L_stages_figure", "series_figure",
     "phonons_figure", "spectrum_figure", "coherence_figure", "run_figures", "sweep_figures", "optimize_figure",
+    "quantum_figure",
     "write_report", "add_report_parser", "cli_report", "main",
 ]
 
@@ -175,7 +179,7 @@ def _pm(v, e, digits=4) -> str:
 # inputs
 # ---------------------------------------------------------------------------
 def file_kind(path) -> str:
-    """``"run"``, ``"sweep"`` or ``"optimize"``: what an mdrotor HDF5 file holds."""
+    """``"run"``, ``"sweep"``, ``"optimize"`` or ``"quantum"``: what an mdrotor HDF5 file holds."""
     from .inputfiles import open_hdf5
 
     p = Path(path)
@@ -183,11 +187,11 @@ def file_kind(path) -> str:
         kind = f.attrs.get("kind")
         if kind is not None:
             kind = kind.decode() if isinstance(kind, bytes) else str(kind)
-            if kind in ("sweep", "optimize"):
+            if kind in ("sweep", "optimize", "quantum"):
                 return kind
         if "stages" in f and "format_version" in f.attrs:
             return "run"
-    raise InputError("", "not an mdrotor result, sweep or optimisation file", str(p))
+    raise InputError("", "not an mdrotor result, sweep, optimisation or quantum-rotor file", str(p))
 
 
 def _load(result):
@@ -199,8 +203,9 @@ def _load(result):
     p = Path(result)
     kind = file_kind(p)
     if kind != "run":
-        raise InputError("", f"a {kind} file, not a run result: use sweep_figures / optimize_figure "
-                             "(or read_point(path, index) for one point)", str(p))
+        use = ("quantum_figure" if kind == "quantum" else
+               "sweep_figures / optimize_figure (or read_point(path, index) for one point)")
+        raise InputError("", f"a {kind} file, not a run result: use {use}", str(p))
     from .store import load_result
 
     return load_result(p), p
@@ -231,32 +236,22 @@ def _ok_L(obs) -> np.ndarray:
 
 
 def _ladder(res):
-    """(modulus, residue, statistics, N) of the allowed-L ladder, following
-    :func:`mdrotor.rotor_report.rotor_summary`: N is the number of ions."""
-    from . import rotor
-    from .species import get_species
+    """(modulus, residue, statistics, N) of the allowed-L ladder of the
+    result's crystal (:func:`mdrotor.quantum_build.config_ladder`, the rule of
+    :func:`mdrotor.rotor.allowed_L_ladder`), or None when the config cannot
+    be read back."""
+    import tomllib
 
-    names = [x.decode() if isinstance(x, bytes) else str(x) for x in np.atleast_1d(res.attrs.get("species", []))]
-    stats = []
+    from .config import from_dict
+    from .errors import PhysicsError
+    from .quantum_build import config_ladder
+
     try:
-        stats = [get_species(n).statistics for n in names]
-    except InputError:
-        try:  # custom species: from the config the run was made with
-            import tomllib
-
-            from .config import from_dict
-
-            cfg = from_dict(tomllib.loads(str(res.attrs["config_text"])), "<result>")
-            names = [s.name for s in cfg.species]
-            stats = [s.statistics for s in cfg.species]
-        except Exception:
-            stats = []
-    if not names or not stats:
+        cfg = from_dict(tomllib.loads(str(res.attrs["config_text"])), "<result>")
+        lad = config_ladder(cfg)
+    except (KeyError, InputError, PhysicsError, tomllib.TOMLDecodeError):
         return None
-    identical = len(set(names)) == 1
-    stat = stats[0] if identical else "mixed"
-    mod, resid = rotor.allowed_L_ladder(len(names), stat if stat in ("boson", "fermion") else "unknown", identical)
-    return int(mod), int(resid), stat, len(names)
+    return lad.modulus, lad.residue, lad.statistics, lad.symmetry_order
 
 
 def _bins(L: np.ndarray, bins):
@@ -993,7 +988,8 @@ def spectrum_figure(result, rotor: dict | None = None, k: int | None = None):
         ax = fig.add_subplot()
         span = float(np.max(cen) - np.min(cen)) if len(cen) > 1 else abs(float(cen[0])) or 1.0
         pad = max(0.12 * span, 4 * float(np.max(wid)))
-        lo, hi = float(np.min(cen)) - pad, float(np.max(cen)) + pad
+        # the lines are positive frequencies (quanta added in the sense of rotation): no axis below 0
+        lo, hi = max(float(np.min(cen)) - pad, 0.0), float(np.max(cen)) + pad
         x = np.linspace(lo, hi, 3000)
         texts = [f"ΔL = {dl}\n{c * fs:.7g} {fu}\nσ = {_fmt(w * fs, 3)} {fu}" for c, w, dl in zip(cen, wid, dls)]
         at = [(c - lo) / (hi - lo) for c in cen]
@@ -1016,7 +1012,7 @@ def spectrum_figure(result, rotor: dict | None = None, k: int | None = None):
         ax.set_ylim(0, 1.55)
         ax.set_yticks([0, 0.5, 1.0])
         ax.set_xlabel(f"transition frequency ({fu})")
-        ax.set_ylabel("line profile (peak = 1)")
+        ax.set_ylabel("line profile (peak = 1, no unit)")
         note = (f"{FROT} = {d['f_rot_hz'] * fs:.6g} {fu}, ħ/(2πI) = {d['hbar_over_I_hz']:.4g} Hz, "
                 f"{SIG} = {d['L_std_hbar']:.4g} ħ")
         if mod > 1:
@@ -1068,7 +1064,7 @@ def coherence_figure(result, rotor: dict | None = None, diffusion_hbar2_per_s: f
                     label=f"Ramsey at D = {Db:.3g} ħ²/s (contrast {d['budget_contrast']:.2g} at exchange)")
         ax.axhline(math.exp(-1), color=ps.MUTED, lw=0.6, ls=(0, (1, 2)))
         ax.text(t[0] * ts, math.exp(-1), " 1/e", va="bottom", ha="left", fontsize=6.5, color=ps.MUTED)
-        for tt, lab in ((t_ex, f"exchange (2π/{d['n_ions']})"), (t_rev, "revival (2π)")):
+        for tt, lab in ((t_ex, f"exchange (2π/{d['symmetry_order']})"), (t_rev, "revival (2π)")):
             ax.axvline(tt * ts, color=ps.ACCENT, lw=1.0, ls="-.")
             ax.annotate(f"{lab} {tt * ts:.4g} {tu}", xy=(tt * ts, 0.97), xycoords=("data", "axes fraction"),
                         xytext=(-2.5, 0), textcoords="offset points", ha="right", va="top", rotation=90, fontsize=6.5,
@@ -1126,6 +1122,129 @@ def _run_figures(res, path, diffusion_hbar2_per_s, k):
         attempt("spectrum", spectrum_figure, res, rotor=rot)
         attempt("coherence", coherence_figure, res, rotor=rot)
     return figs, skipped, rot
+
+
+# ---------------------------------------------------------------------------
+# quantum rotor (mdrotor quantum -o OUT.h5)
+# ---------------------------------------------------------------------------
+QUANTUM_CAPTION = ("Quantum P(L) of the rigid rotor (bars, on the exchange-allowed ladder) at t = 0 and at every stage "
+                   "end, beside the Monte-Carlo ensemble's L binned on the same ladder (points, error bars: "
+                   "√counts / N, shifted by whole ladder steps to align the means), with the verdict on whether the "
+                   "semiclassical answer holds.")
+
+
+def _quantum(source) -> dict:
+    """The report dict of ``mdrotor quantum``, from a dict or a file of
+    :func:`mdrotor.store.save_quantum`."""
+    if isinstance(source, dict):
+        return source
+    from .store import load_quantum
+
+    return load_quantum(source)
+
+
+def quantum_figure(source, max_panels: int = 6):
+    """Quantum ``P(L)`` beside the ensemble's ladder histogram, stage by stage.
+
+    One panel for t = 0 and each stage end (the last ``max_panels``): the
+    rotor's ``P(L)`` as bars at the allowed ``L`` (ladder of
+    :func:`mdrotor.rotor.allowed_L_ladder`), the ensemble's ``L`` binned on
+    that ladder as fractions ``counts / N`` with ``sqrt(counts) / N`` error
+    bars, drawn shifted by ``shift_hbar`` (the whole ladder steps that align
+    the means, as :func:`mdrotor.quantum_compare.compare` compares them);
+    means, spreads and the total-variation distance against its sampling
+    99th percentile in each panel; the verdict under the panels.
+
+    Parameters
+    ----------
+    source : dict or path
+        :func:`mdrotor.quantum_command.quantum_report`'s dict, or the file
+        ``mdrotor quantum -o`` wrote.
+    """
+    ps = _mpl()
+    d = _quantum(source)
+    stages = list(d["stages"])[-max_panels:]
+    if not stages:
+        raise MissingData("/stages", "no stage in the quantum-rotor result", None)
+    from .quantum_command import _fix
+
+    n = len(stages)
+    sp = int(d["allowed_L_spacing"])
+    off = int(d["allowed_L_offset"])
+    with ps.context():
+        fig = ps.new_figure(ps.FULL_W, 1.2 + 1.75 * n)
+        axs = np.atleast_1d(fig.subplots(n, 1, squeeze=False)).ravel()
+        stl = ps.style(1)
+        for j, st in enumerate(stages):
+            ax = axs[j]
+            L = np.asarray(st["L"], dtype=float)
+            P = np.asarray(st["P"], dtype=float)
+            big = L[P >= 1e-3 * float(np.max(P))] if P.size else L
+            lo, hi = float(np.min(big)), float(np.max(big))
+            ax.bar(L, P, width=0.8 * sp, color="#c9c9c9", edgecolor=ps.INK, lw=0.4, zorder=1, label="quantum P(L)")
+            e = st.get("ensemble")
+            txt = [f"quantum: ⟨L⟩ = {_fix(st['L_mean_hbar'], 2)} ħ, {SIG} = {_fmt(st['L_std_hbar'], 4)} ħ"]
+            top = float(np.max(P))
+            if e is not None:
+                shift = int(e["shift_hbar"])
+                hL = np.asarray(e["histogram_L"], dtype=float) - shift
+                c = np.asarray(e["histogram_counts"], dtype=float)
+                N = float(e["n"])
+                ax.errorbar(hL, c / N, yerr=np.sqrt(c) / N, fmt=stl["marker"], color=stl["color"], ms=3.0, lw=0.8,
+                            capsize=1.5, zorder=3, ls="none", label="ensemble, binned on the ladder")
+                lo, hi = min(lo, float(np.min(hL))), max(hi, float(np.max(hL)))
+                top = max(top, float(np.max((c + np.sqrt(c)) / N)))
+                txt.append(f"ensemble (N = {int(N)}): ⟨L⟩ = {_pm(e['mean_hbar'], e['mean_err_hbar'])} ħ, "
+                           f"{SIG} = {_pm(e['std_hbar'], e['std_err_hbar'])} ħ"
+                           + (f", drawn shifted by {shift:+d} ħ" if shift else ""))
+                txt.append(f"total-variation distance {e['tv']:.3f} (sampling alone, 99 %: {e['tv_null_99']:.3f})")
+            ax.set_xlim(lo - 2.5 * sp, hi + 2.5 * sp)
+            ax.set_ylim(0, (1.25 + 0.2 * len(txt)) * top)
+            name = st["name"]
+            ts, tu = _time_unit(st["t_s"] if st["t_s"] > 0 else 1e-3)
+            ax.set_title("t = 0" if name == "initial" else f"end of '{name}' ({st['t_s'] * ts:.4g} {tu})",
+                         fontsize=7.5, loc="left")
+            ax.text(0.01, 0.97, "\n".join(txt), transform=ax.transAxes, va="top", ha="left", fontsize=6.5, zorder=5)
+            ax.set_ylabel("probability")
+            if j == n - 1:
+                ax.set_xlabel("angular momentum L (ħ)")
+        axs[0].legend(loc="upper right", fontsize=6.5)
+        lad = f"allowed L ≡ {off} (mod {sp})" if sp > 1 else "every integer L allowed"
+        fig.suptitle(f"quantum rotor and ensemble, {lad}", fontsize=8.5, fontweight="bold", x=0.01, ha="left")
+        if d.get("verdict"):
+            note = (f"Semiclassical answer at the end of '{d['verdict_stage']}': {d['verdict'].upper()}: "
+                    f"{d['verdict_reason']}")
+        else:
+            note = "No ensemble beside the quantum rotor (run without --no-ensemble for the comparison)."
+        fig.supxlabel(ps.wrap_text(note, 130), x=0.01, ha="left", fontsize=6.5, color="#555555")
+        ps.finish(fig)
+    return fig
+
+
+def _report_quantum(src, out, fmt, dpi, doc, written, skipped):
+    from .quantum_command import text
+
+    d = _quantum(src)
+    doc.h(1, f"mdrotor report: {Path(src).name} (quantum rotor)")
+    rows = [["allowed L", f"{d['allowed_L_offset']} mod {d['allowed_L_spacing']} ({d['symmetry_order']}-fold, "
+                          f"{d['statistics']})"],
+            ["ħ/(2πI)", f"{d['hbar_over_I_hz']:.5g} Hz"]]
+    fin = d["stages"][-1]
+    rows.append([f"final L (end of '{fin['name']}')", f"{_fmt(fin['L_mean_hbar'], 6)} ħ, spread {_fmt(fin['L_std_hbar'], 4)} ħ"])
+    if d.get("verdict"):
+        rows.append(["semiclassical answer", f"{d['verdict']}: {d['verdict_reason']}"])
+    doc.table(["quantity", "value"], rows)
+    doc.pre(text(d))
+    doc.h(2, "Figures")
+    try:
+        _emit({"quantum_P_L": quantum_figure(d)}, out, fmt, dpi, doc, written, captions={"quantum_P_L": QUANTUM_CAPTION})
+    except MissingData as e:
+        skipped["quantum_P_L"] = e.expected
+    doc.h(2, "Provenance")
+    doc.table(["attribute", "value"], _provenance_rows(d, ("package_version", "format_version", "created", "source",
+                                                           "source_kind")))
+    doc.h(2, "Config (overrides applied)")
+    doc.pre(str(d.get("config_text", "")))
 
 
 # ---------------------------------------------------------------------------
@@ -1948,6 +2067,8 @@ def write_report(source, output_dir=None, fmt: str = "png", *, summary: str = "m
     written, skipped = [], {}
     if kind == "run":
         _report_run(src, out, fmt, dpi, doc, written, skipped, diffusion_hbar2_per_s, k)
+    elif kind == "quantum":
+        _report_quantum(src, out, fmt, dpi, doc, written, skipped)
     else:
         _report_sweep(src, kind, out, fmt, dpi, doc, written, skipped, metrics, axes, fixed, diffusion_hbar2_per_s, k)
     title = f"mdrotor report: {src.name}"

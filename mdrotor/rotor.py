@@ -20,17 +20,21 @@ another at the angular velocity ``k hbar / I``. This sets the exchange time
 of identical ions are then related by a cyclic permutation of the ions) and
 the revival time (relative rotation ``2 pi``).
 
-Spin statistics: a rotation of a regular N-ion crystal by ``2 pi / N`` is a
-cyclic permutation of the N ions, an N-cycle; an N-cycle is a product of
+Spin statistics: a turn by ``2 pi / N`` that maps the crystal onto itself
+permutes its identical ions in cycles of ``N``; an N-cycle is a product of
 N - 1 transpositions, so its sign is ``(-1)^(N-1)`` (elementary group
-theory). For identical fermions it multiplies the state by
-``(-1)^(N-1)``, for identical bosons by ``+1``. With the rotor factor
-``e^{i L phi}`` picking up ``e^{2 pi i L / N}`` this restricts ``L`` to a
-ladder, see :func:`allowed_L_ladder`.
+theory). For identical fermions it multiplies the state by that sign, for
+identical bosons by ``+1``. With the rotor factor ``e^{i L phi}`` picking up
+``e^{2 pi i L / N}`` this restricts ``L`` to a ladder. The crystal's own
+symmetry decides ``N`` (a centred ring, a string through the axis or a
+crystal of unlike ions is not ``C_N`` of its ion count):
+:func:`allowed_L_ladder` takes the crystal and is the one owner of the
+rule.
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import NamedTuple
 
 import numpy as np
@@ -46,6 +50,8 @@ __all__ = [
     "exchange_time_s",
     "revival_time_s",
     "allowed_L_ladder",
+    "ExchangeLadder",
+    "crystal_symmetry",
     "statistics_of",
 ]
 
@@ -265,54 +271,164 @@ def revival_time_s(I_kg_m2, k):
 # --------------------------------------------------------------------------
 # spin statistics
 # --------------------------------------------------------------------------
-_STATISTICS = ("boson", "fermion", "unknown")
+SYMMETRY_REL = 1e-6      # positions equal within this fraction of the crystal's radius
 
 
-def allowed_L_ladder(N: int, statistics: str, identical: bool = True) -> tuple[int, int]:
-    """Allowed angular momenta of an N-fold symmetric crystal: ``L = residue mod modulus``.
+@dataclass(frozen=True)
+class ExchangeLadder:
+    """The allowed angular momenta of a crystal: ``L = residue mod modulus``.
 
-    A rotation by ``2 pi / N`` maps a regular N-ion crystal onto itself with
-    the ions cyclically permuted. The rotor factor ``e^{i L phi}`` acquires
-    ``e^{2 pi i L / N}``; for identical ions this must equal the sign of the
-    N-cycle under exchange, ``+1`` for bosons and ``(-1)^(N-1)`` for
-    fermions. Hence
+    Attributes
+    ----------
+    modulus, residue : int
+        Allowed ``L`` satisfy ``L % modulus == residue`` (``(1, 0)``: every
+        integer).
+    symmetry_order : int
+        The largest ``N`` such that a turn by ``2 pi / N`` about the axis
+        through the centre of mass maps every ion onto an ion of the same
+        species (1: no such turn).
+    cycles : int
+        Cycles of ``N`` ions of the permutation that turn makes (ions on
+        the axis are fixed points and not counted).
+    cycle_species : tuple of str
+        The species of each cycle.
+    statistics : str
+        The sign of that permutation for identical particles: "boson"
+        (symmetric, +1), "fermion" (antisymmetric, -1), "distinguishable"
+        (no symmetry turn) or "unknown" (a species in a cycle has unknown
+        statistics: no restriction).
+    """
 
-    * bosons: ``L = 0 mod N``;
-    * fermions, N even: ``L = N/2 mod N``;
-    * fermions, N odd: ``L = 0 mod N``.
+    modulus: int
+    residue: int
+    symmetry_order: int
+    cycles: int
+    cycle_species: tuple
+    statistics: str
 
-    This assumes every other degree of freedom (internal states, nuclear
-    spins, the differential vibrational modes) is in a state symmetric under
-    the cyclic permutation, e.g. all ions in the same internal state and the
-    differential modes in their ground state. Otherwise no restriction
-    follows from symmetry and ``(1, 0)`` (every integer) is returned, as
-    also for ``N = 1``, for ``statistics == "unknown"`` and for crystals of
-    non-identical ions (``identical=False``: mixed species or isotopes).
+    def allows(self, L) -> np.ndarray:
+        """True where the integer ``L`` is on the ladder."""
+        return (np.asarray(L, dtype=np.int64) - self.residue) % self.modulus == 0
+
+    def to_dict(self) -> dict:
+        return {"allowed_L_mod": self.modulus, "allowed_L_residue": self.residue,
+                "symmetry_order": self.symmetry_order, "symmetry_cycles": self.cycles,
+                "exchange_statistics": self.statistics}
+
+
+def crystal_symmetry(positions_m, species) -> tuple[int, list]:
+    """Rotational symmetry of a crystal about the axis through its centre of mass.
+
+    Returns ``(N, cycles)``: the largest ``N`` such that a turn by
+    ``2 pi / N`` maps every ion onto an ion of the same species (positions
+    equal within ``SYMMETRY_REL`` of the crystal's radius, ``z`` included),
+    and the cycles of the permutation it makes as lists of ion indices (ions
+    on the axis, within :data:`mdrotor.pinning.AXIS_REL` of the radius, are
+    fixed points and left out). ``(1, [])`` if there is no such turn.
 
     Parameters
     ----------
-    N : int
-        Number of ions of the regular polygon (symmetry order), >= 1.
-    statistics : {"boson", "fermion", "unknown"}
-        Exchange statistics of the ion species, see :func:`statistics_of`.
-    identical : bool, optional
-        False for a crystal of non-identical ions.
+    positions_m : array_like, shape (n, 3)
+        Ion positions, m.
+    species : sequence of :class:`mdrotor.species.Species`
+        One per ion (``name``, ``mass_kg``).
+    """
+    from . import frame
+    from .pinning import AXIS_REL
+
+    r = np.asarray(positions_m, dtype=float)
+    if r.ndim != 2 or r.shape[1] != 3 or len(species) != r.shape[0]:
+        raise InputError("positions_m", f"an (n, 3) array with one species per ion, got shape {r.shape} and "
+                         f"{len(species)} species", f"{_SRC}.crystal_symmetry")
+    m = np.array([s.mass_kg for s in species], dtype=float)
+    names = [s.name for s in species]
+    z, zz = frame.complex_xy(r, m), r[:, 2]
+    scale = float(np.max(np.abs(z))) if len(z) else 0.0
+    if not scale > 0.0:
+        return 1, []
+    tol = SYMMETRY_REL * scale
+    off = np.nonzero(np.abs(z) > AXIS_REL * scale)[0]
+    for N in range(len(off), 1, -1):
+        if len(off) % N:
+            continue
+        zr = z * np.exp(2j * np.pi / N)
+        image = {}
+        for i in off:
+            d = np.abs(z[off] - zr[i]) + np.abs(zz[off] - zz[i])
+            j = int(off[int(np.argmin(d))])
+            if d.min() > tol or names[j] != names[i]:
+                break
+            image[int(i)] = j
+        else:
+            if len(set(image.values())) != len(off):
+                continue
+            seen, cycles = set(), []
+            for i in off:
+                k, cyc = int(i), []
+                while k not in seen:
+                    seen.add(k)
+                    cyc.append(k)
+                    k = image[k]
+                if cyc:
+                    cycles.append(cyc)
+            return N, cycles
+    return 1, []
+
+
+def allowed_L_ladder(positions_m, species) -> ExchangeLadder:
+    """The exchange-allowed ``L`` of a crystal (the one owner of the rule).
+
+    A turn by ``2 pi / N`` that maps the crystal onto itself
+    (:func:`crystal_symmetry`) is a permutation of its identical ions:
+    ``c`` cycles of ``N`` ions (ions on the axis stay). An ``N``-cycle is a
+    product of ``N - 1`` transpositions, so for identical fermions it has the
+    sign ``(-1)^(N-1)``, for bosons ``+1``; the whole turn has the product of
+    its cycles' signs. The rotor factor ``e^{i L phi}`` acquires
+    ``e^{2 pi i L / N}`` under the turn, and the state of identical
+    particles must acquire that sign (the rule that restricts the rotational
+    levels of molecules with identical nuclei: Landau and Lifshitz, Quantum
+    Mechanics, 3rd ed., §86 for diatomic and §105 for symmetric-top
+    molecules, from memory). Hence
+
+    * symmetric turn (sign +1): ``L = 0 mod N``;
+    * antisymmetric turn (sign -1, only for even ``N``): ``L = N/2 mod N``.
+
+    Examples: two identical fermions (40Ca+), sign -1, odd ``L``; a
+    triangle of them, a 3-cycle of sign +1, ``L = 0 mod 3``; a square,
+    ``L = 2 mod 4``; five on a ring around a sixth on the axis, ``L = 0 mod
+    5``; a string of three through the axis, a transposition, odd ``L``;
+    unlike ions (40Ca+ beside 44Ca+), no symmetry turn, every ``L``.
+
+    This assumes every other degree of freedom (internal states, nuclear
+    spins, the differential vibrational modes) is in a state symmetric under
+    the permutation, e.g. all ions of a species in the same internal state
+    and the differential modes in their ground state; otherwise no
+    restriction follows from symmetry. A species of unknown statistics in a
+    cycle gives no restriction either (``statistics == "unknown"``).
+
+    Parameters
+    ----------
+    positions_m : array_like, shape (n, 3)
+        The crystal's ion positions, m (its equilibrium without pinning: the
+        free rotor's symmetry).
+    species : sequence of :class:`mdrotor.species.Species`
+        One per ion (``name``, ``mass_kg``, ``statistics``).
 
     Returns
     -------
-    (modulus, residue) : tuple of int
-        Allowed ``L`` satisfy ``L % modulus == residue``.
+    ExchangeLadder
     """
-    func = "allowed_L_ladder"
-    n = int(_integer(N, "N", func, minimum=1))
-    if statistics not in _STATISTICS:
-        raise InputError("statistics", f"one of {', '.join(_STATISTICS)}, got {statistics!r}",
-                         f"{_SRC}.{func}")
-    if not identical or n == 1 or statistics == "unknown":
-        return (1, 0)
-    if statistics == "fermion" and n % 2 == 0:
-        return (n, n // 2)
-    return (n, 0)
+    N, cycles = crystal_symmetry(positions_m, species)
+    kinds = tuple(species[c[0]].name for c in cycles)
+    if N == 1:
+        return ExchangeLadder(1, 0, 1, 0, (), "distinguishable")
+    stats = [species[c[0]].statistics for c in cycles]
+    if any(s not in ("boson", "fermion") for s in stats):
+        return ExchangeLadder(1, 0, N, len(cycles), kinds, "unknown")
+    n_odd = sum(1 for s in stats if s == "fermion") * (N - 1)
+    if n_odd % 2:                               # antisymmetric: e^{2 pi i L / N} = -1
+        return ExchangeLadder(N, N // 2, N, len(cycles), kinds, "fermion")
+    return ExchangeLadder(N, 0, N, len(cycles), kinds, "boson")
 
 
 def statistics_of(mass_number: int, atomic_number: int, charge: int) -> str:

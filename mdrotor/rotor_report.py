@@ -2,7 +2,8 @@
 
 Collects, for the crystal rotating at the end of the run (or of the config's
 schedule): the moment of inertia with its centrifugal stretch, hbar / I, the
-rotational lines for Delta L = 1..k with the width from the L spread, the
+rotational lines adding 1..k quanta in the sense of rotation (positive
+frequencies for either sense) with the width from the L spread, the
 exchange time (branches k quanta apart turn by 2 pi / N relative to each
 other) and the revival time, the spin statistics and allowed L ladder, the
 angular-momentum diffusion constant D (given, fitted from the run's noise,
@@ -48,7 +49,8 @@ def _from_result(path):
     nz = res.extra.get("noise")
     if nz and "D_fit_hbar2_per_s" in nz:
         fitted = (float(nz["D_fit_hbar2_per_s"]), float(nz["D_fit_err_hbar2_per_s"]))
-    return cfg, f, float(s["L_mean_hbar"]), float(s.get("L_std_hbar", 0.0)), fitted, "result"
+    errs = {k: float(s[k]) for k in ("L_mean_err_hbar", "L_std_err_hbar") if k in s}
+    return cfg, f, float(s["L_mean_hbar"]), float(s.get("L_std_hbar", 0.0)), fitted, "result", errs
 
 
 def _from_config(path, overrides):
@@ -56,7 +58,7 @@ def _from_config(path, overrides):
 
     cfg = load_config(path, overrides)
     f = float(cfg.schedule.f_rot_hz(cfg.schedule.duration_s)) if cfg.schedule is not None else cfg.f_start_hz
-    return cfg, f, None, 0.0, None, "config"
+    return cfg, f, None, 0.0, None, "config", {}
 
 
 def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float | None = None,
@@ -85,9 +87,9 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
 
     p = Path(source)
     if p.suffix in (".h5", ".hdf5"):
-        cfg, f, l_mean, sigma_l, fitted, kind = _from_result(p)
+        cfg, f, l_mean, sigma_l, fitted, kind, l_errs = _from_result(p)
     else:
-        cfg, f, l_mean, sigma_l, fitted, kind = _from_config(p, overrides)
+        cfg, f, l_mean, sigma_l, fitted, kind, l_errs = _from_config(p, overrides)
     if not 0 < contrast < 1:
         raise InputError("--contrast", "expected a contrast between 0 and 1", "command line")
     sched = cfg.schedule
@@ -99,13 +101,18 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
     names = [s.name for s in cfg.species]
     identical = len(set(names)) == 1
     stat = cfg.species[0].statistics if identical else "mixed"
-    mod, res_ = rotor.allowed_L_ladder(n_ions, stat if stat in ("boson", "fermion") else "unknown", identical)
+    from .quantum_build import config_ladder
+
+    ladder = config_ladder(cfg)  # the crystal's own symmetry (mdrotor.rotor.allowed_L_ladder)
+    mod, res_ = ladder.modulus, ladder.residue
     if k is None:
         k = int(mod) if mod > 1 else 1
     if l_mean is None:
         l_mean = I * TWO_PI * f / HBAR
-    lines = rotor.transition_frequencies_hz(f, I, max(k_lines, k), sigma_l)
-    t_ex = float(rotor.exchange_time_s(I, k, n_ions))
+    # lines that add |dL| quanta in the sense of rotation: k |f_rot| + k^2 hbar / (4 pi I) > 0 for either sense
+    sense = -1 if f < 0 else 1
+    lines = rotor.transition_frequencies_hz(abs(f), I, max(k_lines, k), sigma_l)
+    t_ex = float(rotor.exchange_time_s(I, k, ladder.symmetry_order))
     t_rev = float(rotor.revival_time_s(I, k))
     # the lowest multipole order that the crystal feels (its noise torques kick L by n quanta)
     order = pinning.lowest_moment_order(cr.positions_m, cr.masses_kg, cr.charges_c) or 2
@@ -133,11 +140,11 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
     kick = order
     out = {
         "source": str(source), "source_kind": kind, "n_ions": n_ions, "species": names,
-        "f_rot_hz": f, "L_mean_hbar": l_mean, "L_std_hbar": sigma_l,
+        "f_rot_hz": f, "L_mean_hbar": l_mean, "L_std_hbar": sigma_l, **l_errs,
         "moment_of_inertia_kg_m2": I, "hbar_over_I_hz": float(rotor.hbar_over_I_hz(I)),
-        "statistics": stat, "allowed_L_mod": int(mod), "allowed_L_residue": int(res_),
+        "statistics": stat, **ladder.to_dict(),
         "statistics_assumption": SPIN_ASSUMPTION,
-        "k": int(k), "lines": [{"dL": int(a), "freq_hz": float(b), "width_hz": float(c)}
+        "k": int(k), "lines": [{"dL": sense * int(a), "freq_hz": float(b), "width_hz": float(c)}
                                for a, b, c in zip(lines.k, lines.centre_hz, lines.width_hz)],
         "exchange_time_s": t_ex, "revival_time_s": t_rev,
         "diffusion_hbar2_per_s": D, "diffusion_source": d_src, "noise_order": order, "kick_quanta": kick,
@@ -172,14 +179,25 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
     return out
 
 
+def _symmetry_text(d: dict) -> str:
+    """The crystal's symmetry turn and the sign of its permutation, in words."""
+    N, c, st = d["symmetry_order"], d["symmetry_cycles"], d["exchange_statistics"]
+    if N == 1:
+        return "no turn maps the crystal onto itself (ions distinguishable)"
+    sign = {"boson": "symmetric", "fermion": "antisymmetric"}.get(st, "of unknown sign")
+    return f"a turn by 2 pi/{N} permutes the ions in {c} cycle{'s' if c > 1 else ''} of {N} ({sign})"
+
+
 def text(d: dict) -> str:
-    from .numfmt import value_err
+    from .numfmt import plain, value_err
 
     lines = [f"rotor of {d['n_ions']} ion(s) ({', '.join(sorted(set(d['species'])))}) from the {d['source_kind']} {d['source']}",
-             f"  rotating at {d['f_rot_hz'] / 1e3:.6g} kHz, L = {d['L_mean_hbar']:.6g} hbar"
-             + (f", spread {d['L_std_hbar']:.4g} hbar" if d['L_std_hbar'] else " (no spread from a config)"),
+             (f"  rotating at {plain(d['f_rot_hz'] / 1e3)} kHz, L = {value_err(d['L_mean_hbar'], d.get('L_mean_err_hbar'))} hbar, "
+              f"spread {value_err(d['L_std_hbar'], d.get('L_std_err_hbar'))} hbar" if d["source_kind"] == "result" else
+              f"  rotating at {plain(d['f_rot_hz'] / 1e3)} kHz, L = {plain(d['L_mean_hbar'])} hbar (at the schedule's "
+              "final rate; a config gives no spread)"),
              f"  moment of inertia I = {d['moment_of_inertia_kg_m2']:.6e} kg m^2 (centrifugally stretched), hbar/(2 pi I) = {d['hbar_over_I_hz']:.6g} Hz",
-             f"  spin statistics: {d['statistics']}; allowed L = {d['allowed_L_residue']} mod {d['allowed_L_mod']}",
+             f"  spin statistics: {d['statistics']}; {_symmetry_text(d)}: allowed L = {d['allowed_L_residue']} mod {d['allowed_L_mod']}",
              f"    assumes {d['statistics_assumption']}",
              ]
     if "pinning" in d:
@@ -190,7 +208,7 @@ def text(d: dict) -> str:
     for ln in d["lines"]:
         lines.append(f"    dL = {ln['dL']}: {ln['freq_hz'] / 1e3:14.6f} kHz, width {ln['width_hz']:.4g} Hz")
     lines += ["",
-              f"  branches k = {d['k']} quanta apart: exchange (2 pi / {d['n_ions']}) after {d['exchange_time_s'] * 1e3:.6g} ms, "
+              f"  branches k = {d['k']} quanta apart: exchange (2 pi / {d['symmetry_order']}) after {d['exchange_time_s'] * 1e3:.6g} ms, "
               f"revival (2 pi) after {d['revival_time_s'] * 1e3:.6g} ms",
               f"  angular-momentum diffusion D = {d['diffusion_hbar2_per_s']:.4g} hbar^2/s ({d['diffusion_source']}; "
               f"order-{d['noise_order']} torques kick L by {d['kick_quanta']})"]
@@ -198,7 +216,12 @@ def text(d: dict) -> str:
         lines.append(f"    fitted {value_err(d['diffusion_fitted_hbar2_per_s'], d['diffusion_fitted_err_hbar2_per_s'])} hbar^2/s")
     if "diffusion_analytic_hbar2_per_s" in d:
         lines.append(f"    analytic {d['diffusion_analytic_hbar2_per_s']:.4g} hbar^2/s")
-    lines += [f"  coherence time (1/e): Ramsey {d['coherence_time_s'] * 1e3:.4g} ms, echo {d['echo_coherence_time_s'] * 1e3:.4g} ms",
+    if math.isfinite(d["coherence_time_s"]):
+        lines.append(f"  coherence time (1/e): Ramsey {d['coherence_time_s'] * 1e3:.4g} ms, "
+                     f"echo {d['echo_coherence_time_s'] * 1e3:.4g} ms")
+    else:
+        lines.append(f"  coherence time: none, {_REASONS['coherence_time_s']}")
+    lines += [
               f"  contrast at the exchange time: Ramsey {d['ramsey_contrast_at_exchange']:.4f}, echo {d['echo_contrast_at_exchange']:.4f}; "
               f"Ramsey at the revival {d['ramsey_contrast_at_revival']:.4f}",
               f"  the t^3 short-time law holds to 1 % until {d['short_time_law_valid_until_s'] * 1e3:.4g} ms",
@@ -232,7 +255,40 @@ def cli_rotor(args) -> int:
     d = rotor_summary(args.source, k=args.k, diffusion_hbar2_per_s=D, contrast=args.contrast, overrides=args.overrides,
                       drift_quanta=dq)
     if args.json:
-        print(json.dumps(d))
+        print(json.dumps(json_safe(d), allow_nan=False))
     else:
         print(text(d))
     return 0
+
+
+# why a quantity of rotor_summary has no finite value (JSON: null and "<key>_reason")
+_REASONS = {
+    "coherence_time_s": "no angular-momentum diffusion (D = 0): the contrast does not decay",
+    "echo_coherence_time_s": "no angular-momentum diffusion (D = 0): the contrast does not decay",
+    "budget_psd_at_n_f_rot": "the crystal has no multipole moment of this order: no such noise exerts a torque",
+    "budget_diffusion_hbar2_per_s": "the contrast asked is kept at the exchange time whatever D",
+    "time_drift_s": "the beam exerts no mean torque: L does not drift",
+    "time_spread_s": "the beam gives no recoil diffusion of L",
+    "time_first_photon_s": "the beam scatters no photons",
+    "time_on_s": "the beam never moves L by the quanta asked",
+}
+
+
+def json_safe(d):
+    """``d`` with every non-finite number replaced by null and a
+    ``<key>_reason`` beside it saying why (JSON has no Infinity or NaN)."""
+    if isinstance(d, dict):
+        out = {}
+        for k, v in d.items():
+            if isinstance(v, (float, np.floating)) and not math.isfinite(v):
+                out[k] = None
+                out[f"{k}_reason"] = _REASONS.get(k, "not a finite number") + (
+                    " (infinite)" if v == math.inf and k not in _REASONS else "")
+            else:
+                out[k] = json_safe(v)
+        return out
+    if isinstance(d, (list, tuple)):
+        return [json_safe(x) for x in d]
+    if isinstance(d, np.generic):
+        return json_safe(d.item())
+    return d

@@ -367,3 +367,45 @@ def _read_table(path, key, source, base_dir):
     if not rows:
         raise InputError(key, f"{str(p)!r} holds no rows 'time_s, value'", source)
     return [r[0] for r in rows], [r[1] for r in rows]
+
+
+# --------------------------------------------------------------------------
+# per-stage scales of a stage-dependent term (noise PSD, laser intensity)
+# --------------------------------------------------------------------------
+def check_stage_name(st, key: str, names, source) -> None:
+    """Refuse a ``stages`` entry that is not one of the schedule's stage names."""
+    if not isinstance(st, str):
+        raise InputError(key, f"expected a stage name, got {st!r}", source)
+    if st not in names:
+        raise InputError(key, f"no stage named {st!r}; the stages are {list(names)}", source)
+
+
+def stage_scales(v, key: str, names, source, quantity: str, detail: str = "") -> tuple[dict, float]:
+    """A config's ``stages`` entry of a stage-dependent term: ``(scales, default)``.
+
+    A table ``{ stage = scale }`` (non-negative numbers; unlisted stages get
+    ``default`` 1) or a list of the stages in which the term is on (scale 1
+    there, ``default`` 0 elsewhere); absent: every stage at 1. The one
+    parser of that shape, for noise entries (``quantity`` "PSD scale") and
+    laser beams ("intensity multiplier"); ``detail`` follows the quantity in
+    messages.
+    """
+    from . import units
+
+    if v is None:
+        return {}, 1.0
+    if isinstance(v, list):
+        for i, st in enumerate(v):
+            check_stage_name(st, f"{key}[{i}]", names, source)
+        return {st: 1.0 for st in v}, 0.0
+    if not isinstance(v, dict):
+        raise InputError(key, f"expected a table {{ stage = {quantity} }} or a list of stage names", source)
+    out = {}
+    what = f"a non-negative {quantity}{detail}"
+    for st, x in v.items():
+        check_stage_name(st, f"{key}.{st}", names, source)
+        val = units.number(x, f"{key}.{st}", source, f"{what}, e.g. 1.0")
+        if val < 0:
+            raise InputError(f"{key}.{st}", f"expected {what}, got {x!r}", source)
+        out[st] = val
+    return out, 1.0

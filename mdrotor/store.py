@@ -196,3 +196,116 @@ def load_result(path) -> Result:
                 content[k] = v
             extra[gname] = content
     return Result(attrs, initial, stages, series, schedule, extra)
+
+
+# ---------------------------------------------------------------------------
+# quantum-rotor results (mdrotor quantum -o OUT.h5)
+# ---------------------------------------------------------------------------
+QUANTUM_FORMAT_VERSION = 1
+QUANTUM_KIND = "quantum"
+
+
+def _write_tree(g, d: dict) -> None:
+    """A JSON-like dict into an HDF5 group: numbers, strings and booleans as
+    attributes, lists of numbers or strings as datasets, dicts as groups,
+    lists of dicts as groups named 0, 1, ... (attribute ``list``); None is
+    left out (absent means null)."""
+    for k, v in d.items():
+        if v is None:
+            continue
+        if isinstance(v, dict):
+            _write_tree(g.create_group(k), v)
+        elif isinstance(v, (list, tuple)) and v and all(isinstance(x, dict) for x in v):
+            lg = g.create_group(k)
+            lg.attrs["list"] = True
+            for i, x in enumerate(v):
+                _write_tree(lg.create_group(str(i)), x)
+        elif isinstance(v, (list, tuple, np.ndarray)):
+            if len(v) and all(isinstance(x, str) for x in v):
+                g.create_dataset(k, data=np.array(v, dtype=object), dtype=_str_dtype())
+            else:
+                g.create_dataset(k, data=np.asarray(v, dtype=np.int64 if v and all(
+                    isinstance(x, (int, np.integer)) and not isinstance(x, bool) for x in v) else float))
+        else:
+            g.attrs[k] = v
+
+
+def _read_tree(g) -> dict:
+    def value(v):
+        if isinstance(v, bytes):
+            return v.decode()
+        if isinstance(v, np.ndarray):
+            if v.dtype == object:
+                return [x.decode() if isinstance(x, bytes) else str(x) for x in v]
+            return v.tolist()
+        return v.item() if hasattr(v, "item") else v
+
+    out = {k: value(v) for k, v in g.attrs.items() if k != "list"}
+    for k in g:
+        item = g[k]
+        if hasattr(item, "keys"):
+            if item.attrs.get("list", False):
+                out[k] = [_read_tree(item[str(i)]) for i in range(len(item))]
+            else:
+                out[k] = _read_tree(item)
+        else:
+            out[k] = value(item[()])
+    return out
+
+
+def save_quantum(report: dict, path, config_text: str) -> None:
+    """Write ``mdrotor quantum``'s result (the dict of
+    :func:`mdrotor.quantum_command.quantum_report`) to HDF5: temporary file
+    and rename. Layout in the README: root attributes (``kind`` =
+    "quantum", format and package versions, the config text, the scalar
+    fields: ladder, symmetry, verdict, ...), ``/stages/<name>`` per stage
+    end in order (``stage_names``) with ``L`` and ``P`` and, with an
+    ensemble, ``/stages/<name>/ensemble`` (histogram on the ladder,
+    distances, verdict), ``/lines``, ``/numerics``, ``/pinning``, ``/noise``."""
+    import datetime as _dt
+
+    import h5py
+
+    from . import __version__
+
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
+    d = dict(report)
+    stages = d.pop("stages")
+    try:
+        with h5py.File(tmp, "w") as f:
+            f.attrs["kind"] = QUANTUM_KIND
+            f.attrs["format_version"] = QUANTUM_FORMAT_VERSION
+            f.attrs["package_version"] = __version__
+            f.attrs["created"] = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+            f.attrs["config_text"] = config_text
+            f.attrs["stage_names"] = np.array([s["name"] for s in stages], dtype=object)
+            st = f.create_group("stages")
+            for s in stages:
+                _write_tree(st.create_group(s["name"]), s)
+            _write_tree(f, d)
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+
+
+def load_quantum(path) -> dict:
+    """Read a file written by :func:`save_quantum` back into the report dict
+    (absent entries as None where the report has them), with
+    ``config_text``, ``package_version``, ``format_version`` and ``created``."""
+    from .errors import InputError
+    from .inputfiles import open_hdf5
+
+    with open_hdf5(path, "an mdrotor quantum-rotor file (.h5, written by mdrotor quantum -o)") as f:
+        kind = f.attrs.get("kind")
+        kind = kind.decode() if isinstance(kind, bytes) else kind
+        if kind != QUANTUM_KIND or "stages" not in f:
+            raise InputError("", "not an mdrotor quantum-rotor file (kind attribute 'quantum' and /stages expected)",
+                             str(path))
+        d = _read_tree(f)
+        names = d.pop("stage_names")
+        d["stages"] = [d["stages"][n] for n in names]
+    for k in ("lines", "verdict", "f_lib_hz", "f_lib_model_hz", "nbar_libration", "holding"):
+        d.setdefault(k, None)
+    return d

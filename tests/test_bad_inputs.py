@@ -163,6 +163,12 @@ BAD = [
      "non-negative"),
     ("laser stage that does not exist", _cfg("direction = [1, 0, 0]", 'direction = [1, 0, 0]\nstages = ["cool"]', LASER),
      RUN, "laser.cool.stages[0]", "no stage named 'cool'"),
+    # the laser's stages share the noise entries' parser (schedule.stage_scales)
+    ("negative laser intensity multiplier", _cfg("direction = [1, 0, 0]",
+                                                 'direction = [1, 0, 0]\nstages = { release = -1.0 }', LASER),
+     RUN, "laser.cool.stages.release", "non-negative intensity multiplier"),
+    ("laser stages neither table nor list", _cfg("direction = [1, 0, 0]", 'direction = [1, 0, 0]\nstages = "release"',
+                                                 LASER), RUN, "laser.cool.stages", "{ stage = intensity multiplier }"),
     ("wavelength of the wrong dimension", _cfg("direction = [1, 0, 0]", 'direction = [1, 0, 0]\nwavelength = "397 MHz"',
                                                LASER), RUN, "laser.cool.wavelength", "wrong dimension"),
     ("nan detuning", _cfg('detuning = "-11 MHz"', 'detuning = "nan MHz"', LASER), RUN, "laser.cool.detuning", "finite"),

@@ -432,3 +432,13 @@ trajectories = 3
     assert star.get_marker() == "*"
     for fig in report.sweep_figures(out):
         assert_readable(fig)
+
+
+def test_quantum_figure_is_readable(tmp_path):
+    # mdrotor quantum's P(L) figure, with and without the ensemble beside it
+    from test_quantum_build import WEAK_PAIR
+
+    cfg = mdrotor.load_config(_toml(tmp_path, "weak.toml", WEAK_PAIR), ["initial.occupations.libration=2"])
+    d = mdrotor.quantum(cfg, trajectories=40)
+    assert_readable(report.quantum_figure(d))
+    assert_readable(report.quantum_figure(mdrotor.quantum(cfg, ensemble=False)))

@@ -52,39 +52,22 @@ def weak_pair(tmp_path, extra=""):
 @pytest.mark.parametrize("name, N, stat", [("demo", 2, "fermion"), ("triangle_order3", 3, "boson"),
                                            ("square_order4", 4, "fermion"), ("two_ion_quadrupole", 2, "fermion")])
 def test_ladder_of_ring_crystals_is_rotor_rule(name, N, stat):
-    # A ring of N identical ions: rotor.allowed_L_ladder(N, statistics), the
-    # sign of an N-cycle being (-1)^(N-1) (elementary group theory).
+    # A ring of N identical ions: the sign of an N-cycle is (-1)^(N-1)
+    # (elementary group theory); fermions with N even: L = N/2 mod N, else 0
+    # mod N (hand-derived cases in tests/test_rotor.py).
     cfg = mdrotor.load_config(CONFIGS / f"{name}.toml")
     s = qb.build(cfg)
     assert (s.symmetry_order, s.cycles, s.statistics) == (N, 1, stat)
-    assert (s.model.ladder.spacing, s.model.ladder.offset) == rotor.allowed_L_ladder(N, stat)
-
-
-def test_ladder_counts_the_cycles_of_the_permutation():
-    # A turn by 2 pi / N permutes the ions in cycles of N; for fermions each
-    # cycle has the sign (-1)^(N-1), so an even number of fermion cycles is
-    # symmetric (elementary group theory, common practice, no source).
-    ca = get_species("40Ca+")
-    d = 3e-6
-    string3 = np.array([[-d, 0, 0], [0, 0, 0], [d, 0, 0]])          # one transposition, a fixed point
-    lad, N, c, st = qb.allowed_ladder(string3, [ca] * 3)
-    assert (N, c, st, lad.spacing, lad.offset) == (2, 1, "fermion", 2, 1)
-    pairs = np.array([[-2 * d, 0, 0], [-d, 0, 0], [d, 0, 0], [2 * d, 0, 0]])   # two transpositions
-    lad, N, c, st = qb.allowed_ladder(pairs, [ca] * 4)
-    assert (N, c, st, lad.spacing, lad.offset) == (2, 2, "boson", 2, 0)
-    ang = np.pi / 2 * np.arange(4)
-    centred_square = np.r_[[[0, 0, 0]], np.c_[d * np.cos(ang), d * np.sin(ang), np.zeros(4)]]
-    lad, N, c, st = qb.allowed_ladder(centred_square, [ca] * 5)
-    assert (N, c, lad.spacing, lad.offset) == (4, 1, 4, 2)
-    mixed = [ca, get_species("44Ca+")]
-    lad, N, c, st = qb.allowed_ladder(np.array([[-d, 0, 0], [d, 0, 0]]), mixed)
-    assert (N, st, lad.spacing, lad.offset) == (1, "distinguishable", 1, 0)
+    expected = (N, N // 2) if stat == "fermion" and N % 2 == 0 else (N, 0)
+    assert (s.model.ladder.spacing, s.model.ladder.offset) == expected
+    lad = qb.config_ladder(cfg)
+    assert (lad.modulus, lad.residue, lad.symmetry_order) == (*expected, N)
 
 
 def test_unlike_ions_populate_every_L_identical_ones_only_the_ladder(tmp_path):
     # Two unlike ions (40Ca+ and 44Ca+): no exchange symmetry, both parities
     # of L populated by a thermal release; identical 40Ca+: only odd L
-    # (rotor.allowed_L_ladder(2, "fermion")), every forbidden L at zero.
+    # (two identical fermions, tests/test_rotor.py), every forbidden L at zero.
     p = weak_pair(tmp_path)
     cfg = mdrotor.load_config(p, ["initial.occupations.libration=2", "crystal.ions=['40Ca+','44Ca+']"])
     s = qb.build(cfg)
@@ -262,3 +245,131 @@ def test_command_refuses_layout_pinning_and_overrides_on_results(tmp_path):
     mdrotor.run(mdrotor.load_config(weak_pair(tmp_path)), trajectories=4).save(h5)
     r = _cli(h5, "--set", "run.seed=3")
     assert r.returncode == 2 and "--set" in r.stderr
+
+
+# --------------------------------------------------------------------------
+# the result file (mdrotor quantum -o) and its report figure
+# --------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def quantum_file(tmp_path_factory):
+    d = tmp_path_factory.mktemp("quantum_out")
+    p = d / "weak.toml"
+    p.write_text(WEAK_PAIR)
+    out = d / "q.h5"
+    r = _cli(p, "--trajectories", 60, "--set", "initial.occupations.libration=2", "--json", "-o", out)
+    assert r.returncode == 0, r.stderr
+    return out, json.loads(r.stdout), p
+
+
+def test_output_file_holds_the_report(quantum_file):
+    # What the command prints is what the file holds (HDF5 round trip, the
+    # JSON's nulls as absent entries), in stage order, with the config.
+    from mdrotor.store import load_quantum
+
+    out, d, p = quantum_file
+    back = load_quantum(out)
+    assert [s["name"] for s in back["stages"]] == ["initial", "release", "free"]
+    for a, b in zip(d["stages"], back["stages"]):
+        assert a["L"] == b["L"] and a["P"] == b["P"]
+        assert a["ensemble"]["histogram_L"] == b["ensemble"]["histogram_L"]
+        assert a["ensemble"]["histogram_counts"] == b["ensemble"]["histogram_counts"]
+        assert a["ensemble"]["tv"] == b["ensemble"]["tv"] and a["ensemble"]["verdict"] == b["ensemble"]["verdict"]
+    assert back["verdict"] == d["verdict"] and back["verdict_reason"] == d["verdict_reason"]
+    assert back["lines"]["freq_hz"] == d["lines"]["freq_hz"] and back["lines"]["weight"] == d["lines"]["weight"]
+    assert (back["allowed_L_spacing"], back["allowed_L_offset"]) == (2, 1)
+    assert "[[stage]]" in back["config_text"] and back["kind"] == "quantum"
+    assert not list(out.parent.glob(".*tmp*"))  # the temporary file was renamed
+
+
+def test_output_refused_before_any_work(tmp_path):
+    # check_writable before the quantum rotor and the ensemble: one line, exit 2
+    p = weak_pair(tmp_path)
+    r = _cli(p, "--no-ensemble", "-o", tmp_path / "no_such_folder" / "q.h5")
+    assert r.returncode == 2 and "-o" in r.stderr and "does not exist" in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+
+
+def test_report_draws_P_of_L_beside_the_ensemble(quantum_file, tmp_path):
+    # The figure shows the stored numbers: bar heights are P(L) at the allowed
+    # L, the ensemble points are counts / N at the histogram's L shifted as
+    # compared (quantum_compare), with sqrt(counts) / N error bars (Poisson
+    # counting, common practice, no source); the verdict is written under it.
+    from mdrotor import report
+
+    out, d, _ = quantum_file
+    assert report.file_kind(out) == "quantum"
+    fig = report.quantum_figure(out)
+    axs = [ax for ax in fig.axes if ax.get_visible()]
+    assert len(axs) == 3
+    for ax, st in zip(axs, d["stages"]):
+        bars = ax.patches
+        assert sorted(b.get_height() for b in bars) == pytest.approx(sorted(st["P"]), rel=1e-12, abs=0)
+        centres = sorted(b.get_x() + 0.5 * b.get_width() for b in bars)
+        assert centres == pytest.approx(sorted(st["L"]), rel=1e-12, abs=0)
+        assert all(L % 2 == 1 for L in st["L"])
+        e = st["ensemble"]
+        pts = [ln for ln in ax.get_lines() if ln.get_marker() not in ("None", "", None, "_")]
+        x, y = pts[0].get_data()
+        c = np.asarray(e["histogram_counts"], float)
+        np.testing.assert_allclose(x, np.asarray(e["histogram_L"]) - e["shift_hbar"], rtol=0, atol=0)
+        np.testing.assert_allclose(y, c / e["n"], rtol=1e-12, atol=0)
+    assert d["verdict"].upper() in fig.get_supxlabel()
+    rep = report.write_report(out, tmp_path / "rep")
+    assert rep["kind"] == "quantum" and [p.rsplit("/", 1)[1] for p in rep["figures"]] == ["quantum_P_L.png"]
+    assert d["verdict"] in (tmp_path / "rep" / "summary.md").read_text()
+
+
+# --------------------------------------------------------------------------
+# mdrotor rotor and mdrotor quantum agree on what they share
+# --------------------------------------------------------------------------
+NOISY_PAIR = """
+[species]
+ion = "40Ca+"
+[crystal]
+ions = 2
+[trap]
+f_radial = "1.2 MHz"
+f_axial = "2.9 MHz"
+[rotation]
+f_start = "150 kHz"
+[[stage]]
+name = "free"
+duration = "20 us"
+[initial]
+temperature = "0 K"
+[run]
+trajectories = 8
+seed = 4
+[[noise.multipole]]
+order = 2
+psd = { kind = "white", level = "1e-6 V^2/m^4/Hz" }
+"""
+
+
+@pytest.mark.parametrize("f_rot, rel_I, rel_D", [("0 kHz", 1e-9, 1e-9), ("150 kHz", 1e-6, 1e-4)])
+def test_rotor_and_quantum_agree(tmp_path, f_rot, rel_I, rel_D):
+    # The same crystal seen by both commands: hbar / (2 pi I), the allowed
+    # ladder (the one function rotor.allowed_L_ladder) and the analytic D of
+    # the same noise (noise.NoiseModel.rotor_diffusion). At rest both take
+    # the same equilibrium (agreement to the solver's precision). Rotating,
+    # the quantum rotor interpolates I (cubic spline, ~1e-8 here) and the
+    # ions' positions (linearly between rates ~12 kHz apart: for the pair,
+    # r^3 ~ 1/(w_r^2 - w^2) (Goldstein, Classical Mechanics, ch. 3), the
+    # interpolation error (df^2 / 8) r'' / r is ~1e-5, and D ~ |M_2|^2 ~ r^4
+    # four times that), hence the looser bounds.
+    from mdrotor.rotor_report import rotor_summary
+
+    p = tmp_path / "pair.toml"
+    p.write_text(NOISY_PAIR.replace('"150 kHz"', f'"{f_rot}"'))
+    r = rotor_summary(p)
+    q = mdrotor.quantum(mdrotor.load_config(p), ensemble=False, records=1)
+    s = qb.build(mdrotor.load_config(p))
+    f = r["f_rot_hz"]
+    I_q = float(s.model.energy.moment_of_inertia(2 * np.pi * f))
+    assert r["hbar_over_I_hz"] == pytest.approx(hbar / (2 * np.pi * I_q), rel=rel_I, abs=0)
+    if f == 0:
+        assert r["hbar_over_I_hz"] == pytest.approx(q["hbar_over_I_hz"], rel=rel_I, abs=0)
+    assert (r["allowed_L_mod"], r["allowed_L_residue"], r["symmetry_order"]) == \
+        (q["allowed_L_spacing"], q["allowed_L_offset"], q["symmetry_order"]) == (2, 1, 2)
+    assert len(q["noise"]) == 1 and q["noise"][0]["kick_quanta"] == r["kick_quanta"] == 2
+    assert q["noise"][0]["D_end_hbar2_per_s"] == pytest.approx(r["diffusion_analytic_hbar2_per_s"], rel=rel_D, abs=0)

@@ -251,13 +251,17 @@ def test_same_seed_same_result_any_record_count():
 def test_forbidden_L_stay_empty():
     # Exchange symmetry: with every coupling (pinning order, kick size) a
     # multiple of the ladder spacing, the odd-L sector of two identical
-    # fermions never feeds even L (rotor.allowed_L_ladder(2, "fermion") =
-    # (2, 1)). Propagated in the full integer basis from the odd-L thermal
+    # fermions never feeds even L (their ladder is odd L: tests/test_rotor.py).
+    # Propagated in the full integer basis from the odd-L thermal
     # states, with pinning, a release and kicks: even L stay below 1e-12.
     q = 50.0
     sched = schedule(("spin", 2e-3, (0.0, 400.0, "smoothstep"), (1.0, 1.0, "hold")),
                      ("release", 2e-3, (400.0, 400.0, "hold"), (1.0, 0.0, "cosine")))
-    assert rotor.allowed_L_ladder(2, "fermion") == (2, 1)
+    from mdrotor.species import get_species
+
+    ca = get_species("40Ca+")
+    lad = rotor.allowed_L_ladder(np.array([[-3e-6, 0, 0], [3e-6, 0, 0]]), [ca, ca])
+    assert (lad.modulus, lad.residue) == (2, 1)
     odd, _ = pendulum(q, qr.Ladder(2, 1), sched)
     lv = qr.levels(odd, 0.0, 3)
     kick = qr.KickChannel(2, (0.0, 4e-3), (300.0,))

@@ -154,7 +154,7 @@ def test_spectrum_and_coherence(files):
     info = report.rotor_info(files["full"])
     fig = report.spectrum_figure(files["full"], rotor=info)
     ax = fig.axes[0]
-    assert ax.get_xlabel() == "transition frequency (kHz)" and ax.get_ylabel() == "line profile (peak = 1)"
+    assert ax.get_xlabel() == "transition frequency (kHz)" and ax.get_ylabel() == "line profile (peak = 1, no unit)"
     # rigid planar rotor E_L = hbar^2 L^2 / (2 I) with L = 2 pi I f / hbar: the line L -> L + k lies at
     # k f + k^2 hbar / (4 pi I) (textbook rigid rotor, e.g. Landau and Lifshitz, Quantum Mechanics, from memory)
     I, f = info["moment_of_inertia_kg_m2"], info["f_rot_hz"]
@@ -162,6 +162,28 @@ def test_spectrum_and_coherence(files):
                     and len(c.get_segments()) == 1 and c.get_segments()[0][0, 0] == c.get_segments()[0][1, 0])
     want = [(k * f + k * k * sc.hbar / (4 * np.pi * I)) * 1e-3 for k in (1, 2, 3)]
     assert np.allclose(sticks, want, rtol=1e-12)
+
+    assert ax.get_xlim()[0] >= 0
+
+    # the opposite sense of rotation: the lines adding quanta in that sense, L -> L - k, lie at
+    # (E_{L-k} - E_L) / h = k |f| + k^2 hbar / (4 pi I) > 0 (same rigid rotor); lines as wide as their
+    # spacing do not push the axis below zero frequency
+    from mdrotor.rotor_report import rotor_summary
+
+    cw = _toml(files["dir"], "ccw.toml", BASE.replace('to = "20 kHz"', 'to = "-20 kHz"'))
+    info_ccw = rotor_summary(cw)
+    assert info_ccw["f_rot_hz"] == pytest.approx(-20e3, rel=1e-12)
+    assert [ln["dL"] for ln in info_ccw["lines"]] == [-1, -2, -3]
+    I2 = info_ccw["moment_of_inertia_kg_m2"]
+    want = [(k * 20e3 + k * k * sc.hbar / (4 * np.pi * I2)) * 1e-3 for k in (1, 2, 3)]
+    wide = dict(info_ccw, lines=[dict(ln, width_hz=15e3) for ln in info_ccw["lines"]])
+    for d in (info_ccw, wide):
+        ax = report.spectrum_figure(files["full"], rotor=d).axes[0]
+        sticks = sorted(float(c.get_segments()[0][0, 0]) for c in ax.collections
+                        if c.__class__.__name__ == "LineCollection" and len(c.get_segments()) == 1
+                        and c.get_segments()[0][0, 0] == c.get_segments()[0][1, 0])
+        assert np.allclose(sticks, want, rtol=1e-12)
+        assert ax.get_xlim()[0] >= 0
 
     fig = report.coherence_figure(files["full"], rotor=info)
     ax = fig.axes[0]

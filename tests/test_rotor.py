@@ -126,30 +126,114 @@ def _cycle_sign(N):
     return -1 if inv % 2 else 1
 
 
-@pytest.mark.parametrize("N", [2, 3, 4])
-@pytest.mark.parametrize("stat", ["boson", "fermion"])
-def test_allowed_ladder_from_exchange_sign(N, stat):
-    # REFERENCES.md: a 2 pi/N rotation is a cyclic permutation; for identical
-    # fermions it gives the permutation sign, for bosons +1. The rotor factor
-    # e^{i L phi} gives e^{2 pi i L / N}; the allowed L are those where the
-    # two agree. Permutation sign by inversion count (common practice).
-    eps = _cycle_sign(N) if stat == "fermion" else 1
-    assert _cycle_sign(N) == (-1) ** (N - 1)   # REFERENCES.md, "Rotor coherence"
-    allowed = {L for L in range(-3 * N, 3 * N + 1)
-               if np.isclose(np.exp(2j * np.pi * L / N), eps, atol=1e-12)}
-    mod, res = rotor.allowed_L_ladder(N, stat)
-    assert {L for L in range(-3 * N, 3 * N + 1) if L % mod == res} == allowed
+def _ring(n, r, phase=0.0, z=0.0):
+    a = phase + 2 * np.pi * np.arange(n) / n
+    return np.c_[r * np.cos(a), r * np.sin(a), np.full(n, z)]
 
 
-def test_ladder_explicit_values_and_no_restriction_cases():
-    # REFERENCES.md: (-1)^(N-1) sign for fermions
-    assert rotor.allowed_L_ladder(2, "fermion") == (2, 1)
-    assert rotor.allowed_L_ladder(3, "fermion") == (3, 0)
-    assert rotor.allowed_L_ladder(4, "fermion") == (4, 2)
-    assert rotor.allowed_L_ladder(4, "boson") == (4, 0)
-    assert rotor.allowed_L_ladder(1, "fermion") == (1, 0)
-    assert rotor.allowed_L_ladder(3, "unknown") == (1, 0)
-    assert rotor.allowed_L_ladder(4, "fermion", identical=False) == (1, 0)
+def _allowed_by_brute_force(pos, species, N):
+    """Allowed L in [-12, 12] of a crystal that a turn by 2 pi/N maps onto
+    itself: the permutation by nearest image, its sign for identical
+    particles from the inversion count of each fermionic species' own
+    permutation (bosons +1), and the L whose rotor phase e^{2 pi i L/N}
+    equals it (common practice, no source)."""
+    c, s = np.cos(2 * np.pi / N), np.sin(2 * np.pi / N)
+    turned = pos @ np.array([[c, s, 0], [-s, c, 0], [0, 0, 1]])
+    perm = [int(np.argmin(np.linalg.norm(pos - t, axis=1))) for t in turned]
+    assert sorted(perm) == list(range(len(pos)))
+    sign = 1
+    for name in {sp.name for sp in species}:
+        idx = [i for i, sp in enumerate(species) if sp.name == name]
+        assert all(species[perm[i]].name == name for i in idx)
+        inv = sum(1 for a, b in itertools.combinations(idx, 2) if perm[a] > perm[b])
+        if species[idx[0]].statistics == "fermion":
+            sign *= -1 if inv % 2 else 1
+    return {L for L in range(-12, 13) if np.isclose(np.exp(2j * np.pi * L / N), sign, atol=1e-12)}
+
+
+D_ION = 3e-6
+
+
+def _cases():
+    from mdrotor.species import get_species
+
+    ca, ca43, ca44, be = (get_species(n) for n in ("40Ca+", "43Ca+", "44Ca+", "9Be+"))
+    d = D_ION
+    centre = np.zeros((1, 3))
+    # (name, positions, species, hand-derived (N, cycles, modulus, residue), ion-count rule's (mod, residue))
+    return [
+        # two identical ions: the turn by pi is one transposition; bosons even L,
+        # fermions odd L (the ortho-hydrogen rule with symmetric spins)
+        ("two bosons 9Be+", _ring(2, d), [be] * 2, (2, 1, 2, 0)),
+        ("two fermions 40Ca+", _ring(2, d), [ca] * 2, (2, 1, 2, 1)),
+        # a 3-cycle is even: L = 0 mod 3 for bosons and fermions alike
+        ("triangle 40Ca+", _ring(3, d), [ca] * 3, (3, 1, 3, 0)),
+        ("triangle 9Be+", _ring(3, d), [be] * 3, (3, 1, 3, 0)),
+        # a 4-cycle is odd: fermions L = 2 mod 4, bosons 0 mod 4
+        ("square 40Ca+", _ring(4, d), [ca] * 4, (4, 1, 4, 2)),
+        ("square 9Be+", _ring(4, d), [be] * 4, (4, 1, 4, 0)),
+        # five on a ring around one on the axis: C5, one even 5-cycle, L = 0 mod 5
+        # (the ion count 6 would say L = 3 mod 6)
+        ("5+1 centred ring 40Ca+", np.r_[centre, _ring(5, d)], [ca] * 6, (5, 1, 5, 0)),
+        # six around one: C6, an odd 6-cycle of fermions, L = 3 mod 6 (ion count 7: 0 mod 7)
+        ("6+1 centred ring 40Ca+", np.r_[centre, _ring(6, d)], [ca] * 7, (6, 1, 6, 3)),
+        # a string of three through the axis: the turn by pi swaps the outer two
+        ("string of 3 through the axis", np.array([[-d, 0, 0], [0, 0, 0], [d, 0, 0]]), [ca] * 3, (2, 1, 2, 1)),
+        # two pairs on a line: two transpositions, sign +1
+        ("string of 4", np.array([[-2 * d, 0, 0], [-d, 0, 0], [d, 0, 0], [2 * d, 0, 0]]), [ca] * 4, (2, 2, 2, 0)),
+        # unlike ions: no turn maps the crystal onto itself, every L
+        ("40Ca+ beside 44Ca+", _ring(2, d), [ca, ca44], (1, 0, 1, 0)),
+        # alternating square of two species: C2, one transposition per species;
+        # 40Ca+ and 44Ca+ both fermions (-1)(-1) = +1: even L
+        ("square 40Ca+ 44Ca+ alternating", _ring(4, d), [ca, ca44, ca, ca44], (2, 2, 2, 0)),
+        # 43Ca+ is a boson (43 + 19 constituents): only the 40Ca+ pair's sign, odd L
+        ("square 40Ca+ 43Ca+ alternating", _ring(4, d), [ca, ca43, ca, ca43], (2, 2, 2, 1)),
+        # a triangle with one corner moved off: no symmetry
+        ("distorted triangle", _ring(3, d) + np.array([[0.02 * d, 0, 0], [0, 0, 0], [0, 0, 0]]), [ca] * 3, (1, 0, 1, 0)),
+    ]
+
+
+@pytest.mark.parametrize("case", _cases(), ids=lambda c: c[0])
+def test_allowed_ladder_from_the_crystal(case):
+    # Hand-derived ladders: a turn by 2 pi/N mapping the crystal onto itself is
+    # a permutation of identical ions; an N-cycle has the sign (-1)^(N-1)
+    # (REFERENCES.md, "Rotor coherence"), each fermionic species' permutation
+    # gives its sign and bosons +1; the rotor factor e^{2 pi i L/N} must equal
+    # it: the rule that restricts the rotational levels of molecules with
+    # identical nuclei (Landau and Lifshitz, Quantum Mechanics, 3rd ed., §86
+    # and §105, from memory).
+    name, pos, species, (N, cycles, mod, res) = case
+    lad = rotor.allowed_L_ladder(pos, species)
+    assert (lad.symmetry_order, lad.cycles, lad.modulus, lad.residue) == (N, cycles, mod, res)
+    ladder = {L for L in range(-12, 13) if L % lad.modulus == lad.residue}
+    assert ladder == {L for L in range(-12, 13) if lad.allows(L)}
+    if N > 1:
+        assert ladder == _allowed_by_brute_force(pos, species, N)
+    else:
+        assert ladder == set(range(-12, 13)) and lad.statistics == "distinguishable"
+
+
+def test_ladder_ignores_the_crystal_orientation_and_scale():
+    # The symmetry is of the crystal's shape: a turned, shrunk, shifted square
+    # has the same ladder (common practice, no source).
+    from mdrotor.species import get_species
+
+    ca = get_species("40Ca+")
+    pos = _ring(4, 1e-7, phase=0.37, z=2e-6) + np.array([5e-6, -3e-6, 0])
+    lad = rotor.allowed_L_ladder(pos, [ca] * 4)
+    assert (lad.symmetry_order, lad.modulus, lad.residue, lad.statistics) == (4, 4, 2, "fermion")
+    # every ion on the axis (a string along z): nothing turns, no restriction
+    lad = rotor.allowed_L_ladder(np.array([[0, 0, -D_ION], [0, 0, D_ION]]), [ca] * 2)
+    assert (lad.symmetry_order, lad.modulus, lad.residue) == (1, 1, 0)
+
+
+def test_unknown_statistics_gives_no_restriction():
+    from mdrotor.species import custom_species
+
+    x = custom_species(6.6e-26, 1, name="X+")
+    assert x.statistics == "unknown"
+    lad = rotor.allowed_L_ladder(_ring(2, D_ION), [x, x])
+    assert (lad.symmetry_order, lad.modulus, lad.residue, lad.statistics) == (2, 1, 0, "unknown")
 
 
 def test_statistics_of_known_particles():
@@ -183,8 +267,8 @@ def test_bad_input_names_the_argument():
         rotor.transition_frequencies_hz(1e5, 1e-36, 0)
     with pytest.raises(InputError, match="sigma_L_hbar: a finite number >= 0"):
         rotor.transition_frequencies_hz(1e5, 1e-36, 2, sigma_L_hbar=-1)
-    with pytest.raises(InputError, match="statistics: one of boson, fermion, unknown"):
-        rotor.allowed_L_ladder(3, "anyon")
+    with pytest.raises(InputError, match="positions_m: an \\(n, 3\\) array with one species per ion"):
+        rotor.allowed_L_ladder(np.zeros((3, 3)), [])
     with pytest.raises(InputError, match="charge: at most the atomic number"):
         rotor.statistics_of(40, 20, 21)
     with pytest.raises(InputError, match="mass_number: an integer"):

@@ -7,6 +7,7 @@ import pytest
 from scipy import constants as sc
 
 from mdrotor.cli import main
+from mdrotor.numfmt import value_err
 
 from conftest import two_ion_toml
 
@@ -45,7 +46,20 @@ def test_rotor_from_config_and_result(tmp_path, capsys):
     # line widths grow as k hbar sigma_L / (2 pi I)
     assert r["lines"][1]["width_hz"] == pytest.approx(2 * r["lines"][0]["width_hz"])
     assert main(["rotor", str(out), "--diffusion", "0"]) == 0
-    assert "Ramsey 1.0000" in capsys.readouterr().out
+    txt = capsys.readouterr().out
+    assert "Ramsey 1.0000" in txt
+    # the text writes L with its standard error (numfmt.value_err); no inf or nan
+    assert value_err(r["L_mean_hbar"], r["L_mean_err_hbar"]) in txt and r["L_mean_err_hbar"] > 0
+    assert "inf" not in txt and "nan" not in txt
+    # JSON without Infinity / NaN: D = 0 leaves no finite coherence time, said as null with a reason
+    assert main(["rotor", str(out), "--diffusion", "0", "--json"]) == 0
+    z = json.loads(capsys.readouterr().out, parse_constant=_no_constant)
+    assert z["coherence_time_s"] is None and "D = 0" in z["coherence_time_s_reason"]
+    assert z["echo_coherence_time_s"] is None
+
+
+def _no_constant(name):
+    raise AssertionError(f"invalid JSON constant {name}")
 
 
 def test_rotor_bad_options(tmp_path, capsys):
