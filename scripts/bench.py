@@ -35,6 +35,8 @@ Usage::
     python scripts/bench.py                # full run, Markdown table on stdout
     python scripts/bench.py --quick        # smoke run (well under a minute)
     python scripts/bench.py --json --out bench.json
+    python scripts/bench.py --quantum-only # the quantum rotor case alone (run it on one thread:
+                                           # NUMBA_NUM_THREADS=1 OMP_NUM_THREADS=1)
 
 With ``--json`` stdout carries one JSON object and the table goes to
 stderr. Times are best-of-repeats wall-clock times. Other processes slow
@@ -804,6 +806,7 @@ def main(argv=None) -> int:
     ap.add_argument("--engine-only", action="store_true", help="only the whole-engine table (noise, lasers, RF)")
     ap.add_argument("--dask-only", action="store_true",
                     help="only one run spread over a local 2-worker Dask cluster against --threads 2")
+    ap.add_argument("--quantum-only", action="store_true", help="only the quantum rotor case and its target")
     ap.add_argument("--memory-child", nargs=3, metavar=("STEPS", "TRAJ", "DT_S"), help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
 
@@ -843,6 +846,14 @@ def main(argv=None) -> int:
                 log(f"engine: {label}, {threads} thread(s)")
                 result["engine"].append(bench_engine(label, raw, sizes["eng_traj"], n_steps, sizes["eng_repeats"],
                                                      threads))
+        result["targets"] = targets(result)
+        result["wall_s"] = time.perf_counter() - t_start
+        result["machine"]["loadavg_end"] = os.getloadavg()
+        print(markdown(result))
+        return 0
+    if args.quantum_only:
+        log("quantum rotor")
+        result["quantum"] = bench_quantum(1 if args.quick else 3)
         result["targets"] = targets(result)
         result["wall_s"] = time.perf_counter() - t_start
         result["machine"]["loadavg_end"] = os.getloadavg()

@@ -179,9 +179,10 @@ def test_spectrum_and_coherence(files):
     wide = dict(info_ccw, lines=[dict(ln, width_hz=15e3) for ln in info_ccw["lines"]])
     for d in (info_ccw, wide):
         ax = report.spectrum_figure(files["full"], rotor=d).axes[0]
-        sticks = sorted(float(c.get_segments()[0][0, 0]) for c in ax.collections
+        sticks = sorted(float(c.get_segments()[0][0, 0]) for c in ax.collections  # vertical, from 0 to 1
                         if c.__class__.__name__ == "LineCollection" and len(c.get_segments()) == 1
-                        and c.get_segments()[0][0, 0] == c.get_segments()[0][1, 0])
+                        and c.get_segments()[0][0, 0] == c.get_segments()[0][1, 0]
+                        and c.get_segments()[0][1, 1] - c.get_segments()[0][0, 1] == 1.0)
         assert np.allclose(sticks, want, rtol=1e-12)
         assert ax.get_xlim()[0] >= 0
 
