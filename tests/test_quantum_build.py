@@ -322,28 +322,12 @@ def test_report_draws_P_of_L_beside_the_ensemble(quantum_file, tmp_path):
 # --------------------------------------------------------------------------
 # mdrotor rotor and mdrotor quantum agree on what they share
 # --------------------------------------------------------------------------
-NOISY_PAIR = """
-[species]
-ion = "40Ca+"
-[crystal]
-ions = 2
-[trap]
-f_radial = "1.2 MHz"
-f_axial = "2.9 MHz"
-[rotation]
-f_start = "150 kHz"
-[[stage]]
-name = "free"
-duration = "20 us"
-[initial]
-temperature = "0 K"
-[run]
-trajectories = 8
-seed = 4
-[[noise.multipole]]
-order = 2
-psd = { kind = "white", level = "1e-6 V^2/m^4/Hz" }
-"""
+def noisy_pair(f_rot: str) -> str:
+    """Two free 40Ca+ rotating at f_rot under weak white quadrupole noise."""
+    return two_ion_toml(
+        pinning=None, rotation={"f_start": f_rot}, stage=[{"name": "free", "duration": "20 us"}],
+        initial={"temperature": "0 K"}, run={"trajectories": 8, "seed": 4},
+        noise={"multipole": [{"order": 2, "psd": {"kind": "white", "level": "1e-6 V^2/m^4/Hz"}}]})
 
 
 @pytest.mark.parametrize("f_rot, rel_I, rel_D", [("0 kHz", 1e-9, 1e-9), ("150 kHz", 1e-6, 1e-4)])
@@ -360,7 +344,7 @@ def test_rotor_and_quantum_agree(tmp_path, f_rot, rel_I, rel_D):
     from mdrotor.rotor_report import rotor_summary
 
     p = tmp_path / "pair.toml"
-    p.write_text(NOISY_PAIR.replace('"150 kHz"', f'"{f_rot}"'))
+    p.write_text(noisy_pair(f_rot))
     r = rotor_summary(p)
     q = mdrotor.quantum(mdrotor.load_config(p), ensemble=False, records=1)
     s = qb.build(mdrotor.load_config(p))
