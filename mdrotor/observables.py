@@ -92,9 +92,25 @@ class ModeFrame:
     pinned: bool
 
 
+PINNED_FRAMES_KEPT = 64  # pinned frames kept on a plan (each an equilibrium and its 3N modes)
+
+
 def pinned_frame(plan, t_s: float) -> ModeFrame:
     """The pinning's frame at time t (the schedule's f_rot(t), the pinning
-    static in it): one equilibrium and its modes, the libration among them."""
+    static in it): one equilibrium and its modes, the libration among them.
+    A function of the plan and t alone, kept on the plan (``frame_nodes``)
+    once computed: every chunk of a run observes at the same times."""
+    key = ("pinned", float(t_s))
+    cache = plan.frame_nodes
+    if key not in cache:
+        pinned = [k for k in cache if isinstance(k, tuple)]
+        if len(pinned) >= PINNED_FRAMES_KEPT:  # a long time series: keep memory bounded, drop the oldest
+            del cache[pinned[0]]
+        cache[key] = _pinned_frame(plan, t_s)
+    return cache[key]
+
+
+def _pinned_frame(plan, t_s: float) -> ModeFrame:
     from .statics import compute_crystal
 
     sched = plan.schedule
