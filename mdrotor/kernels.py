@@ -645,11 +645,11 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
         (M_r, 4) and states z_real (M_r, T), rotating modes' targets (M_c,),
         coefficients (M_c, 9) and states z_rot (M_c, 2, T); the states are
         advanced in place. Targets are rows of the noise values: 0-2 the
-        field's x, y, z, 3 + 2 p and 4 + 2 p g_re and g_im of order p. Step s's values give one
-        kick after the deterministic step, dt times the noise acceleration
-        at the step's end (a first-order splitting, exact for the impulse of
-        a uniform field; a white process has no timing within a step to
-        resolve).
+        field's x, y, z, 3 + 2 p and 4 + 2 p g_re and g_im of order p.
+        Step s's values give one kick after the deterministic step, dt
+        times the noise acceleration at the step's end (a first-order
+        splitting, exact for the impulse of a uniform field; a white process
+        has no timing within a step to resolve).
     laser : tuple (khat, par, centre, vrec, emit, keys, step0, photons)
         Doppler-cooling beams (:mod:`mdrotor.laser`), L of them (L = 0:
         none): khat (L, 3) unit vectors, par (L, 5) (|k|, Gamma, delta,
