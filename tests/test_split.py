@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 
 import mdrotor
+from conftest import toml_text, two_ion_config
 
 NOISE = {
     "field": [{"psd": [{"kind": "power", "level": "2e-13 V^2/m^2/Hz", "f_ref": "1 MHz", "alpha": 1.0,
@@ -27,19 +28,15 @@ NOISE = {
 def release_dict(**over) -> dict:
     """Two 40Ca+ ions spun to 60 kHz by a quadrupole, released and left free
     (the free stage measures each trajectory at its own rate)."""
-    d = {
-        "species": {"ion": "40Ca+"},
-        "crystal": {"ions": 2},
-        "trap": {"f_radial": "1.2 MHz", "f_axial": "2.9 MHz"},
-        "pinning": {"order": 2, "strength": "2e5 V/m^2"},
+    sections = {
         "stage": [{"name": "spin-up", "duration": "20 us", "f_rot": {"to": "60 kHz", "shape": "smoothstep"}},
                   {"name": "release", "duration": "8 us", "pinning": {"to": 0.0, "shape": "cosine"}},
                   {"name": "free", "duration": "6 us"}],
         "initial": {"temperature": "0.5 mK", "wigner": True},
         "run": {"trajectories": 8, "seed": 20261202},
     }
-    d.update(over)
-    return d
+    sections.update(over)
+    return two_ion_config(**sections)
 
 
 def rf_dict() -> dict:
@@ -161,31 +158,10 @@ def test_run_command_with_scheduler(cluster, tmp_path):
     import h5py
 
     src = tmp_path / "r.toml"
-    src.write_text("""
-[species]
-ion = "40Ca+"
-[crystal]
-ions = 2
-[trap]
-f_radial = "1.2 MHz"
-f_axial = "2.9 MHz"
-[pinning]
-order = 2
-strength = "2e5 V/m^2"
-[[stage]]
-name = "spin-up"
-duration = "10 us"
-f_rot = { to = "40 kHz", shape = "smoothstep" }
-[[stage]]
-name = "release"
-duration = "5 us"
-pinning = { to = 0.0, shape = "cosine" }
-[initial]
-temperature = "0.5 mK"
-[run]
-trajectories = 7
-seed = 3
-""")
+    src.write_text(toml_text(two_ion_config(
+        stage=[{"name": "spin-up", "duration": "10 us", "f_rot": {"to": "40 kHz", "shape": "smoothstep"}},
+               {"name": "release", "duration": "5 us", "pinning": {"to": 0.0, "shape": "cosine"}}],
+        initial={"temperature": "0.5 mK"}, run={"trajectories": 7, "seed": 3})))
     outs = {}
     for name, extra in (("local", []), ("dask", ["--scheduler", cluster.scheduler_address, "--split", "3"])):
         out = tmp_path / f"{name}.h5"
@@ -207,3 +183,31 @@ seed = 3
                 assert_same_value(obj.attrs[k], other.attrs[k], f"{name}@{k}")
 
         fa.visititems(visit)
+
+
+def test_slow_and_fast_free_crystals_measured_alone_or_together():
+    """A free crystal barely turning (measured in the lab) and one at 60 kHz
+    (in its own rotating frame), observed together after a spin-up to 60 kHz:
+    the mode columns of the schedule's frame, and each trajectory's numbers
+    the same as when it is observed alone."""
+    from mdrotor.engine import make_plan
+    from mdrotor.frame import rotate_positions
+    from mdrotor.observables import observe
+
+    plan = make_plan(mdrotor.load_config(release_dict()))
+    t = plan.schedule.duration_s
+    r0 = rotate_positions(plan.crystal0.positions_m, 0.3)
+    pos = np.repeat(r0.T[:, :, None], 2, axis=2)
+    vel = np.zeros_like(pos)
+    for b, f in enumerate((200.0, 60e3)):
+        w = 2 * np.pi * f
+        vel[0, :, b], vel[1, :, b] = -w * r0[:, 1], w * r0[:, 0]
+    lag = np.zeros((2, 2))
+    both = observe(plan, pos, vel, t, lag)
+    assert both["mode_n"].shape == (2, len(both["_modes"].omega)) and both["_frame"][0] == "rotating"
+    assert np.all(np.isfinite(both["mode_n"][1]))
+    assert abs(both["f_rot_hz"][0]) < 500 and abs(both["f_rot_hz"][1] / 60e3 - 1) < 0.05
+    for b in range(2):
+        alone = observe(plan, pos[:, :, b:b + 1].copy(), vel[:, :, b:b + 1].copy(), t, lag[:, b:b + 1].copy())
+        for k in ("mode_n", "f_rot_hz", "L_hbar", "status"):
+            assert np.array_equal(alone[k][0], both[k][b], equal_nan=True), k
