@@ -90,7 +90,8 @@ class Plan:
     holding0: object = None
     rotor_cdf: tuple | None = None
     lasers: tuple = ()
-    # the free crystal at each lattice frame rate used so far (observables.lattice_node)
+    # measurement frames computed so far: the free crystal per lattice rate (observables.lattice_node)
+    # and the pinned crystal per observation time (observables.pinned_frame, at most 64)
     frame_nodes: dict = field(default_factory=dict)
 
     @property
