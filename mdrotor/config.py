@@ -9,7 +9,6 @@ of them.
 
 from __future__ import annotations
 
-import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -677,14 +676,13 @@ def _check_rotation(cfg: Config) -> None:
     """Refuse a schedule whose rotation the radial confinement cannot hold."""
     if cfg.schedule is None:
         return
-    w2 = cfg.trap.omega_sq(cfg.masses_kg, cfg.charges_c)
-    f_lim = math.sqrt(float(np.min(w2[:, :2]))) / (2 * math.pi)
+    from .trap import check_rotation
+
+    f_lim = cfg.trap.max_rotation_hz(cfg.masses_kg, cfg.charges_c)
     f_max = cfg.schedule.max_f_rot_hz()
     if f_max >= f_lim:
         k = int(np.argmax([np.max(np.abs(s.f_rot.value(np.linspace(0, s.duration_s, 201)))) for s in cfg.schedule.stages]))
-        raise PhysicsError(f"stage.{cfg.schedule.stages[k].name}.f_rot",
-                           f"rotation at {f_max:.6g} Hz is faster than the radial confinement can hold (lowest radial secular frequency {f_lim:.6g} Hz)",
-                           cfg.source)
+        check_rotation(f_max, f_lim, f"stage.{cfg.schedule.stages[k].name}.f_rot", cfg.source)
 
 
 def _dump(raw: dict) -> str:

@@ -102,8 +102,9 @@ class Plan:
 
     @property
     def omega_radial_min(self) -> float:
-        """Lowest radial secular angular frequency over the ions (rad/s)."""
-        return float(np.sqrt(np.min(self.cfg.trap.omega_sq(self.masses, self.charges)[:, :2])))
+        """Lowest radial secular angular frequency over the ions (rad/s;
+        :meth:`mdrotor.trap.Trap.max_rotation_hz`)."""
+        return TWO_PI * self.cfg.trap.max_rotation_hz(self.masses, self.charges)
 
     @property
     def rf(self) -> bool:

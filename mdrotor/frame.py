@@ -61,14 +61,20 @@ def moment_of_inertia(r: np.ndarray, masses: np.ndarray, *, about: str = "com") 
     """I_z (kg m^2) of one configuration (N, 3), about the centre of mass
     (``about="com"``) or the trap axis (``about="axis"``)."""
     m = np.asarray(masses, dtype=float)
+    if about == "com" and len(m) < 2:
+        return 0.0  # one ion: no rotation about its own centre of mass
     z = complex_xy(r, m if about == "com" else None)
     return float(np.sum(m * np.abs(z) ** 2))
 
 
 def angular_momentum(pos: np.ndarray, vel: np.ndarray, m: np.ndarray):
     """L_z about the axis and about the centre of mass (J s), and I_com
-    (kg m^2), of an ensemble (3, N, T); each (T,)."""
+    (kg m^2), of an ensemble (3, N, T); each (T,). One ion has no rotation
+    about its own centre of mass: L_com = I_com = 0 exactly (computed, they
+    would be rounding residues, and L_com / I_com an arbitrary rate)."""
     lz = np.sum(m[:, None] * (pos[0] * vel[1] - pos[1] * vel[0]), axis=0)
+    if len(m) < 2:
+        return lz, np.zeros_like(lz), np.zeros_like(lz)
     mt = np.sum(m)
     xc = np.sum(m[:, None] * pos[0], axis=0) / mt
     yc = np.sum(m[:, None] * pos[1], axis=0) / mt

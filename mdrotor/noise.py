@@ -1708,7 +1708,7 @@ def run_rates(plan, raw) -> dict:
 
     * ``D`` from the growth of the L variance, D = (var L(t1) - var L(t0)) /
       (2 (t1 - t0)) (<dL^2> = 2 D t; the error from the standard error of
-      each spread, :func:`mdrotor.stats.std_se`, var = s^2 with error 2 s
+      each spread, :func:`mdrotor.stats.var_se`, var = s^2 with error 2 s
       se_s, the two in quadrature). Meaningful when the crystal rotates
       freely in that stage (pinning off).
     * heating per mode, (<n_k>(t1) - <n_k>(t0)) / (t1 - t0), with the
@@ -1729,7 +1729,7 @@ def run_rates(plan, raw) -> dict:
     fit's z-score ``D_fit_z`` is taken against.
     """
     from .observables import usable
-    from .stats import mean_sem, std_se
+    from .stats import mean_sem, var_se
 
     model = plan.noise
     sched = plan.schedule
@@ -1749,9 +1749,9 @@ def run_rates(plan, raw) -> dict:
     out = {"stage": stage, "t0_s": t0, "t1_s": t1, "n_trajectories": n, "pinned": bool(plan.pinned_at(t1))}
     l0, l1 = before["L_com_hbar"][ok], after["L_com_hbar"][ok]
     if n > 2:
-        (s0, e0), (s1, e1) = std_se(l0), std_se(l1)
-        out["D_fit_hbar2_per_s"] = (s1 * s1 - s0 * s0) / (2 * (t1 - t0))
-        out["D_fit_err_hbar2_per_s"] = np.hypot(2 * s0 * e0, 2 * s1 * e1) / (2 * (t1 - t0))
+        (v0, e0), (v1, e1) = var_se(l0), var_se(l1)
+        out["D_fit_hbar2_per_s"] = (v1 - v0) / (2 * (t1 - t0))
+        out["D_fit_err_hbar2_per_s"] = np.hypot(e0, e1) / (2 * (t1 - t0))
         out["D_fit_resolved"] = fit_resolved(out["D_fit_hbar2_per_s"], out["D_fit_err_hbar2_per_s"])
         out["D_fit_bound_hbar2_per_s"] = fit_upper_bound(out["D_fit_hbar2_per_s"], out["D_fit_err_hbar2_per_s"])
     m0, m1 = before["_modes"], after["_modes"]

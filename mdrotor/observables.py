@@ -50,6 +50,7 @@ import numpy as np
 from scipy import constants as sc
 
 from .frame import alignment_angle, angular_momentum, rotate_positions, rotate_states
+from .trap import DECONFINED_FRACTION
 
 HBAR = sc.hbar
 TWO_PI = 2.0 * np.pi
@@ -124,9 +125,9 @@ def _pinned_frame(plan, t_s: float) -> ModeFrame:
 
 def lattice_limit(plan) -> int:
     """Largest lattice index |j| whose frame rate j W_GRID_HZ is below
-    0.98 of the lowest radial secular frequency (faster crystals fly apart
-    and are flagged lost)."""
-    return int(np.floor(0.98 * plan.omega_radial_min / (TWO_PI * W_GRID_HZ)))
+    DECONFINED_FRACTION of the lowest radial secular frequency (faster
+    crystals fly apart and are flagged lost; :mod:`mdrotor.trap`)."""
+    return int(np.floor(DECONFINED_FRACTION * plan.omega_radial_min / (TWO_PI * W_GRID_HZ)))
 
 
 def lattice_node(plan, j: int) -> tuple:
@@ -279,6 +280,8 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     pos and vel (the RF-period average of the instantaneous L_z)."""
     from scipy.optimize import linear_sum_assignment
 
+    from .statics import quanta
+
     m = plan.masses
     n_traj = pos.shape[2]
     nonfinite = ~np.all(np.isfinite(pos), axis=(0, 1)) | ~np.all(np.isfinite(vel), axis=(0, 1))
@@ -305,7 +308,7 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     # modes
     pinned = plan.pinned_at(t_s)
     # a crystal spinning faster than the radial confinement flies apart
-    lost |= np.abs(w) >= 0.98 * plan.omega_radial_min
+    lost |= np.abs(w) >= DECONFINED_FRACTION * plan.omega_radial_min
     out["lost"] = lost
     good = ~nonfinite & ~lost
     reordered = np.zeros(n_traj, dtype=bool)
@@ -405,7 +408,7 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
             cols = column_map(columns, md)
             keep = cols >= 0
             block = np.full((int(np.sum(sel)), n_modes), np.nan)
-            block[:, cols[keep]] = (0.5 * (qn * qn + pn * pn) / HBAR - (0.5 if plan.wigner else 0.0))[:, keep]
+            block[:, cols[keep]] = (quanta(qn, pn) - (0.5 if plan.wigner else 0.0))[:, keep]
             mode_n[sel] = block
     out["reordered"] = reordered
     out["mode_n"] = mode_n

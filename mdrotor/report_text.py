@@ -46,7 +46,7 @@ def crystal_json(cfg, cr, holding) -> dict:
         "frame_f_rot_hz": float(cr.f_rot_hz) if cr.f_rot_hz else 0.0,
         "energy_j": cr.energy_j,
         "moment_of_inertia_kg_m2": cr.moment_of_inertia_kg_m2,
-        "hbar_over_I_hz": cr.hbar_over_I_hz if cr.moment_of_inertia_kg_m2 > 0 else None,  # one ion: no rotor
+        "hbar_over_I_hz": cr.hbar_over_I_hz,  # None for one ion: no rotor
         "L_hbar": cr.L_hbar,
         "nearest_distance_m": cr.nearest_distances_m().tolist(),
         "modes": [{"freq_hz": float(f), "label": lab, "kind": k, "plane": p}
@@ -80,17 +80,24 @@ def crystal_text(cfg, cr, holding) -> str:
     lines.append("")
     I = cr.moment_of_inertia_kg_m2
     lines.append(f"moment of inertia about z   I = {I:.6e} kg m^2")
-    if I > 0:
+    if cr.hbar_over_I_hz is not None:
         lines.append(f"rotational constant         hbar/(2 pi I) = {cr.hbar_over_I_hz:.6g} Hz")
-    lines.append(f"angular momentum at f_rot   L = {cr.L_hbar:.6g} hbar")
+        lines.append(f"angular momentum at f_rot   L = {cr.L_hbar:.6g} hbar")
+    else:
+        lines.append("  (one ion: no rotation, no rotor quantities)")
     lines.append(f"potential energy            {cr.energy_j:.6e} J")
     lines.append("")
     lines.append(f"  modes ({frame}):")
     lines.append("  mode   freq (kHz)   label              kind           plane")
     for k, (fr, lab, kind, pl) in enumerate(zip(cr.modes.freq_hz, cr.modes.labels, cr.modes.kinds, cr.modes.planes)):
         lines.append(f"  {k:4d}   {fr / 1e3:10.4f}   {lab:<18s} {kind:<14s} {pl}")
-    if not any(lab == "libration" for lab in cr.modes.labels) and n > 1:
-        lines.append("  (the rotation about z is a free zero mode: reported as L, not listed)")
+    if cr.modes.zero_axes:
+        free = " and ".join(cr.modes.zero_axes)
+        lines.append(f"  (the turn{'s' if len(cr.modes.zero_axes) > 1 else ''} about {free}: free zero mode"
+                     f"{'s' if len(cr.modes.zero_axes) > 1 else ''} of the trap's symmetry, not listed"
+                     + ("; the one about z is reported as L)" if "z" in cr.modes.zero_axes else ")"))
+    if cr.modes.n_neutral:
+        lines.append(f"  ({cr.modes.n_neutral} direction(s) flat within the numerical resolution, not listed)")
     if holding is not None:
         lines.append("")
         for t in cfg.pinning:

@@ -201,7 +201,7 @@ def transition_frequencies_hz(f_rot_hz: float, I_kg_m2: float, k_max: int,
         raise InputError("sigma_L_hbar", f"a finite number >= 0, got {sigma_L_hbar!r}",
                          f"{_SRC}.{func}")
     k = np.arange(1, kmax + 1)
-    quantum_hz = hbar / (2.0 * np.pi * I)          # d f_rot / d L
+    quantum_hz = hbar_over_I_hz(I)                 # d f_rot / d L
     centre = k * f + 0.5 * k**2 * quantum_hz       # k f_rot + k^2 hbar/(4 pi I)
     width = k * quantum_hz * sig
     return TransitionLines(k, centre, width)

@@ -20,10 +20,7 @@ import math
 from pathlib import Path
 
 import numpy as np
-from scipy import constants as sc
 
-HBAR = sc.hbar
-TWO_PI = 2.0 * np.pi
 # what the allowed-L ladder assumes (printed by the command, stated in docs/run.md)
 SPIN_ASSUMPTION = ("identical ions, all in one internal (electronic and nuclear spin) state: only then is a rotation "
                    "by 2 pi / N an exchange of identical particles that restricts L; ions in different internal "
@@ -108,7 +105,7 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
     if k is None:
         k = int(mod) if mod > 1 else 1
     if l_mean is None:
-        l_mean = I * TWO_PI * f / HBAR
+        l_mean = float(rotor.L_from_f_rot(f, I))
     # lines that add |dL| quanta in the sense of rotation: k |f_rot| + k^2 hbar / (4 pi I) > 0 for either sense
     sense = -1 if f < 0 else 1
     lines = rotor.transition_frequencies_hz(abs(f), I, max(k_lines, k), sigma_l)

@@ -28,8 +28,10 @@ real vectors (e_Q, e_P) with e_Q^T J e_P = 1, so that the mode's normal
 coordinates are Q_k = zeta^T J e_P, P_k = -zeta^T J e_Q and its energy is
 E_k = w_k (Q_k^2 + P_k^2) / 2 (Williamson normal form). Phonon numbers are
 n_k = E_k / (hbar w_k) - 1/2 with Wigner-sampled zero-point motion. The
-rotation itself (angle and L_z) is a zero mode when nothing pins the crystal;
-it is left out of the mode list and reported as L.
+turns that leave the potential unchanged (about z when nothing pins the
+crystal: its angle and L_z) are zero modes; :mod:`mdrotor.stability` finds
+them from the potential, sets them aside and judges stability; they are
+left out of the mode list (the one about z is reported as L).
 """
 
 from __future__ import annotations
@@ -42,6 +44,7 @@ from scipy import constants as sc
 
 from . import multipole as mp
 from .errors import PhysicsError
+from .trap import check_rotation, radial_limit_hz
 
 K_COULOMB = 1.0 / (4.0 * np.pi * sc.epsilon_0)
 SLOW_ROTATION_HZ = 10.0
@@ -120,6 +123,30 @@ class Potential:
         g -= K_COULOMB * np.sum((qq / dist2**1.5)[:, :, None] * d, axis=1)
         return g
 
+    def energy_and_gradient(self, r: np.ndarray) -> tuple[float, np.ndarray]:
+        """(energy, gradient) with the pair distances computed once: the
+        equilibrium search's objective. Same formulas as :meth:`energy`
+        and :meth:`gradient`."""
+        k = self._effective_springs()
+        qs = self.charges_c[:, None] * self.stray_field_v_per_m
+        e = 0.5 * np.sum(k * r * r) - np.sum(qs * r)
+        g = k * r - qs
+        for order, coeff in self.multipoles:
+            e += np.sum(self.charges_c * mp.potential(r[:, :2], order, coeff))
+            g[:, :2] += self.charges_c[:, None] * mp.gradient(r[:, :2], order, coeff)
+        for ext in self.external:
+            e += float(np.sum(self.charges_c * np.asarray(ext.potential(r))))
+            g -= self.charges_c[:, None] * np.asarray(ext.field(r))
+        d = r[:, None, :] - r[None, :, :]
+        dist2 = np.einsum("ijk,ijk->ij", d, d)
+        np.fill_diagonal(dist2, 1.0)
+        qq = K_COULOMB * np.outer(self.charges_c, self.charges_c)
+        np.fill_diagonal(qq, 0.0)
+        inv = qq / np.sqrt(dist2)
+        e += 0.5 * np.sum(inv)
+        g -= np.einsum("ij,ijk->ik", inv / dist2, d)
+        return float(e), g
+
     def hessian(self, r: np.ndarray, *, centrifugal: bool = True) -> np.ndarray:
         """Hessian (3N, 3N) in J/m^2; ``centrifugal=False`` leaves out the
         -m w^2 in-plane term (the form the rotating-frame H2 needs)."""
@@ -136,16 +163,17 @@ class Potential:
             he = np.asarray(ext.hessian(r))
             for i in range(n):
                 h[i, :, i, :] += self.charges_c[i] * he[i]
-        eye = np.eye(3)
-        for i in range(n):
-            for j in range(i + 1, n):
-                d = r[i] - r[j]
-                dist = np.sqrt(d @ d)
-                blk = K_COULOMB * self.charges_c[i] * self.charges_c[j] * (3.0 * np.outer(d, d) / dist**5 - eye / dist**3)
-                h[i, :, j, :] -= blk
-                h[j, :, i, :] -= blk
-                h[i, :, i, :] += blk
-                h[j, :, j, :] += blk
+        if n > 1:
+            d = r[:, None, :] - r[None, :, :]
+            dist2 = np.sum(d * d, axis=-1)
+            np.fill_diagonal(dist2, 1.0)
+            qq = K_COULOMB * np.outer(self.charges_c, self.charges_c)
+            np.fill_diagonal(qq, 0.0)
+            inv3 = qq / dist2**1.5
+            # block (i, j): k Q_i Q_j (3 d d^T / |d|^5 - 1 / |d|^3), d = r_i - r_j
+            blk = 3.0 * (inv3 / dist2)[:, :, None, None] * d[:, :, :, None] * d[:, :, None, :] - inv3[:, :, None, None] * np.eye(3)
+            h -= blk.transpose(0, 2, 1, 3)
+            h[np.arange(n), :, np.arange(n), :] += blk.sum(axis=1)
         return h.reshape(3 * n, 3 * n)
 
 
@@ -224,8 +252,8 @@ def find_equilibrium(pot: Potential, *, seed: int = 0, n_random: int | None = No
     if np.any(keff[:, 2] <= 0):
         raise PhysicsError("trap.f_axial", "the trap does not confine along z (non-positive axial curvature)")
     if np.any(keff[:, :2] <= 0):
-        if pot.omega_frame > 0:
-            raise PhysicsError("f_rot", "rotation faster than the radial confinement can hold (need f_rot below the radial secular frequency of every ion)")
+        if pot.omega_frame != 0:
+            check_rotation(pot.omega_frame / TWO_PI, radial_limit_hz(pot.spring_n_per_m, pot.masses_kg), "f_rot")
         raise PhysicsError("trap.f_radial", "the trap does not confine in the x-y plane (non-positive radial curvature)")
     l0, e0 = _scales(pot)
     rng = np.random.default_rng(np.random.SeedSequence(seed))
@@ -235,68 +263,133 @@ def find_equilibrium(pot: Potential, *, seed: int = 0, n_random: int | None = No
         guesses = _guesses(n, rng, 6 + n if n_random is None else n_random)
 
     def f(u):
-        r = u.reshape(n, 3) * l0
-        return pot.energy(r) / e0, (pot.gradient(r) * l0 / e0).ravel()
+        e, g = pot.energy_and_gradient(u.reshape(n, 3) * l0)
+        return e / e0, (g * (l0 / e0)).ravel()
 
+    last: dict = {}
+
+    def hess(u):  # the trust region asks for it at the same point many times
+        if last.get("u") is None or not np.array_equal(last["u"], u):
+            last["u"], last["h"] = u.copy(), pot.hessian(u.reshape(n, 3) * l0) * (l0 * l0 / e0)
+        return last["h"]
+
+    bound = 1e3 * max(n, 2)
     results = []
     for g in guesses:
         with np.errstate(all="ignore"):
             try:
-                u = _relax(pot, f, g, l0, e0)
+                u = _descend(f, hess, g, n, bound)
             except (np.linalg.LinAlgError, ValueError, FloatingPointError):
                 continue
-        if u is None:
+        if u is not None:
+            results.append((pot.energy(u * l0), u))
+    energies = [e for e, _ in results if np.isfinite(e)]
+    # Polish the lowest and check that it is a minimum; a saddle (reached
+    # from a symmetric start) is left along its negative curvature and
+    # descended from again. A saddle lies above the minima its downhill
+    # paths reach, so the first candidate that passes is the lowest minimum
+    # the starts lead to. The descents stop at a gradient of 1e-7 (below,
+    # the trust region stalls on the energy's rounding), which leaves their
+    # energies uncertain by ~1e-8 relative for the softest modes: every
+    # distinct candidate within ENERGY_CLOSE of the lowest is polished too.
+    results = sorted((t for t in results if np.isfinite(t[0])), key=lambda t: t[0])
+    best, seen = None, []
+    while results and len(seen) < MAX_POLISHED:
+        e, u = results.pop(0)
+        if best is not None and e > best[0] + ENERGY_CLOSE * abs(best[0]):
+            break
+        if any(abs(e - x) <= ENERGY_SAME * abs(x) for x in seen):
             continue
-        results.append((pot.energy(u * l0), u * l0))
-    if not results or not np.isfinite(min(e for e, _ in results)):
+        seen.append(e)
+        with np.errstate(all="ignore"):
+            try:
+                u, down = _check_minimum(pot, u, l0, e0)
+            except (np.linalg.LinAlgError, ValueError, FloatingPointError):
+                continue
+        if down is None:
+            e = pot.energy(u * l0)
+            if np.isfinite(e) and (best is None or e < best[0]):
+                best = (e, u)
+            continue
+        with np.errstate(all="ignore"):
+            try:
+                u2 = _descend(f, hess, u + 0.05 * down, n, bound)
+            except (np.linalg.LinAlgError, ValueError, FloatingPointError):
+                u2 = None
+        if u2 is not None and np.isfinite(e2 := pot.energy(u2 * l0)):
+            results.append((e2, u2))
+            results.sort(key=lambda t: t[0])
+    if best is None:
         raise PhysicsError("crystal", "the crystal is not bound in this potential (ions escape: check pinning strength against the trap curvature)")
-    results.sort(key=lambda t: t[0])
-    e_min, r_min = results[0]
+    e_min, u_min = best
+    r_min = u_min * l0
     if np.max(np.abs(r_min)) > 1e2 * l0 * max(n, 2):
         raise PhysicsError("crystal", "the crystal is not bound in this potential (ions escape: check pinning strength against the trap curvature)")
-    tol = 1e-9 * max(abs(e_min), e0)
-    found = sum(1 for e, _ in results if e - e_min < tol)
+    found = sum(1 for e in energies if abs(e - e_min) <= ENERGY_CLOSE * max(abs(e_min), e0))
     return Equilibrium(r_min, e_min, found, len(guesses), found == 1 and len(guesses) > 1)
 
 
-def _relax(pot: Potential, f, g: np.ndarray, l0: float, e0: float):
-    """Minimise from guess ``g`` (scaled units); leave saddles along a
-    negative curvature. Returns None when the ions run away."""
+#: Candidates of the equilibrium search within this relative energy of the
+#: lowest are polished and compared (the descents' energies carry ~1e-8).
+ENERGY_CLOSE = 1e-6
+#: Candidates whose energies agree to this are one minimum.
+ENERGY_SAME = 1e-10
+#: At most this many candidates are polished.
+MAX_POLISHED = 12
+
+
+def _descend(f, hess, g: np.ndarray, n: int, bound: float):
+    """Trust-region Newton descent (scipy's trust-krylov with the exact
+    Hessian: a third of the quasi-Newton iterations' time, and it leaves
+    saddles along their negative curvature) from ``g`` (scaled units);
+    None when the ions run away."""
     from scipy.optimize import minimize
 
-    n = pot.n_ions
-    bound = 1e3 * max(n, 2)
-    u = g
-    for attempt in range(4):
-        res = minimize(f, u.ravel(), jac=True, method="BFGS", options={"gtol": 1e-10, "maxiter": 20000})
-        u = res.x.reshape(n, 3)
-        if not np.all(np.isfinite(u)) or np.max(np.abs(u)) > bound:
-            return None
-        u = _polish(pot, u, l0, e0)
-        if not np.all(np.isfinite(u)):
-            return None
-        h = pot.hessian(u * l0) * l0 * l0 / e0
-        w, v = np.linalg.eigh(h)
-        if w[0] > -1e-7 * max(1.0, abs(w[-1])):
-            return u
-        u = u + 0.05 * v[:, 0].reshape(n, 3)
+    res = minimize(f, np.asarray(g, dtype=float).ravel(), jac=True, hess=hess, method="trust-krylov",
+                   options={"gtol": 1e-7, "maxiter": 500})
+    u = res.x.reshape(n, 3)
+    if not np.all(np.isfinite(u)) or np.max(np.abs(u)) > bound:
+        return None
     return u
 
 
-def _polish(pot: Potential, u: np.ndarray, l0: float, e0: float, iters: int = 8) -> np.ndarray:
-    """Newton steps with a pseudo-inverse Hessian (handles the rotation zero mode)."""
+def _check_minimum(pot: Potential, u: np.ndarray, l0: float, e0: float):
+    """Polish ``u`` by Newton steps; return (u, None) at a minimum, or
+    (u, direction of negative curvature) at a saddle."""
     n = pot.n_ions
+    u = _polish(pot, u, l0, e0)
+    if not np.all(np.isfinite(u)):
+        raise FloatingPointError
+    h = pot.hessian(u * l0) * l0 * l0 / e0
+    w, v = np.linalg.eigh(h)
+    if w[0] > -1e-7 * max(1.0, abs(w[-1])):
+        return u, None
+    return u, v[:, 0].reshape(n, 3)
+
+
+def _polish(pot: Potential, u: np.ndarray, l0: float, e0: float, iters: int = 12) -> np.ndarray:
+    """Newton steps in the complement of the symmetries' flat directions
+    (:func:`mdrotor.stability.turn_directions`), so that soft modes (an
+    intershell rotation) converge as well as stiff ones."""
+    from .stability import turn_directions
+
+    n = pot.n_ions
+    flat = turn_directions(pot, u * l0)
+    proj = np.eye(3 * n) - flat @ flat.T
     for _ in range(iters):
         r = u * l0
-        g = pot.gradient(r).ravel() * l0 / e0
-        if np.max(np.abs(g)) < 1e-14:
+        g = proj @ (pot.gradient(r).ravel() * l0 / e0)
+        if np.max(np.abs(g)) < 1e-15:
             break
         h = pot.hessian(r) * l0 * l0 / e0
-        w, v = np.linalg.eigh(h)
+        w, v = np.linalg.eigh(proj @ h @ proj)
         if w[0] < -1e-9 * abs(w[-1]):
-            break  # not near a minimum; let the caller handle it
-        keep = w > 1e-10 * abs(w[-1])
+            break  # not near a minimum; the caller pushes off the saddle
+        keep = w > 1e-13 * abs(w[-1])
         step = v[:, keep] @ ((v[:, keep].T @ g) / w[keep])
+        big = np.max(np.abs(step))
+        if big > 0.1:  # stay within the quadratic basin (scaled length units)
+            step *= 0.1 / big
         u = u - step.reshape(n, 3)
     return u
 
@@ -324,6 +417,8 @@ class Modes:
     labels: list
     kinds: list
     planes: list
+    zero_axes: tuple = ()
+    n_neutral: int = 0
 
     @property
     def freq_hz(self) -> np.ndarray:
@@ -342,8 +437,7 @@ class Modes:
         (..., M) array: E_k / (hbar w_k) (subtract 1/2 for phonon numbers
         under Wigner sampling).
         """
-        q, p = self.normal_coordinates(dxi, dpi)
-        return 0.5 * (q * q + p * p) / HBAR
+        return quanta(*self.normal_coordinates(dxi, dpi))
 
     def normal_coordinates(self, dxi: np.ndarray, dpi: np.ndarray):
         """Normal coordinates (Q_k, P_k), each (..., M), in sqrt(J s)."""
@@ -366,79 +460,42 @@ def rows_dot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return out
 
 
-def normal_modes(pot: Potential, r0: np.ndarray, *, zero_tol: float = 1e-6) -> Modes:
+def quanta(q: np.ndarray, p: np.ndarray) -> np.ndarray:
+    """E_k / (hbar w_k) = (Q_k^2 + P_k^2) / (2 hbar) of normal coordinates
+    (module docstring); the phonon number is this minus 1/2 under Wigner
+    sampling. The one formula: :meth:`Modes.project` and the observables
+    call it."""
+    return 0.5 * (q * q + p * p) / HBAR
+
+
+def normal_modes(pot: Potential, r0: np.ndarray) -> Modes:
     """Gyroscopic normal modes of the crystal at equilibrium ``r0``.
 
-    Uses the symplectic eigenproblem of the rotating-frame quadratic
-    Hamiltonian (module docstring); for ``omega_frame = 0`` this reduces to
-    the mass-weighted Hessian's eigenproblem.
+    The stability verdict and the zero modes of the potential's continuous
+    symmetries (set aside, not listed) belong to :mod:`mdrotor.stability`;
+    the modes come from the symmetric eigenproblem there. Within a set of
+    degenerate modes the basis is made canonical (:func:`_canonical_basis`),
+    so that it, and every state sampled in it, does not depend on the
+    linear-algebra library's arbitrary choice.
 
     Raises
     ------
     PhysicsError
-        If a mode frequency is not real (the equilibrium is not stable), with
-        the mode named.
+        If the equilibrium is not stable, or a mode is too soft to resolve,
+        with the mode named (:func:`mdrotor.stability.judge`).
     """
-    n = pot.n_ions
-    n3 = 3 * n
-    w = pot.omega_frame
-    msq = np.repeat(np.sqrt(pot.masses_kg), 3)
-    kmw = pot.hessian(r0, centrifugal=False) / np.outer(msq, msq)
-    # L_z coupling: -w (xi_x pi_y - xi_y pi_x) = -w xi^T C pi
-    c = np.zeros((n3, n3))
-    for i in range(n):
-        c[3 * i, 3 * i + 1] = 1.0
-        c[3 * i + 1, 3 * i] = -1.0
-    a = np.block([[kmw, -w * c], [-w * c.T, np.eye(n3)]])
-    jm = np.block([[np.zeros((n3, n3)), np.eye(n3)], [-np.eye(n3), np.zeros((n3, n3))]])
-    scale = np.sqrt(np.max(np.abs(np.linalg.eigvalsh(kmw - w * w * _inplane(n)))) + w * w)  # rad/s
-    ja = jm @ a / scale
-    # Rotation about z (about the centre of mass) is a zero mode when nothing
-    # breaks the rotational symmetry; it forms a Jordan block (angle, L_z)
-    # whose eigenvalues rounding would split into +-sqrt(eps). Project it out
-    # symplectically: Z = span{g1, g2} with g1 the rotation generator and
-    # J A g2 = g1; P removes Z along its symplectic complement.
-    rc = r0 - np.sum(pot.masses_kg[:, None] * r0, axis=0) / np.sum(pot.masses_kg)
-    xi0 = (np.sqrt(pot.masses_kg)[:, None] * rc)
-    rot = np.zeros_like(xi0)
-    rot[:, 0], rot[:, 1] = -xi0[:, 1], xi0[:, 0]
-    g1 = np.concatenate([rot.ravel(), (-w * xi0 * np.array([1.0, 1.0, 0.0])).ravel()])
-    tang = rot.ravel()
-    # symmetric about the centre of mass: no multipole, isotropic in-plane
-    # springs, no in-plane stray field unless every ion has the same Q/m (it
-    # then only shifts the crystal); decided from the potential, not from
-    # rounding-limited numbers
-    symmetric = (np.linalg.norm(tang) > 0 and not any(c != 0 for _, c in pot.multipoles) and not pot.external
-                 and np.array_equal(pot.spring_n_per_m[:, 0], pot.spring_n_per_m[:, 1])
-                 and (not np.any(pot.stray_field_v_per_m[:2]) or np.ptp(pot.charges_c / pot.masses_kg) == 0))
-    if symmetric:
-        g2 = np.linalg.lstsq(ja, g1, rcond=None)[0]
-        s12 = g1 @ jm @ g2
-        if abs(s12) > 1e-12 * np.linalg.norm(g1) * np.linalg.norm(g2):
-            proj = np.eye(2 * n3) - (np.outer(g1, jm @ g2) - np.outer(g2, jm @ g1)) / s12
-            # rows: z -> z - (w(z,g2) g1 - w(z,g1) g2)/w(g1,g2), w(a,b) = a^T J b
-            proj = np.eye(2 * n3) - (np.outer(g1, g2 @ jm.T) - np.outer(g2, g1 @ jm.T)) / s12
-            ja = ja @ proj
-    lam, vec = np.linalg.eig(ja)
-    unstable = np.abs(lam.real) > 1e-6
-    if np.any(unstable):
-        k = int(np.argmax(np.abs(lam.real)))
-        v = vec[:n3, k]
-        plane = "out-of-plane" if np.sum(np.abs(v[2::3]) ** 2) > 0.5 * np.sum(np.abs(v) ** 2) else "in-plane"
-        why = ("the planar crystal is not stable against tilting out of the plane at this rotation (raise the axial confinement or lower f_rot)"
-               if plane == "out-of-plane" else "the crystal is not bound at this rotation (an in-plane mode has imaginary frequency)")
-        raise PhysicsError("crystal", f"unstable {plane} mode (growth rate {abs(lam[k].real) * scale / TWO_PI:.4g} Hz): {why}")
-    om = lam.imag
-    sel = om > zero_tol
-    om, vec = om[sel] * scale, vec[:, sel]
-    order = np.argsort(om)
-    om, vec = om[order], vec[:, order]
-    # orthonormalise with the Krein form within (near-)degenerate clusters
+    from . import stability
+
+    n3 = 3 * pot.n_ions
+    red = stability.judge(pot, r0)
+    om, vec = stability.modes(red)
+    jm = stability.symplectic_j(n3)
+    # Krein-orthonormalise within (near-)degenerate clusters, then a canonical basis
     eqs, eps_ = [], []
     i = 0
     while i < len(om):
         j = i + 1
-        while j < len(om) and om[j] - om[i] < 1e-7 * om[i]:
+        while j < len(om) and om[j] - om[i] < DEGENERATE_REL * om[i]:
             j += 1
         v = vec[:, i:j]
         g = -1j * (v.conj().T @ jm @ v)  # positive for positive-energy modes
@@ -446,21 +503,58 @@ def normal_modes(pot: Potential, r0: np.ndarray, *, zero_tol: float = 1e-6) -> M
         ev, evec = np.linalg.eigh(g)
         if np.any(ev <= 0):
             raise PhysicsError("crystal", "a mode has negative energy in the rotating frame; the rotating equilibrium is not a minimum")
-        v = v @ evec / np.sqrt(ev)
+        v = _canonical_basis(v @ evec / np.sqrt(ev), jm)
         for k in range(v.shape[1]):
             vk = v[:, k]
             eqs.append(np.sqrt(2.0) * vk.real)
             eps_.append(np.sqrt(2.0) * vk.imag)
         i = j
-    e_q, e_p = np.array(eqs), np.array(eps_)
+    e_q, e_p = np.array(eqs).reshape(len(om), 2 * n3), np.array(eps_).reshape(len(om), 2 * n3)
     labels, kinds, planes = _label_modes(pot, r0, e_q, e_p, om)
-    return Modes(om, e_q.reshape(len(om), 2 * n3), e_p.reshape(len(om), 2 * n3), labels, kinds, planes)
+    return Modes(om, e_q, e_p, labels, kinds, planes, red.axes, red.n_neutral)
 
 
-def _inplane(n: int) -> np.ndarray:
-    p = np.zeros(3 * n)
-    p[0::3] = p[1::3] = 1.0
-    return np.diag(p)
+#: Modes closer than this (relative) form one degenerate set.
+DEGENERATE_REL = 1e-8
+# Thresholds of the canonical basis choice: odd values, so that the exact
+# ratios of symmetric crystals (0, 1/2, 1/sqrt(2), ...) never sit on them.
+_REF_MIN = 0.0173
+_REF_NEW = 0.2371
+
+
+def _canonical_basis(v: np.ndarray, jm: np.ndarray) -> np.ndarray:
+    """A basis of span(v) fixed by the subspace alone, not by the given basis.
+
+    ``v`` (2n3, d) is Krein-orthonormal (-i v^H J v = 1). Any other such
+    basis is v U with U unitary, and the coefficients of the unit phase-space
+    vectors e_k on the subspace, c_k = -i v^H J e_k, change to U^H c_k. The
+    reference vectors are the first e_k, in coordinate order, whose
+    coefficients are not small (>= _REF_MIN of the largest) and not nearly
+    in the span of those already taken (a residual >= _REF_NEW of their
+    size); U is chosen so that their coefficient matrix is upper triangular
+    with a positive real diagonal (the QR factorisation, unique). For d = 1
+    this fixes the phase.
+    """
+    d = v.shape[1]
+    coef = -1j * (v.conj().T @ jm)  # (d, 2n3): c_k in column k
+    size = np.linalg.norm(coef, axis=0)
+    top = float(np.max(size))
+    chosen, q = [], np.zeros((d, 0), dtype=complex)
+    for k in range(coef.shape[1]):
+        if size[k] < _REF_MIN * top:
+            continue
+        res = coef[:, k] - q @ (q.conj().T @ coef[:, k])
+        nr = np.linalg.norm(res)
+        if nr >= _REF_NEW * size[k]:
+            chosen.append(k)
+            q = np.hstack([q, (res / nr)[:, None]])
+            if len(chosen) == d:
+                break
+    if len(chosen) < d:  # cannot happen for independent vectors; keep the given basis
+        return v
+    u, t = np.linalg.qr(coef[:, chosen])
+    ph = np.diag(t) / np.abs(np.diag(t))
+    return v @ (u * ph[None, :])
 
 
 def _label_modes(pot: Potential, r0: np.ndarray, e_q: np.ndarray, e_p: np.ndarray, om: np.ndarray):
@@ -524,19 +618,30 @@ class Crystal:
 
     @property
     def moment_of_inertia_kg_m2(self) -> float:
-        """I_z about the trap axis (includes centrifugal stretch at f_rot)."""
+        """I_z about the trap axis (includes centrifugal stretch at f_rot);
+        0 for one ion, which has no rotation (I about its own centre of mass)."""
         r = self.positions_m
+        if len(r) < 2:
+            return 0.0
         return float(np.sum(self.masses_kg * (r[:, 0] ** 2 + r[:, 1] ** 2)))
 
     @property
-    def hbar_over_I_hz(self) -> float:
-        """hbar / (2 pi I), Hz."""
-        return HBAR / (TWO_PI * self.moment_of_inertia_kg_m2)
+    def hbar_over_I_hz(self) -> float | None:
+        """hbar / (2 pi I), Hz (:func:`mdrotor.rotor.hbar_over_I_hz`); None
+        without a rotation (one ion)."""
+        from . import rotor
+
+        I = self.moment_of_inertia_kg_m2
+        return float(rotor.hbar_over_I_hz(I)) if I > 0 else None
 
     @property
-    def L_hbar(self) -> float:
-        """Angular momentum I w / hbar at f_rot (rigid rotation)."""
-        return self.moment_of_inertia_kg_m2 * TWO_PI * self.f_rot_hz / HBAR
+    def L_hbar(self) -> float | None:
+        """Angular momentum 2 pi I f_rot / hbar of rigid rotation
+        (:func:`mdrotor.rotor.L_from_f_rot`); None without a rotation (one ion)."""
+        from . import rotor
+
+        I = self.moment_of_inertia_kg_m2
+        return float(rotor.L_from_f_rot(self.f_rot_hz, I)) if I > 0 else None
 
     def nearest_distances_m(self) -> np.ndarray:
         r = self.positions_m
@@ -620,10 +725,7 @@ def crystal_from_config(cfg, f_rot_hz: float | None = None) -> Crystal:
     (default: the rotation at t = 0, ``rotation.f_start``), with the
     pinning at full configured strength and angle."""
     f = cfg.f_start_hz if f_rot_hz is None else float(f_rot_hz)
-    w2 = cfg.trap.omega_sq(cfg.masses_kg, cfg.charges_c)
-    if f != 0.0 and TWO_PI * abs(f) >= np.sqrt(np.min(w2[:, :2])):
-        raise PhysicsError("f_rot", f"rotation at {f:g} Hz is faster than the radial confinement can hold "
-                           f"(lowest radial secular frequency {np.sqrt(np.min(w2[:, :2])) / TWO_PI:.6g} Hz)", cfg.source)
+    check_rotation(f, cfg.trap.max_rotation_hz(cfg.masses_kg, cfg.charges_c), "f_rot", cfg.source)
     try:
         return compute_crystal(model_potential(cfg, f), f, seed=cfg.search_seed)
     except PhysicsError as e:

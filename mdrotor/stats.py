@@ -56,6 +56,13 @@ def std_se(x: np.ndarray) -> tuple[float, float]:
     return s, s / np.sqrt(2.0 * (x.size - 1))
 
 
+def var_se(x: np.ndarray) -> tuple[float, float]:
+    """Sample variance s^2 and its normal-theory standard error,
+    2 s se(s) = s^2 sqrt(2 / (n - 1)) (from :func:`std_se`)."""
+    s, e = std_se(x)
+    return s * s, 2.0 * s * e
+
+
 def fraction_interval(k: int, n: int, confidence: float = ONE_SIGMA) -> tuple[float, float, float]:
     """Fraction k / n and its Wilson score interval (lo, hi) at ``confidence``.
 

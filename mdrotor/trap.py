@@ -15,6 +15,15 @@ Given only secular frequencies we assume a linear-trap split: the axial
 confinement is all DC, and the radial one is an RF pseudopotential minus
 the DC defocusing w_z^2/2 that Laplace's equation imposes (the in-plane
 anisotropy, ``radial_split``, is taken as DC).
+
+Rotation against the confinement: in a frame turning at w the centrifugal
+term -1/2 m w^2 (x^2 + y^2) lowers each ion's radial curvature to
+m (w_r^2 - w^2), so no crystal is bound once w reaches the lowest radial
+secular frequency over the ions (Goldstein, Classical Mechanics, ch. 4,
+motion in a rotating frame). :func:`max_rotation_hz` is that limit,
+:func:`check_rotation` the one refusal, :func:`radial_limit_hz` the same
+limit read off a potential's springs, and :data:`DECONFINED_FRACTION` the
+fraction of it at which a measured crystal counts as flown apart.
 """
 
 from __future__ import annotations
@@ -25,6 +34,27 @@ from functools import lru_cache
 import numpy as np
 
 TWO_PI = 2.0 * np.pi
+#: A crystal measured turning at this fraction of the lowest radial secular
+#: frequency or faster has flown apart (its stretch diverges as
+#: 1 / (w_r^2 - w^2)); also the edge of the rotating-frame grid.
+DECONFINED_FRACTION = 0.98
+
+
+def radial_limit_hz(spring_n_per_m, masses_kg) -> float:
+    """Lowest radial secular frequency (Hz) of springs K_iu = m_i w_iu^2 (N, 3)."""
+    k = np.asarray(spring_n_per_m, dtype=float)
+    w2 = k[:, :2] / np.asarray(masses_kg, dtype=float)[:, None]
+    return float(np.sqrt(max(float(np.min(w2)), 0.0)) / TWO_PI)
+
+
+def check_rotation(f_rot_hz: float, f_limit_hz: float, key: str, source: str | None = None) -> None:
+    """Refuse a rotation at or above the radial confinement's limit
+    (module docstring), naming ``key``."""
+    from .errors import PhysicsError
+
+    if f_rot_hz != 0.0 and abs(f_rot_hz) >= f_limit_hz:
+        raise PhysicsError(key, f"rotation at {f_rot_hz:.6g} Hz is faster than the radial confinement can hold "
+                                f"(lowest radial secular frequency {f_limit_hz:.6g} Hz)", source)
 
 
 @dataclass(frozen=True)
@@ -103,6 +133,12 @@ class Trap:
         """Mathieu q per ion and axis (N, 3), scaled by charge-to-mass."""
         s = (np.asarray(charges_c) / np.asarray(masses_kg)) / (self.ref_charge_c / self.ref_mass_kg)
         return s[:, None] * np.asarray(self.q)[None, :]
+
+    def max_rotation_hz(self, masses_kg, charges_c) -> float:
+        """The fastest rotation the radial confinement holds: the lowest
+        radial secular frequency over the ions, Hz (module docstring)."""
+        w2 = self.omega_sq(masses_kg, charges_c)
+        return float(np.sqrt(np.min(w2[:, :2])) / TWO_PI)
 
     def spring_constants(self, masses_kg, charges_c) -> np.ndarray:
         """K_{i,u} = m_i w_{u,i}^2 (N, 3); N/m."""

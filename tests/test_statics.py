@@ -1,5 +1,7 @@
 """Crystal statics and normal modes against published and closed-form values."""
 
+import json
+
 import numpy as np
 import pytest
 from scipy import constants as sc
@@ -70,18 +72,28 @@ def test_linear_chain_positions_and_axial_modes(n):
     assert abs(virial_ratio(cr.potential, cr.positions_m) - 1) < 1e-9
 
 
-@pytest.mark.parametrize("n", [2, 3, 4, 5])
+@pytest.mark.parametrize("n", list(range(2, 11)))
 def test_zigzag_threshold_from_transverse_hessian(n):
     # Transverse eigenvalues of a linear chain: (w_r/w_z)^2 + 1/2 - mu_p^2/2
     # (REFERENCES.md, computed from James's Hessian; D.F.V. James, Appl. Phys. B 66, 181 (1998)).
     # The chain is linear just above the threshold ratio and zigzag below it.
+    # Both sides are bound: 2 % below, the turn of the zigzag about the trap
+    # axis is the potential's zero mode and is set aside, not read as an
+    # instability (issue 11: "growth rate 151.6 Hz" on some machines).
     _, mu = _james_reference(n)
     ratio_c = np.sqrt(mu[-1] ** 2 / 2 - 0.5)
     f_z = 1e6
     lin = compute_crystal(_pot(n, 1.02 * ratio_c * f_z, f_z))
     assert np.max(np.abs(lin.positions_m[:, :2])) < 1e-12
+    assert len(lin.modes.omega) == 3 * n  # a string turned about its own axis does not move
     zig = compute_crystal(_pot(n, 0.98 * ratio_c * f_z, f_z))
     assert np.max(np.hypot(zig.positions_m[:, 0], zig.positions_m[:, 1])) > 1e-8
+    assert len(zig.modes.omega) == 3 * n - 1  # the turn about z is not a mode
+    # the lowest transverse mode of the string: sqrt(1.02^2 - 1) ratio_c w_z
+    # (same Hessian); the reference's mu carries ~1e-7, amplified 25x by the
+    # near-threshold difference 1.02^2 - 1
+    lowest = np.sqrt(1.02**2 - 1) * ratio_c * f_z
+    assert lin.modes.freq_hz[0] == pytest.approx(lowest, rel=1e-5)
     if n == 2:
         assert abs(ratio_c - 1) < 1e-8  # N = 2 needs w_r > w_z (REFERENCES.md)
 
@@ -185,3 +197,171 @@ def test_unstable_rotation_named():
     planar = np.array([[r, 0, 0], [-r, 0, 0]])
     with pytest.raises(PhysicsError, match="out-of-plane"):
         normal_modes(_pot(2, f_r, f_z, f_rot=f_rot), planar)
+
+
+def _cli_json(capsys, argv):
+    from mdrotor.cli import main
+
+    assert main(argv) == 0
+    return json.loads(capsys.readouterr().out)
+
+
+OBLATE_20 = """
+[species]
+ion = "40Ca+"
+[crystal]
+ions = 20
+[trap]
+f_radial = "1 MHz"
+f_axial = "{f_axial}"
+f_drive = "60 MHz"
+[[stage]]
+name = "hold"
+duration = "1 us"
+"""
+
+
+def test_oblate_twenty_ions_form_a_bound_planar_cluster(tmp_path, capsys):
+    """20 40Ca+ ions, f_radial 1 MHz, f_axial 10 MHz (issue 11: 'unstable
+    in-plane mode (growth rate 3.4e+12 Hz)'): a planar cluster with the
+    shells (1, 7, 12) of V.M. Bedanov and F.M. Peeters, Phys. Rev. B 49,
+    2667 (1994), table I (from memory), and all 59 modes real (the turn
+    about z set aside). The same crystal at f_axial 25 MHz, started from it,
+    keeps its in-plane modes: they do not depend on w_z for a planar cluster."""
+    path = tmp_path / "oblate.toml"
+    path.write_text(OBLATE_20.format(f_axial="10 MHz"))
+    cj = _cli_json(capsys, ["crystal", str(path), "--json"])
+    r = np.array(cj["positions_m"])
+    assert np.max(np.abs(r[:, 2])) < 1e-12
+    rho = np.sort(np.hypot(r[:, 0], r[:, 1]))
+    gaps = np.diff(rho)
+    shells = np.split(rho, np.where(gaps > 0.25 * rho[-1])[0] + 1)
+    assert [len(s) for s in shells] == [1, 7, 12]
+    f = np.array([m["freq_hz"] for m in cj["modes"]])
+    assert len(f) == 59 and np.all(f > 0)
+    # the out-of-plane COM mode is w_z itself (Kohn's theorem; common practice, no source)
+    assert np.min(np.abs(f - 10e6)) < 1e-6 * 10e6
+    from mdrotor.config import load_config
+
+    path.write_text(OBLATE_20.format(f_axial="25 MHz"))
+    cfg = load_config(str(path))
+    from mdrotor.statics import model_potential
+
+    cr = compute_crystal(model_potential(cfg), start=r)
+    inplane = np.sort([x for x, p in zip(cr.modes.freq_hz, cr.modes.planes) if p == "in-plane"])
+    inplane10 = np.sort([m["freq_hz"] for m in cj["modes"] if m["plane"] == "in-plane"])
+    assert np.allclose(inplane, inplane10, rtol=1e-6)
+
+
+def test_one_ion_crystal_has_no_rotor_quantities(tmp_path, capsys):
+    """One ion is a valid crystal (heating studies): I = 0 about its centre
+    of mass, no hbar/(2 pi I), no L, and its three modes are the secular
+    frequencies (common practice, no source)."""
+    path = tmp_path / "one.toml"
+    path.write_text(OBLATE_20.format(f_axial="2.5 MHz").replace("ions = 20", "ions = 1"))
+    cj = _cli_json(capsys, ["crystal", str(path), "--json"])
+    assert cj["moment_of_inertia_kg_m2"] == 0.0
+    assert cj["hbar_over_I_hz"] is None and cj["L_hbar"] is None
+    f = sorted(m["freq_hz"] for m in cj["modes"])
+    assert np.allclose(f, [1e6, 1e6, 2.5e6], rtol=1e-9)
+    from mdrotor.cli import main
+
+    assert main(["crystal", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert "I = 0" in out and "hbar/(2 pi I)" not in out and "L = " not in out
+
+
+# Shell structure of 2D Coulomb clusters in a parabolic trap, V.M. Bedanov
+# and F.M. Peeters, Phys. Rev. B 49, 2667 (1994), table I (from memory).
+BP_SHELLS_LARGE = {9: (2, 7), 10: (2, 8), 11: (3, 8), 12: (3, 9), 13: (4, 9), 14: (4, 10), 15: (5, 10),
+                   16: (1, 5, 10), 17: (1, 6, 10)}
+
+
+def _planar_reference(shells):
+    """Independent solution of Bedanov and Peeters's scaled problem
+    H = sum rho_i^2 + sum 1/rho_ij, relaxed from concentric rings with the
+    published shell occupation: its energy bounds the ground state from above."""
+    from scipy.optimize import minimize
+
+    pts = []
+    for k, m in enumerate(shells):
+        a = 2 * np.pi * (np.arange(m) + 0.5 * k) / m
+        rad = 0.0 if m == 1 else 0.6 + 0.9 * k
+        pts += [(rad * np.cos(t), rad * np.sin(t)) for t in a]
+    x0 = np.array(pts).ravel()
+    n = len(pts)
+
+    def f(x):
+        p = x.reshape(n, 2)
+        d = np.sqrt(np.sum((p[:, None] - p[None]) ** 2, -1))
+        iu = np.triu_indices(n, 1)
+        return np.sum(p * p) + np.sum(1 / d[iu])
+
+    return minimize(f, x0 + 1e-3 * np.sin(np.arange(2 * n)), method="BFGS", options={"gtol": 1e-9}).fun / n
+
+
+@pytest.mark.parametrize("n", [10, 12, 15, 16, 17])  # N = 9 to 30: scripts/statics_scan.py
+def test_planar_cluster_shells_at_aspect_30(n):
+    """Planar clusters at f_axial/f_radial = 30 reach the published shell
+    structure and an energy no higher than the relaxed published structure
+    (Bedanov and Peeters 1994, units E0 of test_planar_clusters_bedanov_peeters)."""
+    f0 = 1e6
+    cr = compute_crystal(_pot(n, f0, 30 * f0))
+    w0 = TWO_PI * f0
+    e0 = (M * w0**2 * Q**4 / (2 * (4 * np.pi * sc.epsilon_0) ** 2)) ** (1 / 3)
+    r0 = (2 * Q**2 / (4 * np.pi * sc.epsilon_0 * M * w0**2)) ** (1 / 3)
+    assert np.max(np.abs(cr.positions_m[:, 2])) < 1e-12
+    rho = np.sort(np.hypot(cr.positions_m[:, 0], cr.positions_m[:, 1])) / r0
+    shells = np.split(rho, np.where(np.diff(rho) > 0.2)[0] + 1)
+    assert tuple(len(s) for s in shells) == BP_SHELLS_LARGE[n]
+    # energies agree to the reference minimiser's tolerance (gtol 1e-9: ~1e-12 relative)
+    assert cr.energy_j / e0 / n <= _planar_reference(BP_SHELLS_LARGE[n]) * (1 + 1e-10)
+    assert len(cr.modes.omega) == 3 * n - 1 and np.all(cr.modes.omega > 0)
+
+
+# Thomson problem: N unit charges on a unit sphere, minimum energy (T. Erber
+# and G.M. Hockney, J. Phys. A 24, L1369 (1991); D.J. Wales and S. Ulker,
+# Phys. Rev. B 74, 212101 (2006); from memory). For these N every site is
+# equivalent, so in a spherical harmonic trap all ions sit at one radius R
+# and U = N R^2 / 2 + S / R (units l^3 = k Q^2 / (m w^2)): R^3 = S / N,
+# U = 3/2 N (S / N)^(2/3).
+THOMSON = {4: 3.674234614, 6: 9.985281374, 8: 19.675287861, 12: 49.165253058}
+
+
+@pytest.mark.parametrize("n", list(THOMSON))
+def test_spherical_clusters_thomson(n):
+    f0 = 1e6
+    cr = compute_crystal(_pot(n, f0, f0))
+    length = _james_length(f0)
+    e_unit = (Q**2 / (4 * np.pi * sc.epsilon_0)) / length
+    expect = 1.5 * n * (THOMSON[n] / n) ** (2 / 3)
+    assert cr.energy_j / e_unit == pytest.approx(expect, rel=1e-8)
+    r = np.linalg.norm(cr.positions_m, axis=1) / length
+    assert np.allclose(r, (THOMSON[n] / n) ** (1 / 3), rtol=1e-6)
+    assert len(cr.modes.omega) == 3 * n - 3  # three free turns: x, y and z
+    assert cr.modes.zero_axes == ("x", "y", "z")
+
+
+def test_spherical_cluster_of_13_has_a_centre_ion():
+    """The first 3D Coulomb cluster with an ion at the centre is N = 13,
+    (1, 12) (J.P. Schiffer, as quoted by R.W. Hasse and V.V. Avilov,
+    Phys. Rev. A 44, 4506 (1991); from memory)."""
+    cr = compute_crystal(_pot(13, 1e6, 1e6))
+    r = np.sort(np.linalg.norm(cr.positions_m, axis=1)) / _james_length(1e6)
+    assert r[0] < 1e-6 and np.all(r[1:] > 1.0)
+
+
+def test_one_ion_run_flags_no_loss(tmp_path, capsys):
+    """One ion has no rotation rate (I about its centre of mass is 0): a
+    thermal one-ion run through a spin-up schedule flags no trajectory as
+    lost (issue 11, section 3: 12 % were, from an arbitrary L / I). The ion
+    stays within a few thermal lengths sqrt(k_B T / m w^2) of the centre
+    (equipartition; common practice, no source)."""
+    path = tmp_path / "one_run.toml"
+    path.write_text(OBLATE_20.format(f_axial="2.5 MHz").replace("ions = 20", "ions = 1").replace(
+        '[[stage]]\nname = "hold"\nduration = "1 us"',
+        '[[stage]]\nname = "spin"\nduration = "2 us"\nf_rot = { to = "200 kHz", shape = "linear" }\n'
+        '[initial]\ntemperature = "1 mK"\n[run]\ntrajectories = 200\nseed = 3'))
+    out = _cli_json(capsys, ["run", str(path), "--json", "--quiet", "-o", str(tmp_path / "one.h5")])
+    assert out["n_trajectories"] == 200
+    assert out["loss_count"] == 0 and out["nonfinite_count"] == 0
