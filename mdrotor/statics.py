@@ -94,39 +94,15 @@ class Potential:
 
     def energy(self, r: np.ndarray) -> float:
         """Effective potential energy (J) at positions r (N, 3) in m."""
-        k = self._effective_springs()
-        e = 0.5 * np.sum(k * r * r) - np.sum(self.charges_c[:, None] * self.stray_field_v_per_m * r)
-        for order, coeff in self.multipoles:
-            e += np.sum(self.charges_c * mp.potential(r[:, :2], order, coeff))
-        for ext in self.external:
-            e += float(np.sum(self.charges_c * np.asarray(ext.potential(r))))
-        d = r[:, None, :] - r[None, :, :]
-        dist = np.sqrt(np.sum(d * d, axis=-1))
-        iu = np.triu_indices(len(r), 1)
-        qq = np.outer(self.charges_c, self.charges_c)
-        e += K_COULOMB * np.sum(qq[iu] / dist[iu])
-        return float(e)
+        return self.energy_and_gradient(r)[0]
 
     def gradient(self, r: np.ndarray) -> np.ndarray:
         """dU/dr (N, 3) in J/m."""
-        k = self._effective_springs()
-        g = k * r - self.charges_c[:, None] * self.stray_field_v_per_m
-        for order, coeff in self.multipoles:
-            g[:, :2] += self.charges_c[:, None] * mp.gradient(r[:, :2], order, coeff)
-        for ext in self.external:
-            g -= self.charges_c[:, None] * np.asarray(ext.field(r))
-        d = r[:, None, :] - r[None, :, :]
-        dist2 = np.sum(d * d, axis=-1)
-        np.fill_diagonal(dist2, 1.0)
-        qq = np.outer(self.charges_c, self.charges_c)
-        np.fill_diagonal(qq, 0.0)
-        g -= K_COULOMB * np.sum((qq / dist2**1.5)[:, :, None] * d, axis=1)
-        return g
+        return self.energy_and_gradient(r)[1]
 
     def energy_and_gradient(self, r: np.ndarray) -> tuple[float, np.ndarray]:
-        """(energy, gradient) with the pair distances computed once: the
-        equilibrium search's objective. Same formulas as :meth:`energy`
-        and :meth:`gradient`."""
+        """Effective potential energy (J) and its gradient dU/dr (N, 3, J/m)
+        at positions r (N, 3) in m, the pair distances computed once."""
         k = self._effective_springs()
         qs = self.charges_c[:, None] * self.stray_field_v_per_m
         e = 0.5 * np.sum(k * r * r) - np.sum(qs * r)
