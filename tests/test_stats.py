@@ -84,6 +84,19 @@ def test_standard_error_of_the_spread_against_the_chi_distribution(n):
     assert all(math.isnan(v) for v in stats.std_se([2.0]))
 
 
+@pytest.mark.parametrize("n", [10, 100, 1000])
+def test_standard_error_of_the_variance_against_the_chi2_distribution(n):
+    # For normal samples (n - 1) s^2 / sigma^2 is chi-squared with n - 1 degrees of
+    # freedom, so sd(s^2) = sigma^2 sqrt(2 / (n - 1)) (scipy.stats.chi2 gives the
+    # distribution's standard deviation, sqrt(2 (n - 1))); with sigma^2 estimated by s^2
+    # the code's error must equal it to rounding.
+    x = np.random.default_rng(n + 1).normal(0.0, 1.0, n)
+    v, ve = stats.var_se(x)
+    assert v == pytest.approx(np.var(x, ddof=1), rel=1e-14, abs=0)
+    assert ve == pytest.approx(v * sps.chi2(n - 1).std() / (n - 1), rel=1e-12, abs=0)
+    assert all(math.isnan(u) for u in stats.var_se([2.0]))
+
+
 def _obs(L, status, mode_n):
     n = len(L)
     return {"L_hbar": np.asarray(L, float), "f_rot_hz": np.full(n, 1e3), "status": np.asarray(status),
