@@ -338,12 +338,14 @@ def normals(keys, first, n):
 
 @njit(cache=True)
 def _innovations(keys, b0, step, us):
-    """The noise's uniform numbers of one step, us (3 H, B), zero mean and unit
-    variance: hash h of trajectory b (key ``keys[b0 + b]``, counter step H +
-    h) gives rows 3 h, 3 h + 1, 3 h + 2 from its bits 43-63, 22-42 and 1-21:
-    each 21-bit integer k becomes (k - (2^21 - 1) / 2) sqrt(3) / 2^20
-    (symmetric about 0, variance 1 - 2^-42), through the double 1 + k 2^-21
-    built from its bits (cheaper than an integer conversion)."""
+    """The noise's uniform numbers of one step, us (3 H, B), as raw doubles
+    v = 1 + k 2^-21: hash h of trajectory b (key ``keys[b0 + b]``, counter
+    step H + h) gives rows 3 h, 3 h + 1, 3 h + 2 from its bits 43-63, 22-42
+    and 1-21, each 21-bit integer k written into the mantissa (cheaper than
+    an integer conversion). The number of zero mean and unit variance is u =
+    (v - _U_CENTRE) _U_SCALE = (k - (2^21 - 1) / 2) sqrt(3) / 2^20 (symmetric
+    about 0, variance 1 - 2^-42); _noise_step folds the centre and scale into
+    its coefficients (:func:`_noise_offsets`) instead of converting."""
     n_hash = us.shape[0] // 3
     nb = us.shape[1]
     ub = us.view(np.uint64)
@@ -357,13 +359,10 @@ def _innovations(keys, b0, step, us):
             ub[3 * h, b] = ((x >> np.uint64(12)) & mant) | one
             ub[3 * h + 1, b] = ((x << np.uint64(9)) & mant) | one
             ub[3 * h + 2, b] = ((x << np.uint64(30)) & mant) | one
-    for r in range(3 * n_hash):
-        for b in range(nb):
-            us[r, b] = (us[r, b] - _U_CENTRE) * _U_SCALE
 
 
 @njit(cache=True)
-def _noise_step(b0, s, step, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr_loc, c_tgt, c_par, zc_loc, us, nv):
+def _noise_step(b0, s, step, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr_loc, c_tgt, c_par, zc_loc, us, nv, offs):
     """The noise values of step s for the chunk's trajectories, nv (3 + 2 K, B):
     rows 0-2 the uniform field (V/m), rows 3 + 2 p and 4 + 2 p g_re and g_im
     of the multipole order p (V/m^n); each the average of the process over
@@ -389,18 +388,19 @@ def _noise_step(b0, s, step, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr_loc, c_t
     slot i (W of them), row W + j for real mode j, rows W + M_r + 2 j and
     W + M_r + 2 j + 1 for rotating mode j. Uniform innovations give every
     mode the exact second moments (so the PSD) of the Gaussian process; a
-    slow mode, a sum of many innovations, is Gaussian to the central limit."""
+    slow mode, a sum of many innovations, is Gaussian to the central limit.
+    The numbers arrive raw (v, see _innovations): every coefficient of a u is
+    multiplied by _U_SCALE here, and the constant parts, -_U_CENTRE _U_SCALE
+    times each coefficient, go into the state updates and, summed per
+    target, into ``offs`` (:func:`_noise_offsets`)."""
     nb = nv.shape[1]
     n_t = nv.shape[0]
-    if tones.shape[0] > 0:
-        for t in range(n_t):
-            v = tones[s, t]
-            for b in range(nb):
-                nv[t, b] = v
-    else:
-        for t in range(n_t):
-            for b in range(nb):
-                nv[t, b] = 0.0
+    for t in range(n_t):
+        v = offs[t]
+        if tones.shape[0] > 0:
+            v += tones[s, t]
+        for b in range(nb):
+            nv[t, b] = v
     n_w = w_sd.shape[0]
     n_r = r_par.shape[0]
     n_c = c_par.shape[0]
@@ -408,33 +408,36 @@ def _noise_step(b0, s, step, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr_loc, c_t
         return
     _innovations(keys, b0, step, us)
     for i in range(n_w):
-        w = w_sd[i]
+        w = w_sd[i] * _U_SCALE
         t = w_tgt[i]
         if w != 0.0:
             for b in range(nb):
                 nv[t, b] += w * us[i, b]
     for j in range(n_r):
         e = r_par[j, 0]
-        l = r_par[j, 1]
+        l = r_par[j, 1] * _U_SCALE
+        d = -l * _U_CENTRE
         m = r_par[j, 2]
-        c = r_par[j, 3]
+        c = r_par[j, 3] * _U_SCALE
         t = r_tgt[j]
         k = n_w + j
         for b in range(nb):
             u = us[k, b]
             z = zr_loc[j, b]
             nv[t, b] += m * z + c * u
-            zr_loc[j, b] = e * z + l * u
+            zr_loc[j, b] = e * z + (l * u + d)
     for j in range(n_c):
         er = c_par[j, 0]
         ei = c_par[j, 1]
-        l00 = c_par[j, 2]
-        l10 = c_par[j, 3]
-        l11 = c_par[j, 4]
+        l00 = c_par[j, 2] * _U_SCALE
+        l10 = c_par[j, 3] * _U_SCALE
+        l11 = c_par[j, 4] * _U_SCALE
+        d0 = -l00 * _U_CENTRE
+        d1 = -(l10 + l11) * _U_CENTRE
         mr = c_par[j, 5]
         mi = c_par[j, 6]
-        c1 = c_par[j, 7]
-        c2 = c_par[j, 8]
+        c1 = c_par[j, 7] * _U_SCALE
+        c2 = c_par[j, 8] * _U_SCALE
         t = c_tgt[j]
         k = n_w + n_r + 2 * j
         for b in range(nb):
@@ -443,8 +446,23 @@ def _noise_step(b0, s, step, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr_loc, c_t
             zre = zc_loc[j, 0, b]
             zim = zc_loc[j, 1, b]
             nv[t, b] += mr * zre - mi * zim + c1 * u1 + c2 * u2
-            zc_loc[j, 0, b] = er * zre - ei * zim + l00 * u1
-            zc_loc[j, 1, b] = er * zim + ei * zre + l10 * u1 + l11 * u2
+            zc_loc[j, 0, b] = er * zre - ei * zim + (l00 * u1 + d0)
+            zc_loc[j, 1, b] = er * zim + ei * zre + (l10 * u1 + l11 * u2 + d1)
+
+
+@njit(cache=True)
+def _noise_offsets(n_t, w_tgt, w_sd, r_tgt, r_par, c_tgt, c_par):
+    """Per target, the constant that the raw numbers of _innovations add to
+    the step's noise values: -_U_CENTRE _U_SCALE times the sum of the
+    coefficients of the numbers on that target (_noise_step)."""
+    offs = np.zeros(n_t)
+    for i in range(w_sd.shape[0]):
+        offs[w_tgt[i]] -= w_sd[i] * _U_SCALE * _U_CENTRE
+    for j in range(r_par.shape[0]):
+        offs[r_tgt[j]] -= r_par[j, 3] * _U_SCALE * _U_CENTRE
+    for j in range(c_par.shape[0]):
+        offs[c_tgt[j]] -= (c_par[j, 7] + c_par[j, 8]) * _U_SCALE * _U_CENTRE
+    return offs
 
 
 @njit(cache=True)
@@ -467,8 +485,9 @@ def noise_series(n_steps, tones, keys, step0, w_tgt, w_sd, r_tgt, r_par, z_real,
     nv = np.empty((n_t, T))
     zr = z_real.copy()
     zc = z_rot.copy()
+    offs = _noise_offsets(n_t, w_tgt, w_sd, r_tgt, r_par, c_tgt, c_par)
     for s in range(n_steps):
-        _noise_step(0, s, step0 + s, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr, c_tgt, c_par, zc, us, nv)
+        _noise_step(0, s, step0 + s, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr, c_tgt, c_par, zc, us, nv, offs)
         out[s] = nv
     z_real[:] = zr
     z_rot[:] = zc
@@ -694,6 +713,7 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
     n_mr = r_par.shape[0]
     n_mc = c_par.shape[0]
     n_hash = _n_hashes(w_sd, r_par, c_par)
+    offs = _noise_offsets(3 + 2 * n_orders.shape[0], w_tgt, w_sd, r_tgt, r_par, c_tgt, c_par)
     use_rf = False
     for i in range(rf2.shape[0]):
         for u in range(3):
@@ -762,7 +782,7 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
         for s in range(n_steps):
             if has_field or has_multipole:
                 _noise_step(b0, s, step0 + s, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr_loc, c_tgt, c_par, zc_loc,
-                            us, nv)
+                            us, nv, offs)
             if has_field:
                 _noise_field_accel(qm, nv, ex, ey, ez)
             for k in range(n_sub):
