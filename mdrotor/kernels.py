@@ -54,6 +54,14 @@ def substep_fractions(integrator: str) -> np.ndarray:
 
 @njit(cache=True, inline="always")
 def _inv_r3(r2):
+    """1 / r^3 from r^2 (m^2 -> m^-3) for the pair forces: 1 / (r2 sqrt(r2)),
+    within 2 units in the last place (two correctly rounded operations and a
+    division)."""
+    return 1.0 / (r2 * math.sqrt(r2))
+
+
+@njit(cache=True, inline="always")
+def _inv_r3_refined(r2):
     """1 / r^3 from r^2 (m^2 -> m^-3), to 2 units in the last place.
 
     A single-precision seed y = 1 / sqrt(r2) (IEEE float32 square root and
@@ -68,6 +76,13 @@ def _inv_r3(r2):
     fast-math), so the vectorised loop and its scalar remainder give the same
     bits on every trajectory. Valid while r2 is a normal float32, 1e-19 m <
     r < 1e19 m (tests/test_kernels_inv_r3.py checks 1e-15 m to 1e15 m).
+
+    Not used by the kernel: on the machine measured (Intel Xeon, AVX-512,
+    KVM) the pair loop's other arithmetic already fills the vector ports, and
+    the double square root and division (a separate divider unit) came out
+    12-17 % faster. scripts/bench.py times both bare loops, so a machine
+    where this one wins shows it; switching changes results by an ulp per
+    pair.
     """
     y = np.float64(np.float32(1.0) / math.sqrt(np.float32(r2)))
     yy = y * y
@@ -77,11 +92,15 @@ def _inv_r3(r2):
 
 
 @njit(cache=True, error_model="numpy")
-def inv_r3(r2, out):
-    """out[k] = 1 / r^3 for r2[k] = r^2, by the pair-force kernel's own
-    formula (:func:`_inv_r3`); for tests."""
-    for k in range(r2.shape[0]):
-        out[k] = _inv_r3(r2[k])
+def inv_r3(r2, out, refined=False):
+    """out[k] = 1 / r^3 for r2[k] = r^2 by the pair-force kernel's formula
+    (:func:`_inv_r3`), or by :func:`_inv_r3_refined`; for tests."""
+    if refined:
+        for k in range(r2.shape[0]):
+            out[k] = _inv_r3_refined(r2[k])
+    else:
+        for k in range(r2.shape[0]):
+            out[k] = _inv_r3(r2[k])
 
 
 @njit(cache=True, error_model="numpy")
