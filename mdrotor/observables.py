@@ -299,8 +299,13 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     if plan.lag_n > 0:
         n = plan.lag_n
         lag_unwrapped = -(lag_u[0] - plan.lag_u_ref) / n
-        slips = np.rint(lag_unwrapped / (TWO_PI / n)).astype(np.int64)
-        out["lag_rad"] = lag_unwrapped - slips * (TWO_PI / n)
+        # a phase that went non-finite has no slip count: the trajectory is
+        # flagged non-finite (and left out of statistics) instead
+        ok_lag = np.isfinite(lag_unwrapped)
+        nonfinite = nonfinite | ~ok_lag
+        out["nonfinite"] = nonfinite
+        slips = np.rint(np.where(ok_lag, lag_unwrapped, 0.0) / (TWO_PI / n)).astype(np.int64)
+        out["lag_rad"] = np.where(ok_lag, lag_unwrapped - slips * (TWO_PI / n), np.nan)
         out["slips"] = slips
     else:
         out["lag_rad"] = np.zeros(n_traj)

@@ -122,3 +122,21 @@ def test_mode_columns_in_an_anisotropic_trap_come_from_the_schedule(f_sched_hz):
     assert np.all(np.isfinite(rest)) and np.max(np.abs(rest)) < 1e-6
     for k, lab_k in enumerate(cols):
         assert np.isfinite(spin[k]) == (lab_k != "libration")
+
+
+def test_a_lag_phase_that_went_non_finite_flags_the_trajectory(plan):
+    # the kernel's lag phase is NaN after a trajectory blew up: no slip count
+    # can be read from it (no cast of NaN to an integer), the trajectory is
+    # flagged non-finite and left out  # common practice, no source
+    import warnings
+
+    r0 = plan.crystal0.positions_m
+    pos = np.repeat(r0.T[:, :, None], 2, axis=2).copy()
+    vel = np.zeros_like(pos)
+    lag_u = np.array([[plan.lag_u_ref, np.nan]])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        out = observe(plan, pos, vel, 0.0, lag_u)
+    assert list(out["status"] & int(Status.NONFINITE)) == [0, int(Status.NONFINITE)]
+    assert out["slips"][1] == 0 and np.isnan(out["lag_rad"][1]) and out["lag_rad"][0] == 0.0
+    assert list(usable(out["status"])) == [True, False]
