@@ -1143,6 +1143,26 @@ def _quantum(source) -> dict:
     return load_quantum(source)
 
 
+# at most about this many bars per panel of the quantum P(L) figure (more
+# allowed L in view are drawn in groups of neighbours)
+QUANTUM_BARS = 60
+
+
+def _ladder_groups(L: np.ndarray, w_L: np.ndarray, offset: int, spacing: int, g: int):
+    """Sum weights ``w_L`` at allowed ``L`` (``offset`` mod ``spacing``) over
+    groups of ``g`` neighbouring allowed values; each group is placed at the
+    mean of the g values it spans. ``g = 1`` returns the points as they are."""
+    L = np.asarray(L, dtype=float)
+    w_L = np.asarray(w_L, dtype=float)
+    if g == 1:
+        return L, w_L
+    width = g * spacing
+    k = np.floor((L - offset) / width).astype(np.int64)
+    keys, inv = np.unique(k, return_inverse=True)
+    sums = np.bincount(inv, weights=w_L, minlength=len(keys))
+    return offset + keys * width + 0.5 * (width - spacing), sums
+
+
 def quantum_figure(source, max_panels: int = 6):
     """Quantum ``P(L)`` beside the ensemble's ladder histogram, stage by stage.
 
@@ -1181,23 +1201,31 @@ def quantum_figure(source, max_panels: int = 6):
             P = np.asarray(st["P"], dtype=float)
             big = L[P >= 1e-3 * float(np.max(P))] if P.size else L
             lo, hi = float(np.min(big)), float(np.max(big))
-            ax.bar(L, P, width=0.8 * sp, color="#c9c9c9", edgecolor=ps.INK, lw=0.4, zorder=1, label="quantum P(L)")
             e = st.get("ensemble")
-            txt = [f"quantum: ⟨L⟩ = {_fix(st['L_mean_hbar'], 2)} ħ, {SIG} = {_fmt(st['L_std_hbar'], 4)} ħ"]
-            top = float(np.max(P))
             if e is not None:
                 shift = int(e["shift_hbar"])
                 hL = np.asarray(e["histogram_L"], dtype=float) - shift
-                c = np.asarray(e["histogram_counts"], dtype=float)
-                N = float(e["n"])
-                ax.errorbar(hL, c / N, yerr=np.sqrt(c) / N, fmt=stl["marker"], color=stl["color"], ms=3.0, lw=0.8,
-                            capsize=1.5, zorder=3, ls="none", label="ensemble, binned on the ladder")
                 lo, hi = min(lo, float(np.min(hL))), max(hi, float(np.max(hL)))
+            # a spread of hundreds of quanta: groups of g neighbouring allowed
+            # L, so that about QUANTUM_BARS bars (and ensemble points) show
+            g = max(1, int(np.ceil((hi - lo) / sp / QUANTUM_BARS)))
+            w = g * sp
+            Lb, Pb = _ladder_groups(L, P, off, sp, g)
+            ax.bar(Lb, Pb, width=0.8 * w, color="#c9c9c9", edgecolor=ps.INK, lw=0.4, zorder=1, label="quantum P(L)")
+            txt = [f"quantum: ⟨L⟩ = {_fix(st['L_mean_hbar'], 2)} ħ, {SIG} = {_fmt(st['L_std_hbar'], 4)} ħ"]
+            top = float(np.max(Pb))
+            if e is not None:
+                N = float(e["n"])
+                hLb, c = _ladder_groups(hL, np.asarray(e["histogram_counts"], dtype=float), off, sp, g)
+                ax.errorbar(hLb, c / N, yerr=np.sqrt(c) / N, fmt=stl["marker"], color=stl["color"], ms=3.0, lw=0.8,
+                            capsize=1.5, zorder=3, ls="none", label="ensemble, binned on the ladder")
                 top = max(top, float(np.max((c + np.sqrt(c)) / N)))
                 txt.append(f"ensemble (N = {int(N)}): ⟨L⟩ = {_pm(e['mean_hbar'], e['mean_err_hbar'])} ħ, "
                            f"{SIG} = {_pm(e['std_hbar'], e['std_err_hbar'])} ħ"
                            + (f", drawn shifted by {shift:+d} ħ" if shift else ""))
                 txt.append(f"total-variation distance {e['tv']:.3f} (sampling alone, 99 %: {e['tv_null_99']:.3f})")
+            if g > 1:
+                txt.append(f"drawn in groups of {g} allowed L ({w} ħ wide)")
             ax.set_xlim(lo - 2.5 * sp, hi + 2.5 * sp)
             ax.set_ylim(0, (1.25 + 0.2 * len(txt)) * top)
             name = st["name"]
@@ -1208,7 +1236,9 @@ def quantum_figure(source, max_panels: int = 6):
             ax.set_ylabel("probability")
             if j == n - 1:
                 ax.set_xlabel("angular momentum L (ħ)")
-        axs[0].legend(loc="upper right", fontsize=6.5)
+        # the panel's text fills its upper left and can reach the upper
+        # right; the right-hand tail of the distribution is low
+        axs[0].legend(loc="center right", fontsize=6.5)
         lad = f"allowed L ≡ {off} (mod {sp})" if sp > 1 else "every integer L allowed"
         fig.suptitle(f"quantum rotor and ensemble, {lad}", fontsize=8.5, fontweight="bold", x=0.01, ha="left")
         if d.get("verdict"):

@@ -383,3 +383,23 @@ trajectories = 4
     names = {p.split("/")[-1] for p in rep["figures"]}
     assert {"optimize_history.png", "optimize_landscape_1.png", "confirm_L_final.png", "confirm_schedule.png"} <= names
     assert set(rep["skipped"]) == {"confirm_series", "confirm_coherence"}
+
+
+def test_quantum_ladder_groups_keep_the_weight_and_sit_at_their_mean_L():
+    # grouping g neighbouring allowed L (L = 1 mod 2) for display: the summed
+    # weight is unchanged and each group sits at the mean of the L it spans
+    # (arithmetic, common practice, no source)
+    from mdrotor.report import _ladder_groups
+
+    L = np.arange(-41, 60, 2).astype(float)  # odd L
+    w = np.exp(-0.5 * (L / 17.0) ** 2)
+    Lb, wb = _ladder_groups(L, w, 1, 2, 5)
+    assert wb.sum() == pytest.approx(w.sum(), rel=1e-14)
+    for c, s in zip(Lb, wb):
+        members = L[(L >= c - 4.5) & (L <= c + 4.5)]
+        assert len(members) <= 5 and np.all(members % 2 == 1)
+        assert s == pytest.approx(w[np.isin(L, members)].sum(), rel=1e-14)
+    full = np.arange(1, 60, 10)  # groups of 5 odd L starting at L = 1: 1..9, 11..19, ...
+    assert np.all(np.isin(full + 4, Lb))
+    same_L, same_w = _ladder_groups(L, w, 1, 2, 1)
+    assert np.array_equal(same_L, L) and np.array_equal(same_w, w)
