@@ -1173,7 +1173,10 @@ def quantum_figure(source, max_panels: int = 6):
     bars, drawn shifted by ``shift_hbar`` (the whole ladder steps that align
     the means, as :func:`mdrotor.quantum_compare.compare` compares them);
     means, spreads and the total-variation distance against its sampling
-    99th percentile in each panel; the verdict under the panels.
+    99th percentile in each panel; the verdict under the panels. A panel
+    with more than about ``QUANTUM_BARS`` allowed L in view draws groups of
+    neighbouring allowed L (bars and points hold the sums inside them) and
+    says so.
 
     Parameters
     ----------
