@@ -158,50 +158,38 @@ def problem_dicts() -> list[tuple[str, dict]]:
     return out
 
 
-@numba.njit(cache=True, error_model="numpy")
-def bare_pairs(px, py, pz, ax, ay, az, kq_i, kq_j, reps):
+def _bare_pair_loop(inv_r3):
     """The pair forces alone, ``reps`` times over one chunk ((N, B) arrays),
-    as the kernel computes them (its 1/r^3, kernels._inv_r3)."""
-    n, nb = px.shape
-    for _ in range(reps):
-        for i in range(n - 1):
-            for j in range(i + 1, n):
-                ki = kq_i[i, j]
-                kj = kq_j[i, j]
-                for b in range(nb):
-                    dx = px[i, b] - px[j, b]
-                    dy = py[i, b] - py[j, b]
-                    dz = pz[i, b] - pz[j, b]
-                    inv3 = kernels._inv_r3(dx * dx + dy * dy + dz * dz)
-                    ax[i, b] += ki * dx * inv3
-                    ay[i, b] += ki * dy * inv3
-                    az[i, b] += ki * dz * inv3
-                    ax[j, b] -= kj * dx * inv3
-                    ay[j, b] -= kj * dy * inv3
-                    az[j, b] -= kj * dz * inv3
+    as the kernel computes them, with ``inv_r3`` for 1/r^3 (compiled per
+    choice, so the call is inlined as in the kernel)."""
+
+    @numba.njit(error_model="numpy")
+    def loop(px, py, pz, ax, ay, az, kq_i, kq_j, reps):
+        n, nb = px.shape
+        for _ in range(reps):
+            for i in range(n - 1):
+                for j in range(i + 1, n):
+                    ki = kq_i[i, j]
+                    kj = kq_j[i, j]
+                    for b in range(nb):
+                        dx = px[i, b] - px[j, b]
+                        dy = py[i, b] - py[j, b]
+                        dz = pz[i, b] - pz[j, b]
+                        inv3 = inv_r3(dx * dx + dy * dy + dz * dz)
+                        ax[i, b] += ki * dx * inv3
+                        ay[i, b] += ki * dy * inv3
+                        az[i, b] += ki * dz * inv3
+                        ax[j, b] -= kj * dx * inv3
+                        ay[j, b] -= kj * dy * inv3
+                        az[j, b] -= kj * dz * inv3
+
+    return loop
 
 
-@numba.njit(cache=True, error_model="numpy")
-def bare_pairs_refined(px, py, pz, ax, ay, az, kq_i, kq_j, reps):
-    """bare_pairs with kernels._inv_r3_refined (a float32 seed refined in
-    double, no double square root or division) in place of the kernel's 1/r^3."""
-    n, nb = px.shape
-    for _ in range(reps):
-        for i in range(n - 1):
-            for j in range(i + 1, n):
-                ki = kq_i[i, j]
-                kj = kq_j[i, j]
-                for b in range(nb):
-                    dx = px[i, b] - px[j, b]
-                    dy = py[i, b] - py[j, b]
-                    dz = pz[i, b] - pz[j, b]
-                    inv3 = kernels._inv_r3_refined(dx * dx + dy * dy + dz * dz)
-                    ax[i, b] += ki * dx * inv3
-                    ay[i, b] += ki * dy * inv3
-                    az[i, b] += ki * dz * inv3
-                    ax[j, b] -= kj * dx * inv3
-                    ay[j, b] -= kj * dy * inv3
-                    az[j, b] -= kj * dz * inv3
+# the kernel's 1/r^3, and a float32 seed refined in double (no double square
+# root or division): kernels._inv_r3 and kernels._inv_r3_refined
+bare_pairs = _bare_pair_loop(kernels._inv_r3)
+bare_pairs_refined = _bare_pair_loop(kernels._inv_r3_refined)
 
 
 def bench_bare_pairs(plan, pos0, chunk: int, repeats: int) -> dict:
