@@ -119,3 +119,26 @@ def toml_text(d: dict) -> str:
 @pytest.fixture
 def configs_dir():
     return CONFIGS
+
+
+def assert_identical(a, b, where: str) -> None:
+    """``a`` and ``b`` equal bit for bit, recursively through dicts, lists
+    and arrays (NaN equal to NaN; shapes must match); ``where`` names the
+    place in the assertion message."""
+    import numpy as np
+
+    if isinstance(a, dict):
+        assert set(a) == set(b), where
+        for k in a:
+            assert_identical(a[k], b[k], f"{where}.{k}")
+    elif isinstance(a, (np.ndarray, list, tuple)) and not isinstance(a, str):
+        a, b = np.asarray(a), np.asarray(b)
+        assert a.shape == b.shape, where
+        if a.dtype.kind in "fc":
+            np.testing.assert_array_equal(a, b, err_msg=where)  # NaN == NaN here, bit for bit otherwise
+        else:
+            assert [str(x) for x in a.ravel()] == [str(x) for x in b.ravel()], where
+    elif isinstance(a, float) and np.isnan(a):
+        assert isinstance(b, float) and np.isnan(b), where
+    else:
+        assert a == b, where

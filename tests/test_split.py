@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 import mdrotor
-from conftest import toml_text, two_ion_config
+from conftest import assert_identical, toml_text, two_ion_config
 
 NOISE = {
     "field": [{"psd": [{"kind": "power", "level": "2e-13 V^2/m^2/Hz", "f_ref": "1 MHz", "alpha": 1.0,
@@ -98,23 +98,6 @@ def cluster():
         yield c
 
 
-def assert_same_value(a, b, where: str) -> None:
-    if isinstance(a, dict):
-        assert set(a) == set(b), where
-        for k in a:
-            assert_same_value(a[k], b[k], f"{where}.{k}")
-    elif isinstance(a, (np.ndarray, list, tuple)) and not isinstance(a, str):
-        a, b = np.asarray(a), np.asarray(b)
-        if a.dtype.kind in "fc":
-            assert np.array_equal(a, b, equal_nan=True), where
-        else:
-            assert a.shape == b.shape and np.all(a == b), where
-    elif isinstance(a, float):
-        assert (a == b) or (np.isnan(a) and np.isnan(b)), where
-    else:
-        assert a == b, where
-
-
 def assert_same_run(a, b) -> None:
     """Every per-trajectory array, summary, mode table, series and derived
     block (noise rates, micromotion) equal, bit for bit."""
@@ -122,12 +105,12 @@ def assert_same_run(a, b) -> None:
     assert list(oa) == list(ob)
     for name in oa:
         x, y = oa[name], ob[name]
-        assert_same_value(x.arrays, y.arrays, f"{name}.arrays")
-        assert_same_value(x.summary, y.summary, f"{name}.summary")
-        assert_same_value(x.modes, y.modes, f"{name}.modes")
+        assert_identical(x.arrays, y.arrays, f"{name}.arrays")
+        assert_identical(x.summary, y.summary, f"{name}.summary")
+        assert_identical(x.modes, y.modes, f"{name}.modes")
         assert (x.frame, x.frame_f_rot_hz) == (y.frame, y.frame_f_rot_hz), name
-    assert_same_value(a.series, b.series, "series")
-    assert_same_value(a.extra, b.extra, "extra")
+    assert_identical(a.series, b.series, "series")
+    assert_identical(a.extra, b.extra, "extra")
 
 
 @pytest.mark.parametrize("case", list(CASES))
@@ -173,14 +156,14 @@ def test_run_command_with_scheduler(cluster, tmp_path):
     with h5py.File(outs["local"]) as fa, h5py.File(outs["dask"]) as fb:
         assert fb.attrs["dask_workers"] == 2
         for k in set(fa.attrs) - skip:
-            assert_same_value(fa.attrs[k], fb.attrs[k], k)
+            assert_identical(fa.attrs[k], fb.attrs[k], k)
 
         def visit(name, obj):
             other = fb[name]
             if isinstance(obj, h5py.Dataset):
-                assert_same_value(obj[()], other[()], name)
+                assert_identical(obj[()], other[()], name)
             for k in obj.attrs:
-                assert_same_value(obj.attrs[k], other.attrs[k], f"{name}@{k}")
+                assert_identical(obj.attrs[k], other.attrs[k], f"{name}@{k}")
 
         fa.visititems(visit)
 

@@ -12,7 +12,7 @@ import mdrotor
 from mdrotor import config, store
 from mdrotor.errors import InputError
 
-from conftest import ROOT, two_ion_config
+from conftest import assert_identical, ROOT, two_ion_config
 
 
 @pytest.fixture(scope="module")
@@ -22,43 +22,25 @@ def result():
     return mdrotor.run(config.from_dict(d, "pair.toml"))
 
 
-def _same(a, b, where):
-    if isinstance(a, dict):
-        assert set(a) == set(b), where
-        for k in a:
-            _same(a[k], b[k], f"{where}.{k}")
-    elif isinstance(a, (np.ndarray, list, tuple)) and not isinstance(a, str):
-        a, b = np.asarray(a), np.asarray(b)
-        assert a.shape == b.shape, where
-        if a.dtype.kind in "fc":
-            np.testing.assert_array_equal(a, b, err_msg=where)  # NaN == NaN here, bit for bit otherwise
-        else:
-            assert [str(x) for x in a.ravel()] == [str(x) for x in b.ravel()], where
-    elif isinstance(a, float) and np.isnan(a):
-        assert np.isnan(b), where
-    else:
-        assert a == b, where
-
-
 def _same_obs(a, b, where):
     assert (a.name, a.t_s, a.frame, a.frame_f_rot_hz) == (b.name, b.t_s, b.frame, b.frame_f_rot_hz), where
-    _same(a.arrays, b.arrays, f"{where}.arrays")
-    _same(a.modes, b.modes, f"{where}.modes")
-    _same(a.summary, b.summary, f"{where}.summary")
+    assert_identical(a.arrays, b.arrays, f"{where}.arrays")
+    assert_identical(a.modes, b.modes, f"{where}.modes")
+    assert_identical(a.summary, b.summary, f"{where}.summary")
 
 
 def test_round_trip_is_exact(result, tmp_path):
     p = tmp_path / "r.h5"
     result.save(p)
     back = mdrotor.load(p)
-    _same({k: v for k, v in result.attrs.items()}, {k: v for k, v in back.attrs.items() if k != "format_version"}, "attrs")
+    assert_identical({k: v for k, v in result.attrs.items()}, {k: v for k, v in back.attrs.items() if k != "format_version"}, "attrs")
     _same_obs(result.initial, back.initial, "initial")
     assert list(back.stages) == list(result.stages)
     for name in result.stages:
         _same_obs(result.stages[name], back.stages[name], f"stages.{name}")
     _same_obs(result.final, back.final, "final")
-    _same(result.series, back.series, "series")
-    _same(result.schedule, back.schedule, "schedule")
+    assert_identical(result.series, back.series, "series")
+    assert_identical(result.schedule, back.schedule, "schedule")
     assert set(back.extra) == set(result.extra)
     # saved again, the file holds the same datasets and values
     q = tmp_path / "again.h5"
