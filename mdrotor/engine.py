@@ -44,7 +44,14 @@ LASER_STREAM = 4  # SeedSequence spawn_key (trajectory, 4): each trajectory's ke
 # the laser kick is a first-order splitting of a velocity-dependent force: the automatic dt keeps its
 # largest damping per step, max |dF/dv| dt / m, at or below this
 LASER_DAMPING_PER_STEP = 0.01
+# the exact linear propagator's "off" arrays in the kernel's drive tuple (see kernels.advance)
+NO_LINEAR = (np.zeros((0, 1, 3, 4)), np.zeros(1, dtype=np.int64), 0)
+# RF runs: steps per RF period of the fine-step path (Verlet with the RF force in the kicks; the order-4
+# integrator, and runs whose stages do not last a whole number of propagator steps)
 RF_STEPS_PER_PERIOD = 64
+# RF runs with the exact per-step Mathieu propagator (Verlet): default steps per RF period, from the
+# accuracy study in scripts/bench.py (docs/rf.md, "Step")
+RF_PROPAGATOR_STEPS = 16
 
 
 @dataclass
@@ -93,6 +100,12 @@ class Plan:
     # measurement frames computed so far: the free crystal per lattice rate (observables.lattice_node)
     # and the pinned crystal per observation time (observables.pinned_frame, at most 64)
     frame_nodes: dict = field(default_factory=dict)
+    # RF runs: steps per RF period (dt = T_RF / rf_steps; the trajectories' RF phases lie on this lattice)
+    # and whether the linear trap force is propagated exactly per step (rf_exact) or kicked (fine-step path)
+    rf_steps: int = RF_STEPS_PER_PERIOD
+    rf_exact: bool = False
+    # the propagator's per-step maps: (stage, dt, model) -> (K, N, 3, 4)
+    rf_tables: dict = field(default_factory=dict)
 
     @property
     def pin_is_multipole(self) -> np.ndarray:
@@ -114,16 +127,52 @@ class Plan:
         return (self.w2, self.rf2, self.stray_acc, self.qm, self.kq_i, self.kq_j)
 
     def rf_phases(self, seed: int, indices) -> np.ndarray:
-        """RF phase of every trajectory at t = 0: one of the RF_STEPS_PER_PERIOD
-        phases of the RF orbit, fixed (nearest to ``trap.rf_phase``) or
+        """RF phase of every trajectory at t = 0: one of the ``rf_steps``
+        step phases of the RF orbit, fixed (nearest to ``trap.rf_phase``) or
         drawn from the trajectory's own key (stream 2)."""
         from .sampling import trajectory_rng
 
-        step = TWO_PI / RF_STEPS_PER_PERIOD
+        K = self.rf_steps
+        step = TWO_PI / K
         fixed = self.cfg.trap.rf_phase_rad
         if fixed is not None:
-            return np.full(len(indices), step * (round(float(fixed) / step) % RF_STEPS_PER_PERIOD))
-        return np.array([step * trajectory_rng(seed, int(i), 2).integers(RF_STEPS_PER_PERIOD) for i in indices])
+            return np.full(len(indices), step * (round(float(fixed) / step) % K))
+        return np.array([step * trajectory_rng(seed, int(i), 2).integers(K) for i in indices])
+
+    def rf_table(self, stage: int, dt: float, model: tuple) -> np.ndarray:
+        """The exact per-step maps of the linear trap force for steps of ``dt``
+        (= T_RF / rf_steps) in ``stage``, at the rf_steps step phases W t_k
+        = W t_stage + 2 pi k / rf_steps (t_stage the stage's start): (K, N,
+        3, 4), entries (m00, m01, m10, m11) of (u, u') <- M (u, u') in SI,
+        from :func:`mdrotor.mathieu.transfer_matrices` with a = w2 / (W/2)^2,
+        q = rf2 / (2 (W/2)^2) of ``model`` (each distinct (a, q) once)."""
+        from .mathieu import transfer_matrices
+
+        w2, rf2 = model[0], model[1]
+        key = (stage, dt, w2.tobytes(), rf2.tobytes())
+        got = self.rf_tables.get(key)
+        if got is not None:
+            return got
+        K = self.rf_steps
+        half = 0.5 * TWO_PI * self.f_drive_hz
+        base = math.fmod(TWO_PI * self.f_drive_hz * float(self.schedule.boundaries_s[stage]), TWO_PI)
+        xi0 = 0.5 * (base + TWO_PI * np.arange(K) / K)
+        a_all, q_all = w2 / half**2, rf2 / (2.0 * half**2)
+        out = np.empty((K, len(self.masses), 3, 4))
+        done = {}
+        for i in range(len(self.masses)):
+            for u in range(3):
+                aq = (float(a_all[i, u]), float(q_all[i, u]))
+                if aq not in done:
+                    done[aq] = transfer_matrices(aq[0], aq[1], xi0, half * dt)
+                m = done[aq]
+                # (u, du/dxi) -> (u, du/dt): du/dt = (W/2) du/dxi
+                out[:, i, u, 0] = m[:, 0, 0]
+                out[:, i, u, 1] = m[:, 0, 1] / half
+                out[:, i, u, 2] = m[:, 1, 0] * half
+                out[:, i, u, 3] = m[:, 1, 1]
+        self.rf_tables[key] = out
+        return out
 
     @property
     def n_steps(self) -> int:
@@ -241,9 +290,6 @@ def make_plan(cfg) -> Plan:
     f_pin = float(np.max(orders)) * sched.max_f_rot_hz() if len(orders) else 0.0
     plan.f_fast_hz = max(f_sec, f_modes, f_pin)
     dt = 1.0 / (plan.f_fast_hz * cfg.run.steps_per_period)
-    if cfg.trap.model == "rf":
-        plan.f_drive_hz = float(cfg.trap.f_drive_hz)
-        dt = min(dt, 1.0 / (plan.f_drive_hz * RF_STEPS_PER_PERIOD))
     if cfg.lasers and sched is not None:
         from .laser import max_friction_coefficient
 
@@ -252,7 +298,10 @@ def make_plan(cfg) -> Plan:
             if s_max > 0 and b.ions:
                 rate = max_friction_coefficient(s_max, b.k_rad_per_m) / float(np.min(m[list(b.ions)]))
                 dt = min(dt, LASER_DAMPING_PER_STEP / rate)
-    if cfg.run.dt_s is not None:
+    if cfg.trap.model == "rf":
+        plan.f_drive_hz = float(cfg.trap.f_drive_hz)
+        dt = _rf_step(plan, dt)
+    elif cfg.run.dt_s is not None:
         dt = cfg.run.dt_s
     plan.dt_s = dt
     for st in sched.stages:
@@ -271,6 +320,54 @@ def make_plan(cfg) -> Plan:
     if plan.rf:
         plan.rf_orbit = rf_orbit(plan)
     return plan
+
+
+def _whole_steps(duration_s: float, dt: float) -> int | None:
+    """The number of steps of ``dt`` in ``duration_s`` if it is whole (to
+    1e-9 of a step), else None."""
+    k = duration_s / dt
+    n = int(round(k))
+    return n if n >= 1 and abs(k - n) <= 1e-9 * max(1.0, k) else None
+
+
+def _rf_step(plan: Plan, dt_auto: float) -> float:
+    """The step of an RF run, and whether the linear trap force is propagated
+    exactly (``plan.rf_exact``, ``plan.rf_steps``; docs/rf.md).
+
+    Verlet with the automatic dt: dt = T_RF / K with K = RF_PROPAGATOR_STEPS,
+    or more when the secular motion, the pinning or the beams ask for a
+    shorter step than that. A given ``run.dt`` is used as it is when T_RF is
+    a whole number K of it. The propagator needs every step to start on the
+    lattice of K RF phases: every stage must last a whole number of steps. If
+    not (or with the order-4 integrator, whose negative sub-step would need
+    its own maps), the run takes the fine-step path: the RF force among the
+    kicks of the plain stepper at dt <= T_RF / RF_STEPS_PER_PERIOD, with a
+    note saying why.
+    """
+    cfg = plan.cfg
+    period = 1.0 / plan.f_drive_hz
+    given = cfg.run.dt_s
+    why = None
+    if cfg.run.integrator != "verlet":
+        why = f"the {cfg.run.integrator} integrator"
+    if given is None:
+        K = max(RF_PROPAGATOR_STEPS, int(math.ceil(period / dt_auto * (1 - 1e-12))))
+    else:
+        K = _whole_steps(period, given)
+        if K is None and why is None:
+            why = f"run.dt = {given:.6g} s does not divide the RF period {period:.6g} s"
+    if why is None:
+        bad = [st.name for st in plan.schedule.stages if _whole_steps(st.duration_s, period / K) is None]
+        if bad:
+            why = (f"stage {', '.join(repr(b) for b in bad)} does not last a whole number of steps of T_RF / {K} "
+                   f"= {period / K:.6g} s")
+    if why is None:
+        plan.rf_exact, plan.rf_steps = True, K
+        return period / K
+    plan.rf_exact, plan.rf_steps = False, RF_STEPS_PER_PERIOD
+    plan.notes.append(f"RF run without the exact Mathieu propagator ({why}): the RF force is integrated by the "
+                      f"plain stepper at dt <= T_RF / {RF_STEPS_PER_PERIOD}, several times slower")
+    return given if given is not None else min(dt_auto, period / RF_STEPS_PER_PERIOD)
 
 
 def laser_keys(seed: int, indices) -> np.ndarray:
@@ -407,7 +504,7 @@ def _add_micromotion(plan: Plan, pos, vel, phases, spin=None) -> None:
     qh = 0.5 * plan.cfg.trap.q_per_ion(plan.masses, plan.charges).T[:, :, None]  # (3, N, 1)
     c, s = np.cos(phases)[None, None, :], np.sin(phases)[None, None, :]
     orbit_p, orbit_v = plan.rf_orbit
-    k = np.rint(phases / (TWO_PI / RF_STEPS_PER_PERIOD)).astype(int) % RF_STEPS_PER_PERIOD
+    k = np.rint(phases / (TWO_PI / plan.rf_steps)).astype(int) % plan.rf_steps
     op = orbit_p[k].transpose(1, 2, 0)
     ov = orbit_v[k].transpose(1, 2, 0)
     r0 = np.broadcast_to(plan.crystal0.positions_m.T[:, :, None], pos.shape)
@@ -474,7 +571,7 @@ def rf_orbit(plan: Plan, *, tol: float = 1e-12, max_iter: int = 12):
     (where an in-plane isotropic RF force and the co-rotating pinning are
     both T_RF-periodic): seen from the lab it comes back turned by w T_RF.
     Newton's method on the one-period map P (integrated with the run's own
-    stepper at dt = T_RF / RF_STEPS_PER_PERIOD, the pinning strength frozen
+    stepper at dt = T_RF / ``plan.rf_steps``, the pinning strength frozen
     at its t = 0 value and its angle turning at w): solve
     P(z) = R(w T_RF) z for the phase-space point z at RF phase 0, R the
     rotation about the axis acting on positions and velocities, with the
@@ -484,7 +581,7 @@ def rf_orbit(plan: Plan, *, tol: float = 1e-12, max_iter: int = 12):
     :func:`_orbit_model` (a note is added to the plan).
 
     Returns the orbit's positions and velocities (lab frame) at the
-    RF_STEPS_PER_PERIOD step phases, each (K, 3, N), turned back by -w t_k
+    ``plan.rf_steps`` step phases, each (K, 3, N), turned back by -w t_k
     to the orientation the pinning has at t = 0: the state a trajectory
     starting at t = 0 with RF phase W t_k takes.
     """
@@ -493,7 +590,8 @@ def rf_orbit(plan: Plan, *, tol: float = 1e-12, max_iter: int = 12):
     W = TWO_PI * plan.f_drive_hz
     w = TWO_PI * plan.f0_hz
     period = TWO_PI / W
-    dt = period / RF_STEPS_PER_PERIOD
+    K = plan.rf_steps
+    dt = period / K
     qh = 0.5 * plan.cfg.trap.q_per_ion(plan.masses, plan.charges)  # (N, 3)
     model, note = _orbit_model(plan)
     if note:
@@ -511,7 +609,7 @@ def rf_orbit(plan: Plan, *, tol: float = 1e-12, max_iter: int = 12):
     def one_period(states):
         p = np.ascontiguousarray(states[:, : 3 * n].reshape(-1, n, 3).transpose(2, 1, 0))
         v = np.ascontiguousarray(states[:, 3 * n:].reshape(-1, n, 3).transpose(2, 1, 0))
-        stepper.advance(p, v, 0, 0.0, dt, RF_STEPS_PER_PERIOD, frozen=True, spin=w)
+        stepper.advance(p, v, 0, 0.0, dt, K, frozen=True, spin=w)
         return np.concatenate([p.transpose(2, 1, 0).reshape(-1, 3 * n), v.transpose(2, 1, 0).reshape(-1, 3 * n)], axis=1)
 
     best = (np.inf, z)
@@ -540,7 +638,7 @@ def rf_orbit(plan: Plan, *, tol: float = 1e-12, max_iter: int = 12):
     op, ov = [], []
     from .frame import rotate_states
 
-    for j in range(RF_STEPS_PER_PERIOD):
+    for j in range(K):
         back = -w * j * dt
         op.append(rotate_states(p, back)[:, :, 0])
         ov.append(rotate_states(v, back)[:, :, 0])
@@ -704,6 +802,11 @@ class _Stepper:
         self.lag_stride = max(1, plan.cfg.run.steps_per_period // 4)
         ph = np.zeros(n_traj) if rf_phases is None else np.asarray(rf_phases, dtype=float)
         self.ph_c, self.ph_s = np.cos(ph), np.sin(ph)
+        # the exact propagator: each trajectory's RF phase in lattice steps, and the kicks' model without the
+        # linear trap force (it is in the propagator's maps)
+        self.ph_idx = np.rint(ph / (TWO_PI / plan.rf_steps)).astype(np.int64) % plan.rf_steps
+        w2, rf2, *rest = self.model
+        self.kick_model = (np.zeros_like(w2), np.zeros_like(rf2), *rest)
 
     def advance(self, pos, vel, stage: int, t_start: float, dt: float, n: int, lag_u=None, frozen: bool = False,
                 noise_step0: int | None = None, spin: float = 0.0) -> None:
@@ -730,7 +833,13 @@ class _Stepper:
         else:
             track = np.zeros(n + 1, dtype=np.uint8)
         W = TWO_PI * plan.f_drive_hz
-        drive = (np.cos(W * te), np.sin(W * te), self.ph_c, self.ph_s)
+        drive = (np.cos(W * te), np.sin(W * te), self.ph_c, self.ph_s) + NO_LINEAR
+        model_k = self.model
+        j0 = self._lattice_step(stage, t_start, dt)
+        if j0 is not None:  # the linear trap force by its exact per-step maps, the rest as kicks
+            drive = (drive[0], drive[1], self.ph_c, self.ph_s, plan.rf_table(stage, dt, self.model),
+                     self.ph_idx, j0)
+            model_k = self.kick_model
         lag = (plan.masses, plan.charges, plan.lag_n, sched.theta_rad(ts), track, self.lag_stride,
                self.lag_u if lag_u is None else lag_u)
         noise = NO_NOISE
@@ -748,8 +857,23 @@ class _Stepper:
                 step = int(sum(plan.stage_steps[:stage])) + int(noise_step0)
                 laser = arrays + (self.laser_keys, step, self.photons)
         poly = _poly_coefficients(plan, t_sched, theta)
-        advance(pos, vel, dt, n, plan.fracs, self.model, drive, (plan.pin_orders, c_re, c_im), poly, lag, noise,
+        advance(pos, vel, dt, n, plan.fracs, model_k, drive, (plan.pin_orders, c_re, c_im), poly, lag, noise,
                 laser, self.chunk)
+
+    def _lattice_step(self, stage: int, t_start: float, dt: float) -> int | None:
+        """The lattice index (mod rf_steps) of a block's first step in
+        ``stage`` when the exact propagator applies (RF run, dt = T_RF /
+        rf_steps, the block starting a whole number of steps after the
+        stage's start), else None (the fine-step path)."""
+        plan = self.plan
+        if not (plan.rf and plan.rf_exact):
+            return None
+        K = plan.rf_steps
+        if abs(dt * plan.f_drive_hz * K - 1.0) > 1e-9:
+            return None
+        off = t_start - float(plan.schedule.boundaries_s[stage])
+        k = 0 if off == 0.0 else _whole_steps(off, dt)
+        return None if k is None else k % K
 
     def observe(self, pos, vel, stage: int, t: float, dt: float) -> dict:
         """Observables at time t. In an RF run they are measured on the

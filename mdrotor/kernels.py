@@ -27,6 +27,12 @@ Stochastic terms (field noise, laser beams) act as kicks after each
 deterministic step; with none of them on, the stepper is the plain
 symplectic scheme below.
 
+RF runs with the exact linear propagator (the default for Verlet): the
+linear trap force is integrated exactly over each step by precomputed 2 x 2
+maps per ion, axis and step phase (:func:`mdrotor.mathieu.transfer_matrices`);
+every other force acts as half-kicks around it (Strang splitting of
+"linear trap" and "the rest": symmetric, second order, symplectic).
+
 Stepper: velocity Verlet (kick-drift-kick), or the 4th-order symmetric
 composition of three Verlet steps with weights w1, w0, w1,
 w1 = 1/(2 - 2^(1/3)), w0 = 1 - 2 w1 (H. Yoshida, Phys. Lett. A 150, 262
@@ -642,6 +648,34 @@ def _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e):
         rf[b] = rf_c[e] * ph_c[b0 + b] - rf_s[e] * ph_s[b0 + b]
 
 
+@njit(cache=True)
+def _linear_propagate(px, py, pz, vx, vy, vz, lin, lin_idx, b0, j, jb):
+    """The exact map of the linear trap force over one step, per ion and axis:
+    (u, u') <- M (u, u') with M = lin[k, i, axis] = (m00, m01, m10, m11), k
+    = (j + lin_idx[b0 + b]) mod K the step's phase on the lattice of K
+    step phases per RF period (trajectory b's own RF phase is lin_idx[b]
+    lattice steps). jb: (B,) int64 scratch."""
+    K = lin.shape[0]
+    n_ions, nb = px.shape
+    for b in range(nb):
+        jb[b] = (j + lin_idx[b0 + b]) % K
+    for i in range(n_ions):
+        for b in range(nb):
+            k = jb[b]
+            x = px[i, b]
+            v = vx[i, b]
+            px[i, b] = lin[k, i, 0, 0] * x + lin[k, i, 0, 1] * v
+            vx[i, b] = lin[k, i, 0, 2] * x + lin[k, i, 0, 3] * v
+            x = py[i, b]
+            v = vy[i, b]
+            py[i, b] = lin[k, i, 1, 0] * x + lin[k, i, 1, 1] * v
+            vy[i, b] = lin[k, i, 1, 2] * x + lin[k, i, 1, 3] * v
+            x = pz[i, b]
+            v = vz[i, b]
+            pz[i, b] = lin[k, i, 2, 0] * x + lin[k, i, 2, 1] * v
+            vz[i, b] = lin[k, i, 2, 2] * x + lin[k, i, 2, 3] * v
+
+
 @njit(cache=True, parallel=True)
 def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, laser, chunk):
     """Advance every trajectory by ``n_steps`` steps of length ``dt``.
@@ -655,9 +689,16 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
         w2, rf2 : (N, 3) static and RF spring terms, rad^2/s^2 (see _accel);
         stray_acc : (N, 3) Q_i E_stray / m_i, m/s^2; qm : (N,) Q_i / m_i,
         C/kg; kq_i, kq_j : (N, N) k Q_i Q_j / m_i and / m_j (upper triangle).
-    drive : tuple (rf_c, rf_s, ph_c, ph_s)
+    drive : tuple (rf_c, rf_s, ph_c, ph_s, lin, lin_idx, lin_j0)
         cos and sin of W t at every force evaluation (E,), cos and sin of
         each trajectory's RF phase (T,). Ignored when rf2 is zero.
+        lin (K, N, 3, 4): the exact per-step maps of the linear trap force
+        (see _linear_propagate) at the K step phases of the RF period, K = 0
+        for none; with K > 0 the stepper is the Strang splitting half-kick
+        (every other force), exact linear map over dt, half-kick, one
+        sub-step only (fracs = [1]), and w2, rf2 must be zero (the linear
+        trap is in lin). lin_idx (T,) int64: each trajectory's RF phase in
+        lattice steps; lin_j0: the block's first step's lattice index.
     pin : tuple (pin_n, c_re, c_im)
         (P,) int64 multipole orders; (E, P) complex coefficient C_p at each
         force evaluation: eval e = S s + k + 1 is the end of sub-step k of
@@ -704,7 +745,8 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
         prove that nothing aliases and vectorises every loop.
     """
     w2, rf2, stray_acc, qm, kq_i, kq_j = model
-    rf_c, rf_s, ph_c, ph_s = drive
+    rf_c, rf_s, ph_c, ph_s, lin, lin_idx, lin_j0 = drive
+    use_lin = lin.shape[0] > 0
     pin_n, c_re, c_im = pin
     poly_exps, poly_coef = poly
     use_poly = poly_exps.shape[0] > 0
@@ -792,6 +834,7 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
                 zc_loc[j, 1, b] = z_rot[j, 1, b0 + b]
         n_ph = np.empty(nb if n_beams > 0 else 0)
         sd_ph = np.empty(nb if n_beams > 0 else 0)
+        jb = np.empty(nb if use_lin else 0, dtype=np.int64)
         if use_rf:
             _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, 0)
         _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[0], c_im[0],
@@ -806,7 +849,11 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
                 _noise_field_accel(qm, nv, ex, ey, ez)
             for k in range(n_sub):
                 h = fracs[k] * dt
-                _kick_drift(px, py, pz, vx, vy, vz, ax, ay, az, 0.5 * h, h)
+                if use_lin:
+                    _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
+                    _linear_propagate(px, py, pz, vx, vy, vz, lin, lin_idx, b0, lin_j0 + s, jb)
+                else:
+                    _kick_drift(px, py, pz, vx, vy, vz, ax, ay, az, 0.5 * h, h)
                 e = n_sub * s + k + 1
                 if use_rf:
                     _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e)

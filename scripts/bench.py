@@ -293,7 +293,7 @@ def advance(blk: Block, pos, vel, lag_u, chunk: int) -> None:
         raise RuntimeError("this benchmark covers the pseudopotential model with multipole pinning only")
     n_traj = pos.shape[2]
     n_evals = blk.c_re.shape[0]
-    drive = (np.zeros(n_evals), np.zeros(n_evals), np.ones(n_traj), np.zeros(n_traj))
+    drive = (np.zeros(n_evals), np.zeros(n_evals), np.ones(n_traj), np.zeros(n_traj)) + engine.NO_LINEAR
     pin = (p.pin_orders, blk.c_re, blk.c_im)
     poly = (NO_POLY_EXPS, np.zeros((n_evals, 0)))
     lag = (p.masses, p.charges, blk.lag_n, blk.lag_theta, blk.lag_track, blk.lag_stride, lag_u)

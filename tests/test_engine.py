@@ -5,7 +5,7 @@ import pytest
 from scipy import constants as sc
 
 import mdrotor
-from mdrotor.engine import NO_LASER, NO_NOISE, NO_POLY, _pin_coefficients, initial_states, integrate, make_plan
+from mdrotor.engine import NO_LASER, NO_LINEAR, NO_NOISE, NO_POLY, _pin_coefficients, initial_states, integrate, make_plan
 from mdrotor.kernels import advance
 from mdrotor.observables import observe
 
@@ -37,7 +37,7 @@ def step(plan, pos, vel, n_steps, dt=None, t0=0.0, lag=False):
     te = np.concatenate([[ts[0]], (ts[:-1, None] + dt * sub[None, :]).ravel()])
     c_re, c_im = _pin_coefficients(plan, te)
     n_t = pos.shape[2]
-    drive = (np.zeros(len(te)), np.zeros(len(te)), np.ones(n_t), np.zeros(n_t))
+    drive = (np.zeros(len(te)), np.zeros(len(te)), np.ones(n_t), np.zeros(n_t)) + NO_LINEAR
     lag = (plan.masses, plan.charges, 0, np.zeros(n_steps + 1), np.zeros(n_steps + 1, np.uint8), 1, np.zeros((2, n_t)))
     advance(pos, vel, dt, n_steps, plan.fracs, plan.kernel_model(), drive, (plan.pin_orders, c_re, c_im), NO_POLY, lag, NO_NOISE, NO_LASER, 16)
 

@@ -219,7 +219,7 @@ def test_kernel_applies_the_noise_series():
     values kernels.noise_series gives for the same steps (the impulse of a
     uniform field: the definition of the kick), and the OU states it carries
     end bit-identical. Tolerance: the rounding of 500 additions."""
-    from mdrotor.engine import NO_LASER, NO_POLY
+    from mdrotor.engine import NO_LASER, NO_LINEAR, NO_POLY
     from mdrotor.kernels import advance, noise_series
     from mdrotor.noise import parse_noise
     from mdrotor.species import get_species
@@ -233,7 +233,7 @@ def test_kernel_applies_the_noise_series():
                                  stage="free")
     z = np.zeros((1, 1))
     model_t = (np.zeros((1, 3)), np.zeros((1, 3)), np.zeros((1, 3)), np.array([qm]), z, z)
-    drive = (np.zeros(n + 1), np.zeros(n + 1), np.ones(T), np.zeros(T))
+    drive = (np.zeros(n + 1), np.zeros(n + 1), np.ones(T), np.zeros(T)) + NO_LINEAR
     lag = (np.ones(1), np.ones(1), 0, np.zeros(n + 1), np.zeros(n + 1, np.uint8), 1, np.zeros((2, T)))
     pin = (np.zeros(0, dtype=np.int64), np.zeros((n + 1, 0)), np.zeros((n + 1, 0)))
     pos, vel = np.zeros((3, 1, T)), np.zeros((3, 1, T))
