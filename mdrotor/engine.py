@@ -32,14 +32,6 @@ HBAR = sc.hbar
 KB = sc.k
 K_COULOMB = 1.0 / (4.0 * np.pi * sc.epsilon_0)
 BLOCK_STEPS = 2048
-# the kernel's "no noise" arrays (fixed ndim so that one compiled kernel serves both; see kernels.advance)
-NO_NOISE = (np.zeros(0, dtype=np.int64), np.zeros((0, 3)), np.zeros(1, dtype=np.uint64), 0, np.zeros(0, dtype=np.int64),
-            np.zeros(0), np.zeros(0, dtype=np.int64), np.zeros((0, 4)), np.zeros((0, 1)), np.zeros(0, dtype=np.int64),
-            np.zeros((0, 9)), np.zeros((0, 2, 1)))
-NO_POLY = (np.zeros((0, 3), dtype=np.int64), np.zeros((1, 0)))
-# the kernel's "no laser" arrays (see kernels.advance)
-NO_LASER = (np.zeros((0, 3)), np.zeros((0, 5)), np.zeros((0, 3)), np.zeros((0, 0)), np.zeros((0, 3, 3)),
-            np.zeros(1, dtype=np.uint64), 0, np.zeros((0, 0)))
 LASER_STREAM = 4  # SeedSequence spawn_key (trajectory, 4): each trajectory's key for the recoil kicks
 # the laser kick is a first-order splitting of a velocity-dependent force: the automatic dt keeps its
 # largest damping per step, max |dF/dv| dt / m, at or below this
@@ -764,9 +756,12 @@ def series_steps(plan: Plan, k: int) -> int:
 
 def warm_up(plan: Plan, pos: np.ndarray, vel: np.ndarray, rf_phases=None, noise_state=None) -> float:
     """Compile (or load from numba's cache) the kernels a run calls, by one
-    step of the first trajectory on a copy; returns the seconds it took, so
-    that a run's speed can be reported without them. ``noise_state``: the
-    first trajectory's alone (it is advanced)."""
+    step of the first trajectory on a copy in every stage (each stage's
+    features, noise and beams, select the kernel's variant, see
+    kernels.advance), and in an RF run one without noise and beams (the
+    observations' variant); returns the seconds it took, so that a run's
+    speed can be reported without them. ``noise_state``: the first
+    trajectory's alone (it is advanced)."""
     from .kernels import lag_phases
 
     t0 = time.perf_counter()
@@ -780,7 +775,11 @@ def warm_up(plan: Plan, pos: np.ndarray, vel: np.ndarray, rf_phases=None, noise_
     keys = np.zeros(1, dtype=np.uint64) if plan.lasers else None
     kicks = noise_state is not None or (plan.lasers and plan.noise is None)
     stepper = _Stepper(plan, 1, 1, ph, noise_state, laser_keys=keys)
-    stepper.advance(p, v, 0, 0.0, plan.stage_dt[0], 1, noise_step0=0 if kicks else None)
+    bounds = plan.schedule.boundaries_s
+    for k in range(len(plan.stage_dt)):
+        stepper.advance(p, v, k, bounds[k], plan.stage_dt[k], 1, noise_step0=0 if kicks else None)
+    if plan.rf:
+        stepper.advance(p, v, 0, 0.0, plan.stage_dt[0], 1)
     return time.perf_counter() - t0
 
 
@@ -791,9 +790,10 @@ class _Stepper:
                  laser_keys=None):
         self.plan = plan
         self.model = plan.kernel_model() if model is None else model
+        self.rf = bool(np.any(self.model[1] != 0.0))  # the RF spring terms rf2
         # beams: each trajectory's key and every ion's expected photon count since the last reset
         self.laser_keys = laser_keys
-        self.photons = np.zeros((len(plan.masses), n_traj)) if laser_keys is not None else NO_LASER[7]
+        self.photons = np.zeros((len(plan.masses), n_traj)) if laser_keys is not None else None
         # each trajectory's keys and colored-noise states (noise.KernelNoiseState), advanced by the kernel
         self.noise_state = noise_state
         self.chunk = chunk
@@ -833,16 +833,18 @@ class _Stepper:
         else:
             track = np.zeros(n + 1, dtype=np.uint8)
         W = TWO_PI * plan.f_drive_hz
-        drive = (np.cos(W * te), np.sin(W * te), self.ph_c, self.ph_s) + NO_LINEAR
-        model_k = self.model
-        j0 = self._lattice_step(stage, t_start, dt)
-        if j0 is not None:  # the linear trap force by its exact per-step maps, the rest as kicks
-            drive = (drive[0], drive[1], self.ph_c, self.ph_s, plan.rf_table(stage, dt, self.model),
-                     self.ph_idx, j0)
-            model_k = self.kick_model
+        # a feature that is off goes as None: the kernel's variant without its code (see kernels.advance)
+        drive, model_k = None, self.model
+        if self.rf:
+            drive = (np.cos(W * te), np.sin(W * te), self.ph_c, self.ph_s) + NO_LINEAR
+            j0 = self._lattice_step(stage, t_start, dt)
+            if j0 is not None:  # the linear trap force by its exact per-step maps, the rest as kicks
+                drive = (drive[0], drive[1], self.ph_c, self.ph_s, plan.rf_table(stage, dt, self.model),
+                         self.ph_idx, j0)
+                model_k = self.kick_model
         lag = (plan.masses, plan.charges, plan.lag_n, sched.theta_rad(ts), track, self.lag_stride,
                self.lag_u if lag_u is None else lag_u)
-        noise = NO_NOISE
+        noise = None
         model = plan.noise
         if model is not None and noise_step0 is not None and model.active(sched.stages[stage].name):
             # white kicks, colored modes (their states carried in noise_state) and tones, all drawn in the kernel
@@ -850,7 +852,7 @@ class _Stepper:
             noise = model.kernel_arrays(self.noise_state, t_start_s=sched.boundaries_s[stage], dt_s=dt,
                                         step0=noise_step0, n_steps=n, global_step0=step,
                                         stage=sched.stages[stage].name)
-        laser = NO_LASER
+        laser = None
         if plan.lasers and noise_step0 is not None and self.laser_keys is not None:
             arrays = laser_arrays(plan, sched.stages[stage].name)
             if arrays is not None:  # beams on: recoil kicks counted by the global step, like the white noise
@@ -923,11 +925,11 @@ def _pin_coefficients(plan: Plan, te: np.ndarray, theta: np.ndarray | None = Non
 
 
 def _poly_coefficients(plan: Plan, te: np.ndarray, theta: np.ndarray | None = None) -> tuple:
-    """The layout pinning terms' polynomial coefficients at times te: (exps, (E, J))
+    """The layout pinning terms' polynomial coefficients at times te: (exps, (E, J)), or None without such terms
     (``theta``: pinning angles to use instead of the schedule's)."""
     terms = [(p, t) for p, t in enumerate(plan.cfg.pinning) if t.layout is not None]
     if not terms:
-        return NO_POLY[0], np.zeros((len(te), 0))
+        return None
     theta = plan.schedule.theta_rad(te) if theta is None else theta
     scales = plan.pin_scales(te)
     coef = 0.0

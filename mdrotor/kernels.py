@@ -9,10 +9,20 @@ number of steps.
 State layout: ``pos[u, i, b]`` and ``vel[u, i, b]`` (axis u = x, y, z; ion i;
 trajectory b): the trajectory index is innermost so that the compiler
 vectorises every force loop across trajectories. Trajectories are
-independent; the parallel loop runs over chunks of trajectories and each
-chunk runs the whole block of steps. No reduction crosses trajectories and
-no fast-math is used, so a trajectory's numbers do not depend on the chunk
-size or the number of threads.
+independent; threads take chunks of trajectories and each chunk runs the
+whole block of steps. No reduction crosses trajectories and no fast-math is
+used, so a trajectory's numbers do not depend on the chunk size or the
+number of threads.
+
+Compilation (the first run in a fresh environment): a feature that is off
+reaches the stepper as None, and numba compiles a variant of the chunk
+function without its code (:func:`advance`); the chunk function is a plain
+compiled function run on a thread pool, not numba's parallel loop, whose
+compilation took about twice as long. Compiled code is cached (cache=True):
+next to this file in ``__pycache__``, or in a user cache directory when the
+installed package is read-only, or in ``NUMBA_CACHE_DIR`` when set; every
+process importing the same installation, sweep and cluster workers
+included, finds it there.
 
 Acceleration of ion i (see :mod:`mdrotor.statics` for the potential)::
 
@@ -43,9 +53,11 @@ the exact sub-step times.
 from __future__ import annotations
 
 import math
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
-from numba import njit, prange
+import numba
+from numba import njit
 
 YOSHIDA_W1 = 1.0 / (2.0 - 2.0 ** (1.0 / 3.0))
 YOSHIDA_W0 = 1.0 - 2.0 * YOSHIDA_W1
@@ -676,7 +688,6 @@ def _linear_propagate(px, py, pz, vx, vy, vz, lin, lin_idx, b0, j, jb):
             vz[i, b] = lin[k, i, 2, 2] * x + lin[k, i, 2, 3] * v
 
 
-@njit(cache=True, parallel=True)
 def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, laser, chunk):
     """Advance every trajectory by ``n_steps`` steps of length ``dt``.
 
@@ -740,91 +751,139 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
         accumulates each ion's expected photon count. Like the noise, one
         kick after the deterministic step (see _laser_kick), after the
         noise kick.
-    chunk : int, trajectories per parallel work item. Each chunk is copied
-        into local (N, B) arrays per component: with them the compiler can
-        prove that nothing aliases and vectorises every loop.
+    chunk : int, trajectories per work item. The chunks run on numba's
+        number of threads (``numba.set_num_threads``), each a call of the
+        compiled :func:`_advance_chunk`, which releases the GIL.
+
+    A feature that is off comes as None (``drive`` in the pseudopotential
+    model, ``poly``, ``noise``, ``laser``): numba compiles a separate variant
+    of the chunk function for each combination used, with the feature's code
+    pruned at compile time, so a run compiles only the code it needs; the
+    other arguments' empty arrays (no rows) also mean "off".
     """
-    w2, rf2, stray_acc, qm, kq_i, kq_j = model
-    rf_c, rf_s, ph_c, ph_s, lin, lin_idx, lin_j0 = drive
-    use_lin = lin.shape[0] > 0
-    pin_n, c_re, c_im = pin
-    poly_exps, poly_coef = poly
-    use_poly = poly_exps.shape[0] > 0
-    poly_deg = 0
-    for j in range(poly_exps.shape[0]):
-        poly_deg = max(poly_deg, poly_exps[j, 0], poly_exps[j, 1], poly_exps[j, 2])
-    masses, charges, lag_n, lag_theta, lag_track, lag_stride, lag_u = lag
-    n_orders, tones, keys, step0, w_tgt, w_sd, r_tgt, r_par, z_real, c_tgt, c_par, z_rot = noise
-    l_khat, l_par, l_centre, l_vrec, l_emit, l_keys, l_step0, l_photons = laser
-    n_beams = l_khat.shape[0]
-    has_field = False
-    for j in range(w_tgt.shape[0]):
-        if w_tgt[j] < 3 and w_sd[j] != 0.0:
-            has_field = True
-    for j in range(r_tgt.shape[0]):
-        if r_tgt[j] < 3:
-            has_field = True
-    for j in range(c_tgt.shape[0]):
-        if c_tgt[j] < 3:
-            has_field = True
-    for st in range(tones.shape[0]):
-        if tones[st, 0] != 0.0 or tones[st, 1] != 0.0 or tones[st, 2] != 0.0:
-            has_field = True
-    has_multipole = n_orders.shape[0] > 0
-    n_mr = r_par.shape[0]
-    n_mc = c_par.shape[0]
-    n_hash = _n_hashes(w_sd, r_par, c_par)
-    offs = _noise_offsets(3 + 2 * n_orders.shape[0], w_tgt, w_sd, r_tgt, r_par, c_tgt, c_par)
-    use_rf = False
-    for i in range(rf2.shape[0]):
-        for u in range(3):
-            if rf2[i, u] != 0.0:
-                use_rf = True
-    n_ions = pos.shape[1]
     T = pos.shape[2]
+    starts = range(0, T, chunk)
+    args = (pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, laser)
+    threads = numba.get_num_threads()
+    if threads == 1 or len(starts) == 1:
+        for b0 in starts:
+            _advance_chunk(b0, min(T, b0 + chunk), *args)
+        return
+    pool = _pool(threads)
+    # every chunk writes only its own trajectories' columns: the order the threads take them in is free
+    for job in [pool.submit(_advance_chunk, b0, min(T, b0 + chunk), *args) for b0 in starts]:
+        job.result()
+
+
+_POOLS: dict = {}
+
+
+def _pool(threads: int) -> ThreadPoolExecutor:
+    """The process's pool of ``threads`` worker threads for :func:`advance`
+    (one per thread count asked, kept for the next block)."""
+    if threads not in _POOLS:
+        _POOLS[threads] = ThreadPoolExecutor(max_workers=threads, thread_name_prefix="mdrotor-kernel")
+    return _POOLS[threads]
+
+
+@njit(cache=True, nogil=True)
+def _advance_chunk(b0, b1, pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, laser):
+    """Trajectories b0 .. b1 - 1 of :func:`advance` (the same arguments),
+    copied into local (N, B) arrays per component: with them the compiler
+    can prove that nothing aliases and vectorises every loop."""
+    w2, rf2, stray_acc, qm, kq_i, kq_j = model
+    pin_n, c_re, c_im = pin
+    masses, charges, lag_n, lag_theta, lag_track, lag_stride, lag_u = lag
+    # A feature that is off comes as None: its code below sits under `x is
+    # not None` tests of the argument, which numba prunes at compile time.
+    # The scratch arrays exist in every variant (size 0 when unused).
+    use_rf = False
+    use_lin = False
+    if drive is not None:
+        rf_c, rf_s, ph_c, ph_s, lin, lin_idx, lin_j0 = drive
+        use_lin = lin.shape[0] > 0
+        for i in range(rf2.shape[0]):
+            for u in range(3):
+                if rf2[i, u] != 0.0:
+                    use_rf = True
+    use_poly = False
+    poly_deg = 0
+    if poly is not None:
+        poly_exps, poly_coef = poly
+        use_poly = poly_exps.shape[0] > 0
+        for j in range(poly_exps.shape[0]):
+            poly_deg = max(poly_deg, poly_exps[j, 0], poly_exps[j, 1], poly_exps[j, 2])
+    has_field = False
+    has_multipole = False
+    n_orders_k = 0
+    n_mr = 0
+    n_mc = 0
+    n_hash = 0
+    if noise is not None:
+        n_orders, tones, keys, step0, w_tgt, w_sd, r_tgt, r_par, z_real, c_tgt, c_par, z_rot = noise
+        for j in range(w_tgt.shape[0]):
+            if w_tgt[j] < 3 and w_sd[j] != 0.0:
+                has_field = True
+        for j in range(r_tgt.shape[0]):
+            if r_tgt[j] < 3:
+                has_field = True
+        for j in range(c_tgt.shape[0]):
+            if c_tgt[j] < 3:
+                has_field = True
+        for st in range(tones.shape[0]):
+            if tones[st, 0] != 0.0 or tones[st, 1] != 0.0 or tones[st, 2] != 0.0:
+                has_field = True
+        n_orders_k = n_orders.shape[0]
+        has_multipole = n_orders_k > 0
+        n_mr = r_par.shape[0]
+        n_mc = c_par.shape[0]
+        n_hash = _n_hashes(w_sd, r_par, c_par)
+        offs = _noise_offsets(3 + 2 * n_orders_k, w_tgt, w_sd, r_tgt, r_par, c_tgt, c_par)
+    n_beams = 0
+    if laser is not None:
+        l_khat, l_par, l_centre, l_vrec, l_emit, l_keys, l_step0, l_photons = laser
+        n_beams = l_khat.shape[0]
+    n_ions = pos.shape[1]
     n_sub = fracs.shape[0]
-    n_chunks = (T + chunk - 1) // chunk
-    for c in prange(n_chunks):
-        b0 = c * chunk
-        b1 = min(T, b0 + chunk)
-        nb = b1 - b0
-        px = np.empty((n_ions, nb))
-        py = np.empty((n_ions, nb))
-        pz = np.empty((n_ions, nb))
-        vx = np.empty((n_ions, nb))
-        vy = np.empty((n_ions, nb))
-        vz = np.empty((n_ions, nb))
-        ax = np.empty((n_ions, nb))
-        ay = np.empty((n_ions, nb))
-        az = np.empty((n_ions, nb))
-        for i in range(n_ions):
-            for b in range(nb):
-                px[i, b] = pos[0, i, b0 + b]
-                py[i, b] = pos[1, i, b0 + b]
-                pz[i, b] = pos[2, i, b0 + b]
-                vx[i, b] = vel[0, i, b0 + b]
-                vy[i, b] = vel[1, i, b0 + b]
-                vz[i, b] = vel[2, i, b0 + b]
-        zr = np.empty(nb)
-        zi = np.empty(nb)
-        fx = np.empty(nb)
-        fy = np.empty(nb)
-        fz = np.empty(nb)
-        raw = np.empty(nb)
-        rf = np.zeros(nb)
-        xp = np.empty((poly_deg + 1, nb))
-        yp = np.empty((poly_deg + 1, nb))
-        zp = np.empty((poly_deg + 1, nb))
-        nx = np.zeros((n_ions, nb))
-        ny = np.zeros((n_ions, nb))
-        nz = np.zeros((n_ions, nb))
-        ex = np.zeros((n_ions, nb))
-        ey = np.zeros((n_ions, nb))
-        ez = np.zeros((n_ions, nb))
-        nv = np.zeros((3 + 2 * n_orders.shape[0], nb))
-        us = np.empty((3 * n_hash, nb))
-        zr_loc = np.empty((n_mr, nb))
-        zc_loc = np.empty((n_mc, 2, nb))
+    nb = b1 - b0
+    px = np.empty((n_ions, nb))
+    py = np.empty((n_ions, nb))
+    pz = np.empty((n_ions, nb))
+    vx = np.empty((n_ions, nb))
+    vy = np.empty((n_ions, nb))
+    vz = np.empty((n_ions, nb))
+    ax = np.empty((n_ions, nb))
+    ay = np.empty((n_ions, nb))
+    az = np.empty((n_ions, nb))
+    for i in range(n_ions):
+        for b in range(nb):
+            px[i, b] = pos[0, i, b0 + b]
+            py[i, b] = pos[1, i, b0 + b]
+            pz[i, b] = pos[2, i, b0 + b]
+            vx[i, b] = vel[0, i, b0 + b]
+            vy[i, b] = vel[1, i, b0 + b]
+            vz[i, b] = vel[2, i, b0 + b]
+    zr = np.empty(nb)
+    zi = np.empty(nb)
+    fx = np.empty(nb)
+    fy = np.empty(nb)
+    fz = np.empty(nb)
+    raw = np.empty(nb)
+    rf = np.zeros(nb)
+    xp = np.empty((poly_deg + 1, nb))
+    yp = np.empty((poly_deg + 1, nb))
+    zp = np.empty((poly_deg + 1, nb))
+    nx = np.zeros((n_ions, nb))
+    ny = np.zeros((n_ions, nb))
+    nz = np.zeros((n_ions, nb))
+    ex = np.zeros((n_ions, nb))
+    ey = np.zeros((n_ions, nb))
+    ez = np.zeros((n_ions, nb))
+    nv = np.zeros((3 + 2 * n_orders_k, nb))
+    us = np.empty((3 * n_hash, nb))
+    zr_loc = np.empty((n_mr, nb))
+    zc_loc = np.empty((n_mc, 2, nb))
+    if noise is not None:
         for j in range(n_mr):
             for b in range(nb):
                 zr_loc[j, b] = z_real[j, b0 + b]
@@ -832,61 +891,72 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
             for b in range(nb):
                 zc_loc[j, 0, b] = z_rot[j, 0, b0 + b]
                 zc_loc[j, 1, b] = z_rot[j, 1, b0 + b]
-        n_ph = np.empty(nb if n_beams > 0 else 0)
-        sd_ph = np.empty(nb if n_beams > 0 else 0)
-        jb = np.empty(nb if use_lin else 0, dtype=np.int64)
+    n_ph = np.empty(nb if n_beams > 0 else 0)
+    sd_ph = np.empty(nb if n_beams > 0 else 0)
+    jb = np.empty(nb if use_lin else 0, dtype=np.int64)
+    if drive is not None:
         if use_rf:
             _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, 0)
-        _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[0], c_im[0],
-               zr, zi, fx, fy, fz)
+    _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[0], c_im[0],
+           zr, zi, fx, fy, fz)
+    if poly is not None:
         if use_poly:
             _poly_accel(px, py, pz, ax, ay, az, qm, poly_exps, poly_coef[0], xp, yp, zp)
-        for s in range(n_steps):
+    for s in range(n_steps):
+        if noise is not None:
             if has_field or has_multipole:
-                _noise_step(b0, s, step0 + s, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr_loc, c_tgt, c_par, zc_loc,
-                            us, nv, offs)
+                _noise_step(b0, s, step0 + s, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr_loc, c_tgt, c_par,
+                            zc_loc, us, nv, offs)
             if has_field:
                 _noise_field_accel(qm, nv, ex, ey, ez)
-            for k in range(n_sub):
-                h = fracs[k] * dt
+        for k in range(n_sub):
+            h = fracs[k] * dt
+            if drive is not None:
                 if use_lin:
                     _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
                     _linear_propagate(px, py, pz, vx, vy, vz, lin, lin_idx, b0, lin_j0 + s, jb)
                 else:
                     _kick_drift(px, py, pz, vx, vy, vz, ax, ay, az, 0.5 * h, h)
-                e = n_sub * s + k + 1
+            else:
+                _kick_drift(px, py, pz, vx, vy, vz, ax, ay, az, 0.5 * h, h)
+            e = n_sub * s + k + 1
+            if drive is not None:
                 if use_rf:
                     _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e)
-                _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[e], c_im[e],
-                       zr, zi, fx, fy, fz)
+            _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re[e], c_im[e],
+                   zr, zi, fx, fy, fz)
+            if poly is not None:
                 if use_poly:
                     _poly_accel(px, py, pz, ax, ay, az, qm, poly_exps, poly_coef[e], xp, yp, zp)
-                _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
-            # the step's noise impulse, dt times the noise acceleration at the
-            # step's end (a kick after the deterministic step)
+            _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
+        # the step's noise impulse, dt times the noise acceleration at the
+        # step's end (a kick after the deterministic step)
+        if noise is not None:
             if has_multipole:
                 _noise_accel(px, py, qm, n_orders, nv, ex, ey, ez, nx, ny, nz, zr, zi)
                 _kick(vx, vy, vz, nx, ny, nz, dt)
             elif has_field:
                 _kick(vx, vy, vz, ex, ey, ez, dt)
+        if laser is not None:
             if n_beams > 0:
-                _laser_kick(px, py, pz, vx, vy, vz, b0, l_step0 + s, dt, l_khat, l_par, l_centre, l_vrec, l_emit,
-                            l_keys, l_photons, n_ph, sd_ph)
-            if lag_n > 0 and (s + 1) % lag_stride == 0 and lag_track[s + 1] == 1:
-                th = lag_n * lag_theta[s + 1]
-                _lag_raw(px, py, masses, charges, lag_n, zr, zi, fx, fy, raw)
-                for b in range(nb):
-                    r = raw[b] - th
-                    lag_u[0, b0 + b] += _wrap(r - lag_u[1, b0 + b])
-                    lag_u[1, b0 + b] = r
-        for i in range(n_ions):
+                _laser_kick(px, py, pz, vx, vy, vz, b0, l_step0 + s, dt, l_khat, l_par, l_centre, l_vrec,
+                            l_emit, l_keys, l_photons, n_ph, sd_ph)
+        if lag_n > 0 and (s + 1) % lag_stride == 0 and lag_track[s + 1] == 1:
+            th = lag_n * lag_theta[s + 1]
+            _lag_raw(px, py, masses, charges, lag_n, zr, zi, fx, fy, raw)
             for b in range(nb):
-                pos[0, i, b0 + b] = px[i, b]
-                pos[1, i, b0 + b] = py[i, b]
-                pos[2, i, b0 + b] = pz[i, b]
-                vel[0, i, b0 + b] = vx[i, b]
-                vel[1, i, b0 + b] = vy[i, b]
-                vel[2, i, b0 + b] = vz[i, b]
+                r = raw[b] - th
+                lag_u[0, b0 + b] += _wrap(r - lag_u[1, b0 + b])
+                lag_u[1, b0 + b] = r
+    for i in range(n_ions):
+        for b in range(nb):
+            pos[0, i, b0 + b] = px[i, b]
+            pos[1, i, b0 + b] = py[i, b]
+            pos[2, i, b0 + b] = pz[i, b]
+            vel[0, i, b0 + b] = vx[i, b]
+            vel[1, i, b0 + b] = vy[i, b]
+            vel[2, i, b0 + b] = vz[i, b]
+    if noise is not None:
         for j in range(n_mr):
             for b in range(nb):
                 z_real[j, b0 + b] = zr_loc[j, b]

@@ -29,7 +29,12 @@ What is measured, all in one run:
    hbar) and released, libration nbar = 3; process CPU time of building
    the model and propagating it, against one minute on one core.
 7. The targets: met or missed, with the ratio.
-8. One run spread over a local Dask cluster of 2 single-threaded workers
+8. The demo's first run in a fresh environment (``--first-run`` for this
+   alone): ``mdrotor run configs/demo.toml`` in a subprocess with
+   NUMBA_CACHE_DIR an empty temporary directory, so every kernel it needs
+   is compiled, then the same with that cache filled; the wall time of each
+   process beside the run's own compile_s and wall_s.
+9. One run spread over a local Dask cluster of 2 single-threaded workers
    (``mdrotor run --scheduler``) against the same run on 2 threads in one
    process, and the overhead of one chunk (``--dask-only`` for this alone;
    skipped without the optional ``distributed``).
@@ -42,6 +47,7 @@ Usage::
     python scripts/bench.py --quantum-only # the quantum rotor case alone (run it on one thread:
                                            # NUMBA_NUM_THREADS=1 OMP_NUM_THREADS=1)
     python scripts/bench.py --kernel-only  # the kernel table alone
+    python scripts/bench.py --first-run    # the demo's first run, empty numba cache, alone
 
 With ``--json`` stdout carries one JSON object and the table goes to
 stderr. Times are best-of-repeats wall-clock times. Other processes slow
@@ -91,6 +97,7 @@ TARGET_NOISE_COST = 2.0       # step time with noise / without, N = 2
 TARGET_COLORED_RATE = 4e7     # trajectory-steps / s / core, N = 2 with the 1/f field noise
 TARGET_COLORED_SPEEDUP = 1.9  # its 2 threads / 1 thread
 TARGET_QUANTUM_S = 60.0       # s of CPU, quantum rotor spin-up and release with nbar = 3
+TARGET_FIRST_RUN_S = 10.0     # s wall, the demo's first run in a fresh environment, compilation included
 
 
 def log(msg: str) -> None:
@@ -279,26 +286,17 @@ def initial_lag(plan, pos: np.ndarray) -> np.ndarray:
     return lag_u
 
 
-# noise off: empty field and multipole-noise arrays (shapes from kernels.advance)
-NO_NOISE = engine.NO_NOISE
-NO_POLY_EXPS = np.zeros((0, 3), dtype=np.int64)   # no electrode-layout (polynomial) pinning
-
-
 def advance(blk: Block, pos, vel, lag_u, chunk: int) -> None:
     """kernels.advance on one block, noise off, pinning by pure multipoles
-    (pseudopotential: the RF drive arrays are placeholders the kernel ignores
-    as the RF spring terms are zero)."""
+    (pseudopotential: no RF drive), the variant engine.integrate runs: None
+    for the drive, the polynomial pinning, the noise and the beams."""
     p = blk.plan
     if p.rf or not np.all(p.pin_is_multipole == 1.0):
         raise RuntimeError("this benchmark covers the pseudopotential model with multipole pinning only")
-    n_traj = pos.shape[2]
-    n_evals = blk.c_re.shape[0]
-    drive = (np.zeros(n_evals), np.zeros(n_evals), np.ones(n_traj), np.zeros(n_traj)) + engine.NO_LINEAR
     pin = (p.pin_orders, blk.c_re, blk.c_im)
-    poly = (NO_POLY_EXPS, np.zeros((n_evals, 0)))
     lag = (p.masses, p.charges, blk.lag_n, blk.lag_theta, blk.lag_track, blk.lag_stride, lag_u)
-    kernels.advance(pos, vel, blk.dt, blk.n_steps, blk.fracs, p.kernel_model(), drive, pin, poly, lag, NO_NOISE,
-                    engine.NO_LASER, chunk)
+    kernels.advance(pos, vel, blk.dt, blk.n_steps, blk.fracs, p.kernel_model(), None, pin, None, lag, None, None,
+                    chunk)
 
 
 def kernel_run(plan, pos, vel, duration_s: float, integrator: str, refine: int, chunk: int = 64):
@@ -689,6 +687,47 @@ def bench_quantum(repeats: int) -> dict:
     return best
 
 
+# ---------------------------------------------------------------------------
+# The demo's first run: every kernel compiled, in a fresh process
+# ---------------------------------------------------------------------------
+def bench_first_run(repeats: int) -> dict:
+    """``mdrotor run configs/demo.toml`` in a subprocess whose NUMBA_CACHE_DIR
+    is an empty temporary directory (numba compiles every kernel the run
+    needs and writes them there), then once more with that cache: the wall
+    time of each whole process (start-up, imports, statics, compilation,
+    stepping, output) and its CPU time, beside the run's own compile_s and
+    wall_s (from ``--json``). Best of ``repeats`` fresh starts."""
+    import tempfile
+
+    demo = ROOT / "configs" / "demo.toml"
+    rows = []
+    with tempfile.TemporaryDirectory(prefix="mdrotor-first-run-") as tmp:
+        for r in range(repeats):
+            cache = Path(tmp) / f"numba-cache-{r}"
+            cache.mkdir()
+            env = dict(os.environ, NUMBA_CACHE_DIR=str(cache))
+            for label in ("fresh", "cached"):
+                cmd = [sys.executable, "-m", "mdrotor", "run", str(demo), "-o", str(Path(tmp) / "demo.h5"),
+                       "--quiet", "--json"]
+                before = os.times()
+                t0 = time.perf_counter()
+                res = subprocess.run(cmd, capture_output=True, text=True, env=env, check=False)
+                wall = time.perf_counter() - t0
+                after = os.times()
+                if res.returncode != 0:
+                    raise RuntimeError(f"the demo run failed:\n{res.stderr}")
+                summary = json.loads(res.stdout)
+                cpu = (after.children_user - before.children_user) + (after.children_system - before.children_system)
+                rows.append({"cache": label, "wall_s": wall, "cpu_s": cpu, "compile_s": summary["compile_s"],
+                             "run_wall_s": summary["wall_s"], "cached_files": len(list(cache.rglob("*.nbc")))})
+                log(f"    {label} cache: {wall:.2f} s wall ({cpu:.2f} s CPU), compile_s {summary['compile_s']:.2f}, "
+                    f"stepping {summary['wall_s']:.2f} s")
+    fresh = [r for r in rows if r["cache"] == "fresh"]
+    cached = [r for r in rows if r["cache"] == "cached"]
+    return {"config": "configs/demo.toml", "runs": rows, "fresh_wall_s": min(r["wall_s"] for r in fresh),
+            "cached_wall_s": min(r["wall_s"] for r in cached)}
+
+
 def targets(result) -> list[dict]:
     rows = []
 
@@ -728,6 +767,9 @@ def targets(result) -> list[dict]:
     q = result.get("quantum")
     if q:
         add("quantum rotor, spin-up and release, nbar = 3: CPU s <= 60", q["cpu_s"], TARGET_QUANTUM_S, False)
+    f = result.get("first_run")
+    if f:
+        add("demo's first run, empty numba cache: wall s <= 10", f["fresh_wall_s"], TARGET_FIRST_RUN_S, False)
     return rows
 
 
@@ -800,6 +842,15 @@ def markdown(result) -> str:
         L.append(f"| {q['case']} | {q['cpu_s']:.3g} s | {q['build_cpu_s']:.2g} s | {q['wall_s']:.3g} s | "
                  f"{q['steps']} | {q['columns']} | {q['window_max']} | {q['L_final_hbar']:.0f} +- "
                  f"{q['L_std_final_hbar']:.3g} hbar |")
+        L.append("")
+    f = result.get("first_run")
+    if f:
+        L.append("| demo run in a new process (`mdrotor run configs/demo.toml`) | numba cache | wall | CPU | "
+                 "compile_s | stepping (wall_s) | kernels cached |")
+        L.append("|---|---|---|---|---|---|---|")
+        for r in f["runs"]:
+            L.append(f"| {f['config']} | {r['cache']} | {r['wall_s']:.3g} s | {r['cpu_s']:.3g} s | "
+                     f"{r['compile_s']:.3g} s | {r['run_wall_s']:.3g} s | {r['cached_files']} |")
         L.append("")
     L.append("| target | measured | threshold | ratio | |")
     L.append("|---|---|---|---|---|")
@@ -912,6 +963,8 @@ def main(argv=None) -> int:
     ap.add_argument("--quantum-only", action="store_true", help="only the quantum rotor case and its target")
     ap.add_argument("--kernel-only", action="store_true",
                     help="only the kernel table (N = 2 to 30, bare pair loop), no baselines")
+    ap.add_argument("--first-run", action="store_true",
+                    help="only the demo's first run in a fresh process with an empty numba cache, then cached")
     ap.add_argument("--memory-child", nargs=3, metavar=("STEPS", "TRAJ", "DT_S"), help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
 
@@ -951,6 +1004,14 @@ def main(argv=None) -> int:
                 log(f"engine: {label}, {threads} thread(s)")
                 result["engine"].append(bench_engine(label, raw, sizes["eng_traj"], n_steps, sizes["eng_repeats"],
                                                      threads))
+        result["targets"] = targets(result)
+        result["wall_s"] = time.perf_counter() - t_start
+        result["machine"]["loadavg_end"] = os.getloadavg()
+        print(markdown(result))
+        return 0
+    if args.first_run:
+        log("the demo's first run (subprocesses, empty numba cache)")
+        result["first_run"] = bench_first_run(1 if args.quick else 3)
         result["targets"] = targets(result)
         result["wall_s"] = time.perf_counter() - t_start
         result["machine"]["loadavg_end"] = os.getloadavg()
@@ -1013,6 +1074,8 @@ def main(argv=None) -> int:
     log("quantum rotor")
     result["quantum"] = bench_quantum(1 if args.quick else 3)
     log(f"    {result['quantum']['cpu_s']:.3g} s CPU")
+    log("the demo's first run (subprocesses, empty numba cache)")
+    result["first_run"] = bench_first_run(1 if args.quick else 3)
     log("memory (subprocesses)")
     result["memory"] = bench_memory(sizes["mem_steps"], sizes["mem_traj"], demo_dt)
     try:

@@ -5,7 +5,7 @@ import pytest
 from scipy import constants as sc
 
 import mdrotor
-from mdrotor.engine import NO_LASER, NO_LINEAR, NO_NOISE, NO_POLY, _pin_coefficients, initial_states, integrate, make_plan
+from mdrotor.engine import NO_LINEAR, _pin_coefficients, initial_states, integrate, make_plan
 from mdrotor.kernels import advance
 from mdrotor.observables import observe
 
@@ -37,9 +37,8 @@ def step(plan, pos, vel, n_steps, dt=None, t0=0.0, lag=False):
     te = np.concatenate([[ts[0]], (ts[:-1, None] + dt * sub[None, :]).ravel()])
     c_re, c_im = _pin_coefficients(plan, te)
     n_t = pos.shape[2]
-    drive = (np.zeros(len(te)), np.zeros(len(te)), np.ones(n_t), np.zeros(n_t)) + NO_LINEAR
     lag = (plan.masses, plan.charges, 0, np.zeros(n_steps + 1), np.zeros(n_steps + 1, np.uint8), 1, np.zeros((2, n_t)))
-    advance(pos, vel, dt, n_steps, plan.fracs, plan.kernel_model(), drive, (plan.pin_orders, c_re, c_im), NO_POLY, lag, NO_NOISE, NO_LASER, 16)
+    advance(pos, vel, dt, n_steps, plan.fracs, plan.kernel_model(), None, (plan.pin_orders, c_re, c_im), None, lag, None, None, 16)
 
 
 def energy(plan, pos, vel):
@@ -304,6 +303,43 @@ def test_seed_order_and_chunk_independence():
     for k, v in _final_arrays(a).items():
         assert np.array_equal(v, _final_arrays(b)[k], equal_nan=True), k
         assert np.array_equal(v, _final_arrays(c)[k], equal_nan=True), k
+
+
+def test_feature_off_as_none_gives_the_same_bits():
+    """A feature that is off reaches the kernel as None, and numba compiles a
+    variant without its code; the general code given the same features as
+    empty arrays (no RF spring terms, no polynomial terms, no noise targets,
+    no beams: every loop of length zero) must give the same bits (common
+    practice, no source: pruning dead code does not change the arithmetic)."""
+    plan = thermal_plan(3, "1 mK", unpinned=False)
+    pos0, vel0 = initial_states(plan, 3, np.arange(12))
+    n = 200
+    dt = plan.dt_s
+    sub = np.cumsum(plan.fracs)
+    ts = dt * np.arange(n + 1)
+    te = np.concatenate([[ts[0]], (ts[:-1, None] + dt * sub[None, :]).ravel()])
+    c_re, c_im = _pin_coefficients(plan, te)
+    T = pos0.shape[2]
+    e = len(te)
+    drive = (np.zeros(e), np.zeros(e), np.ones(T), np.zeros(T)) + NO_LINEAR  # no RF, no exact propagator
+    poly = (np.zeros((0, 3), dtype=np.int64), np.zeros((e, 0)))
+    i64, f = np.int64, float
+    noise = (np.zeros(0, i64), np.zeros((0, 3)), np.zeros(T, np.uint64), 0, np.zeros(0, i64), np.zeros(0),
+             np.zeros(0, i64), np.zeros((0, 4)), np.zeros((0, T)), np.zeros(0, i64), np.zeros((0, 9)),
+             np.zeros((0, 2, T)))
+    laser = (np.zeros((0, 3)), np.zeros((0, 5)), np.zeros((0, 3)), np.zeros((0, 3)), np.zeros((0, 3, 3)),
+             np.zeros(T, np.uint64), 0, np.zeros((3, T), f))
+    out = []
+    for off in ((None, None, None, None), (drive, poly, noise, laser)):
+        pos, vel = pos0.copy(), vel0.copy()
+        lag = (plan.masses, plan.charges, plan.lag_n, plan.schedule.theta_rad(ts), np.ones(n + 1, np.uint8), 4,
+               np.zeros((2, T)))
+        advance(pos, vel, dt, n, plan.fracs, plan.kernel_model(), off[0], (plan.pin_orders, c_re, c_im), off[1],
+                lag, off[2], off[3], 5)
+        out.append((pos, vel, lag[6]))
+    assert plan.lag_n > 0 and np.any(out[0][2] != 0.0)  # the lag tracking ran
+    for a, b in zip(*out):
+        assert np.array_equal(a, b)
 
 
 def test_thread_count_independence(tmp_path):

@@ -88,7 +88,7 @@ def _kernel_accel(plan, pos: np.ndarray, t: float, rf_phases=None, terms=TERMS) 
     scratch = [np.empty(b) for _ in range(5)]
     te = np.array([t])
     c_re, c_im = _pin_coefficients(plan, te)
-    exps, coef = _poly_coefficients(plan, te)
+    poly = _poly_coefficients(plan, te)  # None without layout terms
     w2, rf2, stray, qm, kq_i, kq_j = plan.kernel_model()
     if "trap" not in terms:
         w2, rf2 = np.zeros_like(w2), np.zeros_like(rf2)
@@ -101,7 +101,8 @@ def _kernel_accel(plan, pos: np.ndarray, t: float, rf_phases=None, terms=TERMS) 
     rf = np.zeros(b) if rf_phases is None else np.cos(TWO_PI * plan.f_drive_hz * t + rf_phases)
     kernels._accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray, qm, kq_i, kq_j, plan.pin_orders, c_re[0], c_im[0],
                    *scratch)
-    if len(exps) and "poly" in terms:
+    if poly is not None and "poly" in terms:
+        exps, coef = poly
         deg = int(exps.max())
         kernels._poly_accel(px, py, pz, ax, ay, az, qm, exps, coef[0], *(np.empty((deg + 1, b)) for _ in range(3)))
     return np.stack([ax, ay, az])

@@ -219,7 +219,6 @@ def test_kernel_applies_the_noise_series():
     values kernels.noise_series gives for the same steps (the impulse of a
     uniform field: the definition of the kick), and the OU states it carries
     end bit-identical. Tolerance: the rounding of 500 additions."""
-    from mdrotor.engine import NO_LASER, NO_LINEAR, NO_POLY
     from mdrotor.kernels import advance, noise_series
     from mdrotor.noise import parse_noise
     from mdrotor.species import get_species
@@ -233,11 +232,10 @@ def test_kernel_applies_the_noise_series():
                                  stage="free")
     z = np.zeros((1, 1))
     model_t = (np.zeros((1, 3)), np.zeros((1, 3)), np.zeros((1, 3)), np.array([qm]), z, z)
-    drive = (np.zeros(n + 1), np.zeros(n + 1), np.ones(T), np.zeros(T)) + NO_LINEAR
     lag = (np.ones(1), np.ones(1), 0, np.zeros(n + 1), np.zeros(n + 1, np.uint8), 1, np.zeros((2, T)))
     pin = (np.zeros(0, dtype=np.int64), np.zeros((n + 1, 0)), np.zeros((n + 1, 0)))
     pos, vel = np.zeros((3, 1, T)), np.zeros((3, 1, T))
-    advance(pos, vel, dt, n, np.array([1.0]), model_t, drive, pin, NO_POLY, lag, arrays, NO_LASER, 2)
+    advance(pos, vel, dt, n, np.array([1.0]), model_t, None, pin, None, lag, arrays, None, 2)
     twin_arrays = model.kernel_arrays(twin, t_start_s=3e-6, dt_s=dt, step0=7, n_steps=n, global_step0=step0,
                                       stage="free")
     e = noise_series(n, *twin_arrays[1:])[:, :3, :]

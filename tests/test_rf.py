@@ -9,7 +9,7 @@ from scipy.integrate import solve_ivp
 
 import mdrotor
 from mdrotor.cli import main
-from mdrotor.engine import NO_LASER, NO_LINEAR, NO_NOISE, NO_POLY, RF_PROPAGATOR_STEPS, _Stepper, initial_states, make_plan
+from mdrotor.engine import NO_LINEAR, RF_PROPAGATOR_STEPS, _Stepper, initial_states, make_plan
 from mdrotor.kernels import advance
 
 from conftest import two_ion_config
@@ -39,7 +39,7 @@ class _SingleIon:
         drive = (np.cos(self.W * te), np.sin(self.W * te), np.ones(1), np.zeros(1)) + NO_LINEAR
         pin = (np.zeros(0, np.int64), np.zeros((n + 1, 0)), np.zeros((n + 1, 0)))
         lag = (np.ones(1), np.ones(1), 0, np.zeros(n + 1), np.zeros(n + 1, np.uint8), 1, np.zeros((2, 1)))
-        advance(self.pos, self.vel, self.dt, n, np.array([1.0]), self.model, drive, pin, NO_POLY, lag, NO_NOISE, NO_LASER, 1)
+        advance(self.pos, self.vel, self.dt, n, np.array([1.0]), self.model, drive, pin, None, lag, None, None, 1)
         self.step += n
         return self.pos[0, 0, 0]
 
