@@ -43,7 +43,7 @@ NO_LINEAR = (np.zeros((0, 1, 3, 4)), np.zeros(1, dtype=np.int64), 0)
 RF_STEPS_PER_PERIOD = 64
 # RF runs with the exact per-step Mathieu propagator (Verlet): default steps per RF period, from the
 # accuracy study in scripts/bench.py (docs/rf.md, "Step")
-RF_PROPAGATOR_STEPS = 16
+RF_PROPAGATOR_STEPS = 12
 
 
 @dataclass

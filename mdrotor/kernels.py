@@ -661,29 +661,31 @@ def _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e):
 
 
 @njit(cache=True)
-def _linear_propagate(px, py, pz, vx, vy, vz, lin, lin_idx, b0, j, jb):
-    """The exact map of the linear trap force over one step, per ion and axis:
-    (u, u') <- M (u, u') with M = lin[k, i, axis] = (m00, m01, m10, m11), k
-    = (j + lin_idx[b0 + b]) mod K the step's phase on the lattice of K
-    step phases per RF period (trajectory b's own RF phase is lin_idx[b]
-    lattice steps). jb: (B,) int64 scratch."""
+def _kick_propagate(px, py, pz, vx, vy, vz, ax, ay, az, hk, lin, lin_idx, b0, j, jb):
+    """v += hk a (the opening half-kick), then the exact map of the linear
+    trap force over one step, per ion and axis: (u, u') <- M (u, u') with M
+    = lin[k, i, axis] = (m00, m01, m10, m11), k = (j + lin_idx[b0 + b]) mod
+    K the step's phase on the lattice of K step phases per RF period
+    (trajectory b's own RF phase is lin_idx[b] lattice steps); one pass over
+    the chunk. jb: (B,) uint64 scratch (unsigned: the table lookups need no
+    negative-index wraparound, which would keep the loop from vectorising)."""
     K = lin.shape[0]
     n_ions, nb = px.shape
     for b in range(nb):
-        jb[b] = (j + lin_idx[b0 + b]) % K
+        jb[b] = np.uint64((j + lin_idx[b0 + b]) % K)
     for i in range(n_ions):
         for b in range(nb):
             k = jb[b]
             x = px[i, b]
-            v = vx[i, b]
+            v = vx[i, b] + hk * ax[i, b]
             px[i, b] = lin[k, i, 0, 0] * x + lin[k, i, 0, 1] * v
             vx[i, b] = lin[k, i, 0, 2] * x + lin[k, i, 0, 3] * v
             x = py[i, b]
-            v = vy[i, b]
+            v = vy[i, b] + hk * ay[i, b]
             py[i, b] = lin[k, i, 1, 0] * x + lin[k, i, 1, 1] * v
             vy[i, b] = lin[k, i, 1, 2] * x + lin[k, i, 1, 3] * v
             x = pz[i, b]
-            v = vz[i, b]
+            v = vz[i, b] + hk * az[i, b]
             pz[i, b] = lin[k, i, 2, 0] * x + lin[k, i, 2, 1] * v
             vz[i, b] = lin[k, i, 2, 2] * x + lin[k, i, 2, 3] * v
 
@@ -704,7 +706,7 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
         cos and sin of W t at every force evaluation (E,), cos and sin of
         each trajectory's RF phase (T,). Ignored when rf2 is zero.
         lin (K, N, 3, 4): the exact per-step maps of the linear trap force
-        (see _linear_propagate) at the K step phases of the RF period, K = 0
+        (see _kick_propagate) at the K step phases of the RF period, K = 0
         for none; with K > 0 the stepper is the Strang splitting half-kick
         (every other force), exact linear map over dt, half-kick, one
         sub-step only (fracs = [1]), and w2, rf2 must be zero (the linear
@@ -893,7 +895,7 @@ def _advance_chunk(b0, b1, pos, vel, dt, n_steps, fracs, model, drive, pin, poly
                 zc_loc[j, 1, b] = z_rot[j, 1, b0 + b]
     n_ph = np.empty(nb if n_beams > 0 else 0)
     sd_ph = np.empty(nb if n_beams > 0 else 0)
-    jb = np.empty(nb if use_lin else 0, dtype=np.int64)
+    jb = np.empty(nb if use_lin else 0, dtype=np.uint64)
     if drive is not None:
         if use_rf:
             _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, 0)
@@ -913,8 +915,7 @@ def _advance_chunk(b0, b1, pos, vel, dt, n_steps, fracs, model, drive, pin, poly
             h = fracs[k] * dt
             if drive is not None:
                 if use_lin:
-                    _kick(vx, vy, vz, ax, ay, az, 0.5 * h)
-                    _linear_propagate(px, py, pz, vx, vy, vz, lin, lin_idx, b0, lin_j0 + s, jb)
+                    _kick_propagate(px, py, pz, vx, vy, vz, ax, ay, az, 0.5 * h, lin, lin_idx, b0, lin_j0 + s, jb)
                 else:
                     _kick_drift(px, py, pz, vx, vy, vz, ax, ay, az, 0.5 * h, h)
             else:

@@ -24,6 +24,11 @@ What is measured, all in one run:
 5. Whole-engine steps (schedule sampling, noise synthesis and kernel, as a
    run does them) for N = 2 with noise off and on (white field, white field
    plus quadrupole, 1/f), and for N = 2 and 4 with the full RF force.
+5b. RF runs (``--rf-only`` for this alone): the demo with the full RF force
+   against the pseudopotential (whole runs, CPU time, one thread), and the
+   accuracy of L and phonon numbers for several steps per RF period against
+   the exact propagator at T_RF / 128 (the study behind
+   engine.RF_PROPAGATOR_STEPS).
 6. The quantum rotor (``mdrotor quantum`` without the ensemble) on
    ``configs/quantum_pair.toml``: two 40Ca+ spun up to 200 kHz (L ~ 1e4
    hbar) and released, libration nbar = 3; process CPU time of building
@@ -98,6 +103,7 @@ TARGET_COLORED_RATE = 4e7     # trajectory-steps / s / core, N = 2 with the 1/f 
 TARGET_COLORED_SPEEDUP = 1.9  # its 2 threads / 1 thread
 TARGET_QUANTUM_S = 60.0       # s of CPU, quantum rotor spin-up and release with nbar = 3
 TARGET_FIRST_RUN_S = 10.0     # s wall, the demo's first run in a fresh environment, compilation included
+TARGET_RF_OVER_PSEUDO = 4.0   # CPU time of the RF demo run / the pseudopotential run of the same duration
 
 
 def log(msg: str) -> None:
@@ -665,6 +671,151 @@ def bench_engine(label, raw, n_traj, n_steps, repeats, threads, seed=1) -> dict:
             "cpu_ns_per_traj_step": best_cpu / (n_traj * n_steps) * 1e9}
 
 
+# ---------------------------------------------------------------------------
+# RF runs: the exact per-step Mathieu propagator, cost and accuracy
+# ---------------------------------------------------------------------------
+RF_STUDY_STEPS = (8, 12, 16, 24, 32)   # steps per RF period compared with the fine reference
+RF_REFERENCE_STEPS = 128               # the reference: the propagator at T_RF / 128 (splitting error 1/64 of K = 16's)
+
+
+def _demo_raw(model: str, spin_up: str | None = None, **run) -> dict:
+    with open(ROOT / "configs" / "demo.toml", "rb") as fh:
+        raw = tomllib.load(fh)
+    raw["trap"]["model"] = model
+    if spin_up:
+        raw["stage"][0]["duration"] = spin_up
+    raw["run"].update(run)
+    return raw
+
+
+class _FineStepPath:
+    """Inside the block, make_plan gives RF runs the former integration (the RF
+    force among the Verlet kicks at T_RF / 64): the accuracy and cost the
+    propagator replaces."""
+
+    def __enter__(self):
+        self.saved = engine._rf_step
+
+        def fine(plan, dt_auto):
+            plan.rf_exact, plan.rf_steps = False, engine.RF_STEPS_PER_PERIOD
+            return min(dt_auto, 1.0 / (plan.f_drive_hz * engine.RF_STEPS_PER_PERIOD))
+
+        engine._rf_step = fine
+        return self
+
+    def __exit__(self, *exc):
+        engine._rf_step = self.saved
+
+
+def _timed_run(raw, label):
+    """One run on one thread (compiled kernels warmed up by a first short call):
+    (Result, CPU seconds of the integration, wall seconds)."""
+    from mdrotor.config import from_dict
+
+    cfg = from_dict(raw, label, base_dir=ROOT / "configs")
+    c0 = time.process_time()
+    res = mdrotor.run(cfg, threads=1)
+    cpu = time.process_time() - c0
+    return res, cpu, float(res.attrs["wall_s"])
+
+
+def _final_numbers(res) -> dict:
+    """Per trajectory: L (hbar) and the differential and COM phonon sums at the end."""
+    fin = res.final
+    kinds = fin.modes["kind"]
+    mn = np.asarray(fin.arrays["mode_n"])
+    out = {"L": np.asarray(fin.arrays["L_hbar"], dtype=float)}
+    for kind in ("differential", "com"):
+        idx = [k for k, kd in enumerate(kinds) if kd == kind]
+        out[kind] = np.sum(mn[:, idx], axis=1)
+    return out
+
+
+def bench_rf(n_traj: int, cost_traj: int, spin_up: str, cost_spin_up: str | None) -> dict:
+    """The demo (N = 2) with the full RF force: (1) cost of a whole run (one
+    thread, CPU time; the spin-up ``cost_spin_up`` long, None: the demo's
+    own) against the pseudopotential run of the same physical duration, with the propagator at its default step and with the former
+    fine-step path; (2) accuracy: final L and differential / COM phonons of
+    the same trajectories (same seed, every trajectory at RF phase 0, so
+    runs differ only by their step) for K = RF_STUDY_STEPS steps per RF
+    period and the former 64-step path, against the propagator at
+    RF_REFERENCE_STEPS steps; each mean's difference from the reference
+    beside the statistical error of the mean."""
+    out = {"spin_up": spin_up, "accuracy_trajectories": n_traj, "cost_spin_up": cost_spin_up or "1.0 ms (the demo's)", "cost": [], "accuracy": []}
+    # warm the compiled kernels (numba's cache) so that the timed runs do not include compilation
+    for model in ("pseudo", "rf"):
+        _timed_run(_demo_raw(model, "2 us", trajectories=2), f"warm-up {model}")
+    with _FineStepPath():
+        _timed_run(_demo_raw("rf", "2 us", trajectories=2), "warm-up rf fine")
+    rows = [("pseudopotential", _demo_raw("pseudo", cost_spin_up, trajectories=cost_traj), False),
+            (f"RF, propagator, T_RF / {engine.RF_PROPAGATOR_STEPS}",
+             _demo_raw("rf", cost_spin_up, trajectories=cost_traj), False),
+            (f"RF, former path, T_RF / {engine.RF_STEPS_PER_PERIOD}",
+             _demo_raw("rf", cost_spin_up, trajectories=cost_traj), True)]
+    for label, raw, fine in rows:
+        log(f"RF cost: {label}")
+        if fine:
+            with _FineStepPath():
+                res, cpu, wall = _timed_run(raw, label)
+        else:
+            res, cpu, wall = _timed_run(raw, label)
+        out["cost"].append({"case": label, "trajectories": cost_traj, "steps": int(res.attrs["n_steps"]),
+                            "dt_s": float(res.attrs["dt_s"]), "cpu_s": cpu, "wall_s": wall})
+    base = out["cost"][0]["cpu_s"]
+    for r in out["cost"]:
+        r["cpu_over_pseudo"] = r["cpu_s"] / base
+    W_T = 1.0 / 30e6   # the demo's T_RF
+    ref_raw = _demo_raw("rf", spin_up, trajectories=n_traj, dt=f"{W_T / RF_REFERENCE_STEPS!r} s")
+    ref_raw["trap"]["rf_phase"] = "0 deg"
+    log(f"RF accuracy: reference T_RF / {RF_REFERENCE_STEPS}")
+    ref = _final_numbers(_timed_run(ref_raw, "reference")[0])
+    cases = [(f"T_RF / {k}", k, False) for k in RF_STUDY_STEPS] + \
+        [(f"former path, T_RF / {engine.RF_STEPS_PER_PERIOD}", None, True)]
+    for label, k, fine in cases:
+        raw = _demo_raw("rf", spin_up, trajectories=n_traj, **({"dt": f"{W_T / k!r} s"} if k else {}))
+        raw["trap"]["rf_phase"] = "0 deg"
+        log(f"RF accuracy: {label}")
+        if fine:
+            with _FineStepPath():
+                got = _final_numbers(_timed_run(raw, label)[0])
+        else:
+            got = _final_numbers(_timed_run(raw, label)[0])
+        row = {"case": label}
+        for q in ("L", "differential", "com"):
+            ok = np.isfinite(got[q]) & np.isfinite(ref[q])
+            d = got[q][ok] - ref[q][ok]
+            row[f"{q}_mean"] = float(np.mean(got[q][ok]))
+            row[f"{q}_sem"] = float(np.std(ref[q][ok], ddof=1) / math.sqrt(ok.sum()))
+            row[f"{q}_diff"] = float(np.mean(d))
+            row[f"{q}_diff_sem"] = float(np.std(d, ddof=1) / math.sqrt(ok.sum()))
+            row[f"{q}_diff_over_sem"] = abs(row[f"{q}_diff"]) / row[f"{q}_sem"]
+        out["accuracy"].append(row)
+    for q in ("L", "differential", "com"):
+        out[f"reference_{q}_mean"] = float(np.mean(ref[q]))
+    return out
+
+
+def rf_markdown(rf: dict) -> str:
+    L = [f"Demo (2 x 40Ca+, f_drive = 30 MHz, q = 0.128), spin-up {rf['cost_spin_up']}; one thread.", "",
+         "| run | trajectories | steps | dt | CPU s | CPU / pseudopotential |", "|---|---|---|---|---|---|"]
+    for r in rf["cost"]:
+        L.append(f"| {r['case']} | {r['trajectories']} | {r['steps']} | {r['dt_s']:.3g} s | {r['cpu_s']:.3g} | "
+                 f"{r['cpu_over_pseudo']:.2f} |")
+    L += ["", f"Accuracy (the demo with its spin-up shortened to {rf['spin_up']}, "
+          f"{rf['accuracy_trajectories']} trajectories) against the propagator at T_RF / {RF_REFERENCE_STEPS} "
+          "(same trajectories, RF phase 0): "
+          "mean difference +- its standard error, and |difference| / (standard error of the mean itself).", "",
+          "| step | L mean (hbar) | L: difference | / sem | differential phonons | difference | / sem | "
+          "COM phonons | difference | / sem |", "|---|---|---|---|---|---|---|---|---|---|"]
+    for r in rf["accuracy"]:
+        L.append(f"| {r['case']} | {r['L_mean']:.1f} +- {r['L_sem']:.1f} | {r['L_diff']:+.3g} +- {r['L_diff_sem']:.2g} | "
+                 f"{r['L_diff_over_sem']:.3f} | {r['differential_mean']:.3f} +- {r['differential_sem']:.2f} | "
+                 f"{r['differential_diff']:+.3g} +- {r['differential_diff_sem']:.2g} | "
+                 f"{r['differential_diff_over_sem']:.3f} | {r['com_mean']:.2f} +- {r['com_sem']:.2f} | "
+                 f"{r['com_diff']:+.3g} +- {r['com_diff_sem']:.2g} | {r['com_diff_over_sem']:.3f} |")
+    return "\n".join(L)
+
+
 def bench_quantum(repeats: int) -> dict:
     """Build and propagate the quantum rotor of configs/quantum_pair.toml (best of repeats)."""
     from mdrotor import quantum_build, quantum_rotor
@@ -764,6 +915,16 @@ def targets(result) -> list[dict]:
         add(f"{one_f}: traj-steps per CPU second >= 4e7", 1e9 / c1["cpu_ns_per_traj_step"], TARGET_COLORED_RATE)
     if c1 and c2:
         add(f"{one_f}: speed-up 1 -> 2 threads >= 1.9x", c2["rate"] / c1["rate"], TARGET_COLORED_SPEEDUP)
+    rf = result.get("rf")
+    if rf:
+        prop = rf["cost"][1]
+        add(f"RF demo run ({prop['case']}): CPU time <= 4x the pseudopotential run", prop["cpu_over_pseudo"],
+            TARGET_RF_OVER_PSEUDO, False)
+        default = next((r for r in rf["accuracy"] if r["case"] == f"T_RF / {engine.RF_PROPAGATOR_STEPS}"), None)
+        if default:
+            worst = max(default[f"{q}_diff_over_sem"] for q in ("L", "differential", "com"))
+            add(f"RF at T_RF / {engine.RF_PROPAGATOR_STEPS}: L and phonons within their statistical error of the "
+                f"T_RF / {RF_REFERENCE_STEPS} reference (|diff| / sem <= 1)", worst, 1.0, False)
     q = result.get("quantum")
     if q:
         add("quantum rotor, spin-up and release, nbar = 3: CPU s <= 60", q["cpu_s"], TARGET_QUANTUM_S, False)
@@ -834,6 +995,16 @@ def markdown(result) -> str:
                      f"{r['rate']:.3g} | {r['rate_per_core']:.3g} | {r['physical_time_per_s'] * 1e6:.3g} us | "
                      f"{r['cpu_ns_per_traj_step']:.3g} |")
         L.append("")
+    rf = result.get("rf")
+    if rf:
+        prop = rf["cost"][1]
+        add(f"RF demo run ({prop['case']}): CPU time <= 4x the pseudopotential run", prop["cpu_over_pseudo"],
+            TARGET_RF_OVER_PSEUDO, False)
+        default = next((r for r in rf["accuracy"] if r["case"] == f"T_RF / {engine.RF_PROPAGATOR_STEPS}"), None)
+        if default:
+            worst = max(default[f"{q}_diff_over_sem"] for q in ("L", "differential", "com"))
+            add(f"RF at T_RF / {engine.RF_PROPAGATOR_STEPS}: L and phonons within their statistical error of the "
+                f"T_RF / {RF_REFERENCE_STEPS} reference (|diff| / sem <= 1)", worst, 1.0, False)
     q = result.get("quantum")
     if q:
         L.append("| quantum rotor (build + propagate) | CPU | of which build | wall | steps | state columns | "
@@ -961,6 +1132,8 @@ def main(argv=None) -> int:
     ap.add_argument("--dask-only", action="store_true",
                     help="only one run spread over a local 2-worker Dask cluster against --threads 2")
     ap.add_argument("--quantum-only", action="store_true", help="only the quantum rotor case and its target")
+    ap.add_argument("--rf-only", action="store_true",
+                    help="only the RF section: cost against the pseudopotential and accuracy against a fine step")
     ap.add_argument("--kernel-only", action="store_true",
                     help="only the kernel table (N = 2 to 30, bare pair loop), no baselines")
     ap.add_argument("--first-run", action="store_true",
@@ -978,12 +1151,14 @@ def main(argv=None) -> int:
         sizes = dict(traj=1024, steps=500, repeats=3,                  # kernel
                      np_traj=1024, np_steps=30, np_repeats=1,          # numpy baseline
                      ivp_n=(2,), ivp_time=5e-6, ivp_traj=2, ivp_repeats=1, rtols=rtols, tight=False,
-                     mem_steps=(200, 2000), mem_traj=10_000, eng_traj=512, eng_steps=256, eng_repeats=1)
+                     mem_steps=(200, 2000), mem_traj=10_000, eng_traj=512, eng_steps=256, eng_repeats=1,
+                     rf_traj=16, rf_cost_traj=16, rf_spin_up="20 us", rf_cost_spin_up="20 us")
     else:
         sizes = dict(traj=4096, steps=2000, repeats=15,
                      np_traj=4096, np_steps=200, np_repeats=3,
                      ivp_n=(2, 4, 8), ivp_time=20e-6, ivp_traj=3, ivp_repeats=3, rtols=rtols, tight=True,
-                     mem_steps=(1000, 10_000), mem_traj=10_000, eng_traj=2048, eng_steps=1024, eng_repeats=3)
+                     mem_steps=(1000, 10_000), mem_traj=10_000, eng_traj=2048, eng_steps=1024, eng_repeats=3,
+                     rf_traj=200, rf_cost_traj=400, rf_spin_up="0.2 ms", rf_cost_spin_up=None)
     t_start = time.perf_counter()
     result = {"machine": machine_info(), "settings": {k: (list(v) if isinstance(v, tuple) else v)
                                                       for k, v in sizes.items()},
@@ -1016,6 +1191,15 @@ def main(argv=None) -> int:
         result["wall_s"] = time.perf_counter() - t_start
         result["machine"]["loadavg_end"] = os.getloadavg()
         print(markdown(result))
+        return 0
+    if args.rf_only:
+        result["rf"] = bench_rf(sizes["rf_traj"], sizes["rf_cost_traj"], sizes["rf_spin_up"], sizes["rf_cost_spin_up"])
+        result["targets"] = targets(result)
+        result["wall_s"] = time.perf_counter() - t_start
+        result["machine"]["loadavg_end"] = os.getloadavg()
+        print(rf_markdown(result["rf"]))
+        if args.out:
+            Path(args.out).write_text(json.dumps(result, indent=1, default=float) + "\n")
         return 0
     if args.quantum_only:
         log("quantum rotor")
@@ -1071,6 +1255,8 @@ def main(argv=None) -> int:
             n_steps = sizes["eng_steps"] * (4 if " rf" in label else 1)
             log(f"engine: {label}, {threads} thread(s)")
             result["engine"].append(bench_engine(label, raw, sizes["eng_traj"], n_steps, sizes["eng_repeats"], threads))
+    log("RF runs: cost and accuracy")
+    result["rf"] = bench_rf(sizes["rf_traj"], sizes["rf_cost_traj"], sizes["rf_spin_up"], sizes["rf_cost_spin_up"])
     log("quantum rotor")
     result["quantum"] = bench_quantum(1 if args.quick else 3)
     log(f"    {result['quantum']['cpu_s']:.3g} s CPU")
@@ -1090,6 +1276,8 @@ def main(argv=None) -> int:
     result["machine"]["loadavg_end"] = os.getloadavg()
     result["machine"]["threading_layer"] = numba.threading_layer()
     table = markdown(result)
+    if "rf" in result:
+        table += "\n\n" + rf_markdown(result["rf"])
     if "dask" in result:
         table += "\n\n" + dask_markdown(result["dask"])
     text = json.dumps(result, indent=1, default=float)

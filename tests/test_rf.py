@@ -335,15 +335,15 @@ def test_rotating_start_L_does_not_depend_on_rf_phase():
     The orbit is a periodic orbit of the exact equations of motion: scipy's
     DOP853 (rtol 1e-12) carries its phase-0 state over one RF period back to
     itself turned by w T_RF, to the stepper's splitting error (second order,
-    (W dt)^2 times the Coulomb coupling: 2e-5 relative at 16 steps per
-    period, 1.4e-6 at 64; asserted 1e-4).
+    (W dt)^2 times the Coulomb coupling: 4e-5 relative at the default 12
+    steps per period, 2.2e-5 at 16, 1.4e-6 at 64; asserted 1e-4).
 
     Its size against the pseudopotential crystal: below it by a few 1e-4, of
     order q^2/8 (a first-order estimate, r = R (1 - (q/2) cos W t) with R =
     R_p (1 + q^2/8) and m r^2 dtheta/dt = L, gives L / L_p = 1 - q^2/8 but
     leaves out the modulation of the centrifugal term, <r^-3>, of the same
     order; not derived further). The exact orbit gives -0.33 q^2/8 (the
-    propagator at 16 to 128 steps per period: -0.321 to -0.334; order 4 at
+    propagator at 12 to 128 steps per period: -0.312 to -0.334; order 4 at
     64: -0.322), the former 64-step Verlet orbit -1.07 q^2/8, a splitting
     error of its own. Asserted: 0 > offset > -q^2/8.
 

@@ -48,14 +48,14 @@ def test_single_ion_secular_frequency(a, q):
     """One ion, moved off the RF null along x, oscillates at w = beta W / 2
     with beta the characteristic exponent (Leibfried et al., Rev. Mod. Phys.
     75, 281 (2003), eqs. 8-10; beta from the continued fraction, March 1997).
-    The stepper at its default 16 steps per RF period propagates the linear
+    The stepper at its default 12 steps per RF period propagates the linear
     trap exactly, so the frequency fitted to the stroboscopic positions (one
     per RF period, 1000 periods) agrees to 1e-8 (the fit's own precision is
     ~1e-10 at this length), 1000 times tighter than the 256-step Verlet
     check of tests/test_rf.py."""
     cfg = _single_ion(a, q)
     plan = make_plan(cfg)
-    assert plan.rf_exact and plan.rf_steps == RF_PROPAGATOR_STEPS
+    assert plan.rf_exact and plan.rf_steps >= RF_PROPAGATOR_STEPS  # more when the axial motion asks for it
     K = plan.rf_steps
     dt = plan.stage_dt[0]
     st = _Stepper(plan, 1, 1, np.zeros(1))
@@ -139,8 +139,8 @@ def test_bit_identical_across_threads_and_chunks():
 def test_coarse_step_agrees_with_fine_reference():
     """Same seed, same RF phase (0) for every trajectory: the final L and
     phonon numbers of a thermal pinned pair after spin-down of the pinning
-    agree between the default step (16 per RF period) and the propagator at
-    128 steps per period (its splitting error 64 times smaller) far inside
+    agree between the default step (12 per RF period) and the propagator at
+    128 steps per period (its splitting error over 100 times smaller) far inside
     their spread over the ensemble: the per-trajectory difference of L is
     below 2 % of the ensemble's L spread, of the stretch phonons below 2 %
     of their mean (the splitting error is second order in W dt; common
