@@ -661,18 +661,16 @@ def _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, e):
 
 
 @njit(cache=True)
-def _kick_propagate(px, py, pz, vx, vy, vz, ax, ay, az, hk, lin, lin_idx, b0, j, jb):
+def _kick_propagate(px, py, pz, vx, vy, vz, ax, ay, az, hk, lin, jb):
     """v += hk a (the opening half-kick), then the exact map of the linear
     trap force over one step, per ion and axis: (u, u') <- M (u, u') with M
-    = lin[k, i, axis] = (m00, m01, m10, m11), k = (j + lin_idx[b0 + b]) mod
-    K the step's phase on the lattice of K step phases per RF period
-    (trajectory b's own RF phase is lin_idx[b] lattice steps); one pass over
-    the chunk. jb: (B,) uint64 scratch (unsigned: the table lookups need no
-    negative-index wraparound, which would keep the loop from vectorising)."""
-    K = lin.shape[0]
+    = lin[k, i, axis] = (m00, m01, m10, m11), k = jb[b] the step's phase of
+    trajectory b on the lattice of K step phases per RF period; one pass over
+    the chunk. jb (B,) uint64 (unsigned: the table lookups need no
+    negative-index wraparound) is advanced to the next step's phases, k + 1
+    mod K, without an integer division."""
+    K = np.uint64(lin.shape[0])
     n_ions, nb = px.shape
-    for b in range(nb):
-        jb[b] = np.uint64((j + lin_idx[b0 + b]) % K)
     for i in range(n_ions):
         for b in range(nb):
             k = jb[b]
@@ -688,6 +686,11 @@ def _kick_propagate(px, py, pz, vx, vy, vz, ax, ay, az, hk, lin, lin_idx, b0, j,
             v = vz[i, b] + hk * az[i, b]
             pz[i, b] = lin[k, i, 2, 0] * x + lin[k, i, 2, 1] * v
             vz[i, b] = lin[k, i, 2, 2] * x + lin[k, i, 2, 3] * v
+    one = np.uint64(1)
+    zero = np.uint64(0)
+    for b in range(nb):
+        k = jb[b] + one
+        jb[b] = k if k < K else zero
 
 
 def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, laser, chunk):
@@ -896,6 +899,9 @@ def _advance_chunk(b0, b1, pos, vel, dt, n_steps, fracs, model, drive, pin, poly
     n_ph = np.empty(nb if n_beams > 0 else 0)
     sd_ph = np.empty(nb if n_beams > 0 else 0)
     jb = np.empty(nb if use_lin else 0, dtype=np.uint64)
+    if use_lin:  # each trajectory's step phase on the lattice (advanced by _kick_propagate)
+        for b in range(nb):
+            jb[b] = np.uint64((lin_j0 + lin_idx[b0 + b]) % lin.shape[0])
     if drive is not None:
         if use_rf:
             _rf_phase(rf, rf_c, rf_s, ph_c, ph_s, b0, 0)
@@ -915,7 +921,7 @@ def _advance_chunk(b0, b1, pos, vel, dt, n_steps, fracs, model, drive, pin, poly
             h = fracs[k] * dt
             if drive is not None:
                 if use_lin:
-                    _kick_propagate(px, py, pz, vx, vy, vz, ax, ay, az, 0.5 * h, lin, lin_idx, b0, lin_j0 + s, jb)
+                    _kick_propagate(px, py, pz, vx, vy, vz, ax, ay, az, 0.5 * h, lin, jb)
                 else:
                     _kick_drift(px, py, pz, vx, vy, vz, ax, ay, az, 0.5 * h, h)
             else:
