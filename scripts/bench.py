@@ -1122,6 +1122,16 @@ def dask_markdown(d: dict) -> str:
     ])
 
 
+def print_partial(result, t_start: float) -> int:
+    """The end of a run of one part (``--engine-only``, ``--first-run``,
+    ...): its targets and table."""
+    result["targets"] = targets(result)
+    result["wall_s"] = time.perf_counter() - t_start
+    result["machine"]["loadavg_end"] = os.getloadavg()
+    print(markdown(result))
+    return 0
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0],
                                  formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -1179,19 +1189,11 @@ def main(argv=None) -> int:
                 log(f"engine: {label}, {threads} thread(s)")
                 result["engine"].append(bench_engine(label, raw, sizes["eng_traj"], n_steps, sizes["eng_repeats"],
                                                      threads))
-        result["targets"] = targets(result)
-        result["wall_s"] = time.perf_counter() - t_start
-        result["machine"]["loadavg_end"] = os.getloadavg()
-        print(markdown(result))
-        return 0
+        return print_partial(result, t_start)
     if args.first_run:
         log("the demo's first run (subprocesses, empty numba cache)")
         result["first_run"] = bench_first_run(1 if args.quick else 3)
-        result["targets"] = targets(result)
-        result["wall_s"] = time.perf_counter() - t_start
-        result["machine"]["loadavg_end"] = os.getloadavg()
-        print(markdown(result))
-        return 0
+        return print_partial(result, t_start)
     if args.rf_only:
         result["rf"] = bench_rf(sizes["rf_traj"], sizes["rf_cost_traj"], sizes["rf_spin_up"], sizes["rf_cost_spin_up"])
         result["targets"] = targets(result)
@@ -1204,11 +1206,7 @@ def main(argv=None) -> int:
     if args.quantum_only:
         log("quantum rotor")
         result["quantum"] = bench_quantum(1 if args.quick else 3)
-        result["targets"] = targets(result)
-        result["wall_s"] = time.perf_counter() - t_start
-        result["machine"]["loadavg_end"] = os.getloadavg()
-        print(markdown(result))
-        return 0
+        return print_partial(result, t_start)
     problems = problem_dicts()
     numpy_problems = []
     demo_dt = None
@@ -1236,11 +1234,7 @@ def main(argv=None) -> int:
             result["solve_ivp"].append(bench_ivp(label, raw, sizes["ivp_time"], sizes["ivp_traj"], sizes["rtols"],
                                                  row["rate_1t"], sizes["tight"], sizes["ivp_repeats"]))
     if args.kernel_only:
-        result["targets"] = targets(result)
-        result["wall_s"] = time.perf_counter() - t_start
-        result["machine"]["loadavg_end"] = os.getloadavg()
-        print(markdown(result))
-        return 0
+        return print_partial(result, t_start)
     # the numpy baseline again, without page-fault overhead (conservative: the faster one counts)
     tuned = keep_freed_memory()
     for r, k, (plan, pos0, vel0) in zip(result["numpy"], result["kernel"], numpy_problems):
