@@ -16,7 +16,8 @@ commands write lands in OUTDIR/out. Each HDF5 file is then walked and every
 dataset (dtype, shape, SHA-256 of its bytes) and attribute (its value) is
 written to ``<file>.dump.json``. Work is kept small only through the
 command line (fewer trajectories, one worker, one thread), the same in
-every record. ``--quick`` leaves out the costly invocations (both records
+every record; a full record takes about 20 minutes on two busy cores (174
+invocations). ``--quick`` leaves out the costly invocations (both records
 compared must use the same choice).
 
 ``compare`` reports every difference between two records (invocation, exit
@@ -265,6 +266,10 @@ TEXT_MASKS = [
     # wall and compile times, rates: depend on the machine's load
     (re.compile(r"\bwall [-+0-9.eE]+ s\b"), "wall <time>"),
     (re.compile(r"\(\+ [-+0-9.eE]+ s kernel compilation"), "(+ <time> kernel compilation"),
+    (re.compile(r"[-+0-9.eE]+ s CPU \([-+0-9.eE]+ s wall\)"), "<time> CPU (<time> wall)"),  # quantum numerics
+    (re.compile(r"(-> \S+  )\[[-+0-9.eE]+ s\]$", re.M), r"\1[<time>]"),     # sweep / optimize summary line
+    (re.compile(r"\| (wall_s|total_wall_s|compile_s|cpu_s|traj_steps_per_s) \|[^|\n]*\|"),
+     r"| \1 | <time> |"),                                                   # report summary tables
     (re.compile(r"[-+0-9.eE]+\s*(k|M|G)?\s*(trajectory-steps|traj(ectory)?[- ]steps|steps)/s"), "<rate>"),
     (re.compile(r"(?i)\b\d+ threads?\b"), "<threads>"),                  # host/thread info
     (re.compile(r"(?i)(host|hostname)\W{1,3}[\w.-]+"), r"\1 <host>"),
@@ -275,7 +280,7 @@ TEXT_MASKS = [
 IGNORED_KEYS = re.compile("(" + "|".join([
     "mdrotor_version", "package_version", "version",  # the version string
     "created", "date", "timestamp",          # when the file was written
-    "wall_s", "total_wall_s", "compile_s",   # wall and compile times: the machine's load
+    "wall_s", "total_wall_s", "compile_s", "cpu_s",  # wall, CPU and compile times: the machine's load
     "traj_steps_per_s",                      # a rate: wall time again
     "threads", "host", "hostname",           # where and how it ran
 ]) + ")$")
@@ -351,10 +356,15 @@ def compare(a: Path, b: Path) -> int:
                 ta, tb = (json.dumps(_mask_json(j), indent=1, sort_keys=True) for j in (ja, jb))
             except ValueError:
                 pass
+        elif rel.suffix == ".csv":
+            ta, tb = (_mask_csv(t) for t in (ta, tb))
         elif rel.suffix == ".stdout":
             ta, tb = (_mask_json_lines(t) for t in (ta, tb))
         if ta != tb:
-            diffs.append(f"{rel}: {_first_diff(ta, tb)}")
+            cmd = ""
+            if rel.parts[0] == "cmd" and (a / "cmd" / (rel.stem + ".json")).exists():
+                cmd = " (mdrotor " + " ".join(json.loads((a / "cmd" / (rel.stem + ".json")).read_text())["args"]) + ")"
+            diffs.append(f"{rel}{cmd}: {_first_diff(ta, tb)}")
     for d in diffs:
         print(d)
     n_cmd = len([p for p in files_a if p.parts[0] == "cmd" and p.suffix == ".json"])
@@ -369,6 +379,22 @@ def _mask_json(j):
     if isinstance(j, list):
         return [_mask_json(v) for v in j]
     return j
+
+
+def _mask_csv(t: str) -> str:
+    """A CSV table: the columns named in IGNORED_KEYS emptied."""
+    import csv
+    import io
+
+    rows = list(csv.reader(io.StringIO(t)))
+    if not rows:
+        return t
+    drop = [i for i, name in enumerate(rows[0]) if IGNORED_KEYS.match(name)]
+    for r in rows[1:]:
+        for i in drop:
+            if i < len(r):
+                r[i] = "<ignored>"
+    return "\n".join(",".join(r) for r in rows)
 
 
 def _mask_json_lines(t: str) -> str:
