@@ -265,20 +265,18 @@ def _lag_raw(px, py, masses, charges, n, zr, zi, sr, si, out):
         out[b] = math.atan2(si[b], sr[b])
 
 
-@njit(cache=True)
 def lag_phases(pos, masses, charges, n):
     """Phase of the order-n moment about the centre of mass for every
-    trajectory of ``pos`` (3, N, T); used to start the lag tracking."""
-    n_ions = pos.shape[1]
+    trajectory of ``pos`` (3, N, T); used to start the lag tracking. Plain
+    Python around the stepper's own compiled :func:`_lag_raw`, with the
+    argument types the stepper calls it with (one compilation serves both)."""
     T = pos.shape[2]
-    px = np.empty((n_ions, T))
-    py = np.empty((n_ions, T))
-    for i in range(n_ions):
-        for b in range(T):
-            px[i, b] = pos[0, i, b]
-            py[i, b] = pos[1, i, b]
+    px = np.ascontiguousarray(pos[0], dtype=np.float64)
+    py = np.ascontiguousarray(pos[1], dtype=np.float64)
+    masses = np.ascontiguousarray(masses, dtype=np.float64)
+    charges = np.ascontiguousarray(charges, dtype=np.float64)
     out = np.empty(T)
-    _lag_raw(px, py, masses, charges, n, np.empty(T), np.empty(T), np.empty(T), np.empty(T), out)
+    _lag_raw(px, py, masses, charges, int(n), np.empty(T), np.empty(T), np.empty(T), np.empty(T), out)
     return out
 
 
