@@ -804,7 +804,10 @@ class _Stepper:
         self.ph_c, self.ph_s = np.cos(ph), np.sin(ph)
         # the exact propagator: each trajectory's RF phase in lattice steps, and the kicks' model without the
         # linear trap force (it is in the propagator's maps)
-        self.ph_idx = np.rint(ph / (TWO_PI / plan.rf_steps)).astype(np.int64) % plan.rf_steps
+        lattice = ph / (TWO_PI / plan.rf_steps)
+        self.ph_idx = np.rint(lattice).astype(np.int64) % plan.rf_steps
+        # phases off the lattice (given by a caller, not drawn by plan.rf_phases) have no precomputed maps
+        self.on_lattice = bool(np.all(np.abs(lattice - np.rint(lattice)) <= 1e-9 * np.maximum(1.0, np.abs(lattice))))
         w2, rf2, *rest = self.model
         self.kick_model = (np.zeros_like(w2), np.zeros_like(rf2), *rest)
 
@@ -866,9 +869,10 @@ class _Stepper:
         """The lattice index (mod rf_steps) of a block's first step in
         ``stage`` when the exact propagator applies (RF run, dt = T_RF /
         rf_steps, the block starting a whole number of steps after the
-        stage's start), else None (the fine-step path)."""
+        stage's start, every trajectory's RF phase on the lattice), else None
+        (the fine-step path)."""
         plan = self.plan
-        if not (plan.rf and plan.rf_exact):
+        if not (plan.rf and plan.rf_exact and self.on_lattice):
             return None
         K = plan.rf_steps
         if abs(dt * plan.f_drive_hz * K - 1.0) > 1e-9:
