@@ -53,6 +53,7 @@ the exact sub-step times.
 from __future__ import annotations
 
 import math
+import os
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
@@ -783,10 +784,13 @@ _POOLS: dict = {}
 
 def _pool(threads: int) -> ThreadPoolExecutor:
     """The process's pool of ``threads`` worker threads for :func:`advance`
-    (one per thread count asked, kept for the next block)."""
-    if threads not in _POOLS:
-        _POOLS[threads] = ThreadPoolExecutor(max_workers=threads, thread_name_prefix="mdrotor-kernel")
-    return _POOLS[threads]
+    (one per thread count asked, kept for the next block). Keyed by the
+    process id too: a process forked from one that had a pool inherits the
+    pool object but not its threads, and would wait on it for ever."""
+    key = (os.getpid(), threads)
+    if key not in _POOLS:
+        _POOLS[key] = ThreadPoolExecutor(max_workers=threads, thread_name_prefix="mdrotor-kernel")
+    return _POOLS[key]
 
 
 @njit(cache=True, nogil=True)

@@ -342,6 +342,46 @@ def test_feature_off_as_none_gives_the_same_bits():
         assert np.array_equal(a, b)
 
 
+def test_kernel_threads_in_a_forked_process():
+    """A process forked after a run on two threads (multiprocessing's
+    default start method on Linux) steps on two threads too, with the
+    parent's bits: the kernel's thread pool belongs to the process that
+    made it (common practice, no source: a forked child inherits no
+    threads). A hang is the failure, hence the timeout."""
+    import json
+    import subprocess
+    import sys
+
+    d = base(2, initial={"temperature": "0.5 mK", "wigner": True})
+    script = f"""
+import json, multiprocessing as mp, numpy as np, mdrotor
+cfg = mdrotor.load_config(json.loads({json.dumps(json.dumps(d))}))
+def final(_=None):
+    r = mdrotor.run(cfg, trajectories=64, chunk=16, threads=2)
+    assert r.attrs["threads"] == 2
+    return r.final.arrays
+a = final()
+with mp.get_context("fork").Pool(1) as pool:
+    b = pool.apply(final)
+for k, v in a.items():
+    assert np.array_equal(v, b[k], equal_nan=True), k
+print("same bits")
+"""
+    import os
+    import signal
+
+    env = dict(os.environ, NUMBA_NUM_THREADS="2")
+    proc = subprocess.Popen([sys.executable, "-c", script], env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True, start_new_session=True)
+    try:
+        out, err = proc.communicate(timeout=240)
+    except subprocess.TimeoutExpired:
+        os.killpg(proc.pid, signal.SIGKILL)  # the forked child too
+        proc.communicate()
+        raise AssertionError("the forked process did not finish its run in 240 s") from None
+    assert proc.returncode == 0 and "same bits" in out, err
+
+
 def test_thread_count_independence(tmp_path):
     """Bit-identical /final arrays with NUMBA_NUM_THREADS = 1 and 2."""
     import subprocess
