@@ -15,7 +15,10 @@ Fractions (slipped, lost, reordered, non-finite) get one kind of interval:
 the Wilson score interval at the one-sigma level (68.27 %), E.B. Wilson,
 J. Am. Stat. Assoc. 22, 209 (1927), as recommended over the Wald and the
 exact interval by A. Agresti and B.A. Coull, Am. Stat. 52, 119 (1998);
-computed by ``scipy.stats.binomtest(k, n).proportion_ci(method="wilson")``.
+computed in closed form as R.G. Newcombe, Stat. Med. 17, 857 (1998) writes
+it (method 3), the same operations as ``scipy.stats.binomtest(k,
+n).proportion_ci(method="wilson")``, without importing scipy.stats (0.65 s
+of every run's start-up).
 Unlike p +- sqrt(p (1 - p) / n) it stays inside [0, 1] and has a width when
 no event (or every event) was seen.
 """
@@ -68,13 +71,19 @@ def fraction_interval(k: int, n: int, confidence: float = ONE_SIGMA) -> tuple[fl
 
     Returns ``(p, lo, hi)``; ``n`` must be positive.
     """
-    from scipy.stats import binomtest
+    from scipy.special import ndtri
 
     k, n = int(k), int(n)
     if n < 1 or not 0 <= k <= n:
         raise ValueError(f"fraction_interval needs 0 <= k <= n and n >= 1, got k = {k}, n = {n}")
-    ci = binomtest(k, n).proportion_ci(confidence_level=confidence, method="wilson")
-    return k / n, float(ci.low), float(ci.high)
+    p = k / n
+    z = ndtri(0.5 + 0.5 * confidence)   # the two-sided normal quantile
+    denom = 2 * (n + z**2)
+    center = (2 * n * p + z**2) / denom
+    delta = z / denom * math.sqrt(4 * n * p * (1 - p) + z**2)
+    lo = 0.0 if k == 0 else center - delta
+    hi = 1.0 if k == n else center + delta
+    return p, float(lo), float(hi)
 
 
 def fraction(flags: np.ndarray) -> dict:

@@ -39,6 +39,18 @@ def test_fraction_interval_is_wilsons(k, n):
     assert 0.0 <= lo <= p <= hi <= 1.0 and hi > lo
 
 
+def test_fraction_interval_has_scipys_bits():
+    """The closed form (R.G. Newcombe, Stat. Med. 17, 857 (1998), method 3)
+    is written with the operations of scipy.stats.binomtest(k,
+    n).proportion_ci(method="wilson"), so results match the ones it gave
+    before to the last bit, at one and two sigma and 95 %."""
+    for conf in (stats.ONE_SIGMA, sps.norm.cdf(2) - sps.norm.cdf(-2), 0.95):
+        for n in (1, 2, 7, 40, 97, 400, 1000, 4096):
+            for k in sorted({0, 1, n // 3, n // 2, n - 1, n}):
+                ci = sps.binomtest(k, n).proportion_ci(confidence_level=conf, method="wilson")
+                assert stats.fraction_interval(k, n, conf)[1:] == (ci.low, ci.high), (k, n, conf)
+
+
 def test_fraction_interval_at_two_sigma():
     # Wilson (1927) with z = 2 (95.45 %)
     conf = sps.norm.cdf(2) - sps.norm.cdf(-2)
