@@ -14,7 +14,7 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-from .errors import InputError
+from mdrotor.errors import InputError
 
 __all__ = ["read_text", "open_hdf5"]
 

@@ -15,7 +15,7 @@ import math
 import re
 from functools import lru_cache
 
-from .errors import InputError
+from mdrotor.errors import InputError
 
 # Dimension name -> (pint dimensionality expression, example for messages)
 DIMENSIONS = {

@@ -23,8 +23,8 @@ import warnings
 import numpy as np
 from scipy import constants as sc
 
-from mdrotor import stability
-from mdrotor.statics import Potential, compute_crystal, find_equilibrium
+from mdrotor.physics import stability
+from mdrotor.physics.statics import Potential, compute_crystal, find_equilibrium
 
 M = 40 * sc.atomic_mass
 Q = sc.e

@@ -142,3 +142,11 @@ def assert_identical(a, b, where: str) -> None:
         assert isinstance(b, float) and np.isnan(b), where
     else:
         assert a == b, where
+
+
+# a weakly pinned pair released into free rotation: the quantum rotor's tests and its figure
+WEAK_PAIR = two_ion_toml(
+    pinning={"order": 2, "strength": "1700 V/m^2"},
+    stage=[{"name": "release", "duration": "0.25 ms", "pinning": {"to": 0.0, "shape": "cosine"}},
+           {"name": "free", "duration": "0.05 ms"}],
+    initial={"temperature": "0 K", "occupations": {"libration": 20}}, run={"trajectories": 400, "seed": 5})

@@ -13,11 +13,11 @@ import re
 from pathlib import Path
 
 import pytest
-
-from mdrotor import config, noise
-from mdrotor.errors import InputError
-
 from conftest import ROOT, two_ion_config
+
+from mdrotor.config import noise as noise_keys
+from mdrotor.config import parse as config
+from mdrotor.errors import InputError
 
 DOCS = ROOT / "docs"
 CONFIG_DOC = DOCS / "config.md"
@@ -68,12 +68,12 @@ def test_profile_keys_are_documented():
 def test_noise_keys_are_documented():
     text = CONFIG_DOC.read_text()
     missing = []
-    for table, keys in (("field", noise.ENTRY_KEYS), ("multipole", noise.MULTIPOLE_KEYS), ("tone", noise.TONE_KEYS)):
+    for table, keys in (("field", noise_keys.ENTRY_KEYS), ("multipole", noise_keys.MULTIPOLE_KEYS), ("tone", noise_keys.TONE_KEYS)):
         if f"`[[noise.{table}]]`" not in text:
             missing.append(f"[[noise.{table}]]")
         missing += [f"noise.{table}.{k}" for k in sorted(keys) if not _documented(text, f"noise.{table}.{k}")]
     terms = text.split("PSD terms", 1)[1].split("`[[noise.tone]]`", 1)[0]
-    for kind, keys in noise.TERM_KEYS.items():
+    for kind, keys in noise_keys.TERM_KEYS.items():
         if f'`"{kind}"`' not in terms:
             missing.append(f"kind {kind!r}")
         missing += [f"psd term key {k!r}" for k in sorted(keys) if not _documented(terms, k)]

@@ -3,8 +3,7 @@
 Gapless-plane electrostatics of rectangle and polygon electrodes, layout
 files, the RF pseudopotential, multipole expansions at the trap point,
 voltage solves for static targets and rotating in-plane multipoles, the
-design check of a layout against a run's crystal in the full electrode
-field, and the export of the voltages over a run's schedule.
+export of the voltages over a run's schedule.
 
 Modules
 -------
@@ -12,12 +11,10 @@ polygons    planar geometry: simplicity, triangulation, overlap areas
 potentials  solid angles (House; Van Oosterom-Strackee), fields, Hessians
 layout      Electrode, Layout, TOML files and their validation
 pseudo      RF pseudopotential: null, secular frequencies, q, depth
-multipoles  real solid-harmonic fit, in-plane coefficients k_n
+harmonic_fit  real solid-harmonic fit, in-plane coefficients k_n
 solve       voltages for static targets and rotating order-n pinning
-dynamics    a layout's voltage plan as a polynomial potential for the run
-check       design check: crystal, pinning, libration, slip margin in the full field
+polynomial  a layout's voltage plan as a polynomial potential for the run
 waveform    electrode voltages versus time over a schedule (CSV, HDF5)
-command     the ``mdrotor electrodes`` command
 
 Typical use::
 
@@ -28,8 +25,8 @@ Typical use::
     plan = solve_rotating(lay, 3, 2e10, table=table)  # c_3 in V/m^3
     plan.voltages_at(theta_rad)                    # V per channel
 
-    from mdrotor.config import load_config
-    from mdrotor.electrodes import design_check, check_text
+    from mdrotor.config.parse import load_config
+    from mdrotor.studies.design_check import design_check, check_text
     print(check_text(design_check(lay, load_config("configs/electrodes/ring8_triangle3_run.toml"))))
 
 The names are loaded on first use (PEP 562), so that importing the command
@@ -42,11 +39,10 @@ from importlib import import_module
 _WHERE = {
     "layout": ("Electrode", "Layout", "load_layout", "parse_layout", "rectangle", "polygon", "sector", "annulus",
                "disc", "ring_segments"),
-    "multipoles": ("MultipoleTable", "fit_multipoles", "fit_potential", "harmonic_terms", "solid_harmonics",
+    "harmonic_fit": ("MultipoleTable", "fit_multipoles", "fit_potential", "harmonic_terms", "solid_harmonics",
                    "sphere_rule", "field_terms", "hessian_terms", "inplane_terms", "pinning_orders"),
     "pseudo": ("NullResult", "PseudoTrap", "find_rf_null", "pseudo_energy_j", "rf_pseudopotential"),
     "solve": ("CAUTION", "StaticSolution", "RotatingPlan", "solve_static", "solve_rotating"),
-    "check": ("design_check", "check_text", "prepare_design", "rigid_scan", "RFPseudoTerm", "ElectrodeTerm"),
     "waveform": ("write_waveform", "waveform_voltages"),
 }
 _NAME_TO_MODULE = {name: mod for mod, names in _WHERE.items() for name in names}

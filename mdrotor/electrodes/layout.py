@@ -76,11 +76,13 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
-from ..inputfiles import read_text
-from .. import units as _units
-from . import polygons as _poly
-from .potentials import PlaneElectrodes
+from mdrotor import units as _units
+from mdrotor.electrodes import polygons as _poly
+from mdrotor.electrodes.potentials import PlaneElectrodes
+from mdrotor.electrodes.pseudo import find_rf_null
+from mdrotor.errors import InputError
+from mdrotor.inputfiles import read_text
+from mdrotor.physics.species import get_species
 
 __all__ = [
     "Electrode",
@@ -326,7 +328,6 @@ class Layout:
                 raise InputError(self._keys.get("trap", "trap.point"), f"expected [x, y, z] or 'rf_null', got {trap_point_m!r}", self.source)
             if not self.rf_channels:
                 raise InputError(self._keys.get("trap", "trap.point"), "'rf_null' needs at least one electrode with role = 'rf'", self.source)
-            from .pseudo import find_rf_null
 
             self.trap_point_m = None
             res = find_rf_null(self, guess_m=self.guess_m)
@@ -729,12 +730,7 @@ def parse_layout(data: dict, source: str = "<dict>") -> Layout:
     fd = _units.parse(rf["f_drive"], "frequency", "rf.f_drive", source) if "f_drive" in rf else None
     species = rf.get("species")
     if species is not None:
-        try:
-            from ..species import get_species
-        except ImportError:  # species table not available: keep the name
-            pass
-        else:
-            get_species(species, key="rf.species", source=source)
+        get_species(species, key="rf.species", source=source)
     design = _read_design(data.get("design", {}), source)
     name = lay.get("name", Path(source).stem)
     return Layout(electrodes, point_m, guess_m=guess, name=name, description=lay.get("description", ""), source=source,

@@ -61,7 +61,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..errors import InputError
+from mdrotor.errors import InputError
 
 __all__ = [
     "check_points",

@@ -35,7 +35,8 @@ import numpy as np
 from scipy.constants import e as _E_CHARGE
 from scipy.optimize import least_squares
 
-from ..errors import InputError
+from mdrotor.errors import InputError
+from mdrotor.physics.species import get_species
 
 __all__ = ["NullResult", "PseudoTrap", "find_rf_null", "rf_pseudopotential", "pseudo_energy_j"]
 
@@ -357,7 +358,6 @@ def rf_pseudopotential(layout, v_rf=None, f_drive_hz=None, mass_kg=None, charge_
         name = species or layout.species
         if name is None:
             raise InputError("rf.species", "expected mass_kg and charge_c, or a species such as '40Ca+'", src)
-        from ..species import get_species
 
         sp = get_species(name, key="rf.species", source=src)
         mass_kg = sp.mass_kg if mass_kg is None else mass_kg

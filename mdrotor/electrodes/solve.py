@@ -2,7 +2,7 @@
 
 Potentials are linear in the electrode voltages, so the multipole
 coefficients at the trap point are C = M V with M the per-volt table of
-:func:`mdrotor.electrodes.multipoles.fit_multipoles` (dc channels only; rf
+:func:`mdrotor.electrodes.harmonic_fit.fit_multipoles` (dc channels only; rf
 electrodes sit at dc ground). Targets and unwanted terms are compared as
 the rms potential they make on a sphere of the crystal's radius rho,
 |C_lm| rho^l s_lm (s_lm the rms of S_lm on the unit sphere): this puts a
@@ -46,8 +46,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.optimize import lsq_linear
 
-from ..errors import InputError
-from .multipoles import MultipoleTable, fit_multipoles
+from mdrotor.electrodes.harmonic_fit import MultipoleTable, fit_multipoles
+from mdrotor.errors import InputError
 
 __all__ = ["StaticSolution", "RotatingPlan", "solve_static", "solve_rotating", "lacking_terms", "CAUTION"]
 
@@ -211,9 +211,9 @@ def solve_static(layout, targets: dict, *, table: MultipoleTable | None = None, 
     ----------
     layout : Layout
     targets : dict (l, m) -> float
-        Target coefficients in V/m^l (see :func:`~mdrotor.electrodes.multipoles.field_terms`
-        for a compensation field, :func:`~mdrotor.electrodes.multipoles.hessian_terms`
-        for a static curvature, :func:`~mdrotor.electrodes.multipoles.inplane_terms`
+        Target coefficients in V/m^l (see :func:`~mdrotor.electrodes.harmonic_fit.field_terms`
+        for a compensation field, :func:`~mdrotor.electrodes.harmonic_fit.hessian_terms`
+        for a static curvature, :func:`~mdrotor.electrodes.harmonic_fit.inplane_terms`
         for an in-plane multipole).
     table : MultipoleTable, optional
         Per-channel fit (default: :func:`fit_multipoles` about the trap point).

@@ -43,8 +43,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
-from .solve import CAUTION
+from mdrotor.electrodes.solve import CAUTION
+from mdrotor.errors import InputError
 
 __all__ = ["waveform_voltages", "write_waveform", "LIMIT_RTOL", "MAX_VALUES"]
 
@@ -82,7 +82,7 @@ def write_waveform(path, layout, plan, cfg, rate_hz: float, *, allow_over: bool 
         ``*.csv``, ``*.h5`` or ``*.hdf5``.
     layout : Layout
     plan : RotatingPlan
-    cfg : mdrotor.config.Config
+    cfg : mdrotor.config.parse.Config
         Run config with a schedule; its pinning term ``term`` gives the
         angle offset and the multiplier.
     rate_hz : float

@@ -1,0 +1,5 @@
+"""The command line: argument parsing and text rendering only, one module per command.
+
+main          the parser and dispatch (`mdrotor ...`)
+crystal, run, rotor, compare_trap, quantum, sweep, optimize, report, electrodes: one command each
+"""
