@@ -3,7 +3,7 @@
 
 What is measured, all in one run:
 
-1. Trajectory-steps per second per core of :func:`mdrotor.kernels.advance`
+1. Trajectory-steps per second per core of :func:`mdrotor.engine.kernels.advance`
    (pseudopotential trap, rotating multipole pinning on, velocity Verlet,
    one thread) for N = 2, 4, 8, 16 and 30 ions, with and without lag
    tracking, and the cost per ion pair and step for N >= 4, beside the
@@ -87,7 +87,9 @@ sys.path.insert(0, str(ROOT))
 import numba  # noqa: E402
 
 import mdrotor  # noqa: E402
-from mdrotor import engine, kernels  # noqa: E402
+from mdrotor.engine import integrate as engine
+from mdrotor.engine import kernels
+from mdrotor.engine.noise import kernel_state  # noqa: E402
 
 TWO_PI = 2.0 * np.pi
 
@@ -322,7 +324,7 @@ def kernel_run(plan, pos, vel, duration_s: float, integrator: str, refine: int, 
 
 
 def auto_chunk(n_traj: int, threads: int) -> int:
-    """mdrotor.runner's automatic chunk: about four work items per thread."""
+    """mdrotor.engine.run's automatic chunk: about four work items per thread."""
     return int(np.clip(n_traj // (4 * threads), 32, 256))
 
 
@@ -643,7 +645,7 @@ def bench_engine(label, raw, n_traj, n_steps, repeats, threads, seed=1) -> dict:
     """Steps of the whole engine (engine._Stepper: schedule sampling, noise
     synthesis, laser kicks, kernel), as a run does them, on ``threads``
     threads."""
-    from mdrotor.config import from_dict
+    from mdrotor.config.parse import from_dict
 
     numba.set_num_threads(threads)
     cfg = from_dict(raw, label, base_dir=ROOT / "configs")
@@ -653,7 +655,7 @@ def bench_engine(label, raw, n_traj, n_steps, repeats, threads, seed=1) -> dict:
     phases = plan.rf_phases(seed, idx) if plan.rf else None
     best = best_cpu = math.inf
     for r in range(repeats + 1):  # the first call compiles
-        noise_state = plan.noise.kernel_state(seed, idx) if plan.noise is not None else None
+        noise_state = kernel_state(plan.noise, seed, idx) if plan.noise is not None else None
         stepper = engine._Stepper(plan, n_traj, auto_chunk(n_traj, threads), phases, noise_state,
                                   laser_keys=engine.laser_keys(seed, idx) if plan.lasers else None)
         pos, vel = pos0.copy(), vel0.copy()
@@ -710,7 +712,7 @@ class _FineStepPath:
 def _timed_run(raw, label):
     """One run on one thread (compiled kernels warmed up by a first short call):
     (Result, CPU seconds of the integration, wall seconds)."""
-    from mdrotor.config import from_dict
+    from mdrotor.config.parse import from_dict
 
     cfg = from_dict(raw, label, base_dir=ROOT / "configs")
     c0 = time.process_time()
@@ -818,7 +820,8 @@ def rf_markdown(rf: dict) -> str:
 
 def bench_quantum(repeats: int) -> dict:
     """Build and propagate the quantum rotor of configs/quantum_pair.toml (best of repeats)."""
-    from mdrotor import quantum_build, quantum_rotor
+    from mdrotor.model import quantum as quantum_build
+    from mdrotor.physics import quantum_rotor
 
     cfg = mdrotor.load_config(ROOT / "configs" / "quantum_pair.toml")
     best = None
@@ -995,16 +998,6 @@ def markdown(result) -> str:
                      f"{r['rate']:.3g} | {r['rate_per_core']:.3g} | {r['physical_time_per_s'] * 1e6:.3g} us | "
                      f"{r['cpu_ns_per_traj_step']:.3g} |")
         L.append("")
-    rf = result.get("rf")
-    if rf:
-        prop = rf["cost"][1]
-        add(f"RF demo run ({prop['case']}): CPU time <= 4x the pseudopotential run", prop["cpu_over_pseudo"],
-            TARGET_RF_OVER_PSEUDO, False)
-        default = next((r for r in rf["accuracy"] if r["case"] == f"T_RF / {engine.RF_PROPAGATOR_STEPS}"), None)
-        if default:
-            worst = max(default[f"{q}_diff_over_sem"] for q in ("L", "differential", "com"))
-            add(f"RF at T_RF / {engine.RF_PROPAGATOR_STEPS}: L and phonons within their statistical error of the "
-                f"T_RF / {RF_REFERENCE_STEPS} reference (|diff| / sem <= 1)", worst, 1.0, False)
     q = result.get("quantum")
     if q:
         L.append("| quantum rotor (build + propagate) | CPU | of which build | wall | steps | state columns | "
@@ -1067,7 +1060,7 @@ def bench_dask(n_traj: int, repeats: int) -> dict:
     workers / chunks (task round trip, initial state, observations, merge)."""
     from distributed import LocalCluster
 
-    from mdrotor.config import from_dict
+    from mdrotor.config.parse import from_dict
 
     cfg = from_dict(dask_case(), "dask case", base_dir=ROOT / "configs")
     tiny_raw = dask_case()
