@@ -40,7 +40,7 @@ SPIN_ASSUMPTION = ("identical ions, all in one internal (electronic and nuclear 
 
 
 def _from_result(res, path):
-    cfg = from_text(res.attrs["config_text"], str(path))
+    cfg = from_text(res.attrs["config_text"], str(path), res.attrs.get("config_dir"))
     s = res.summary
     if "L_mean_hbar" not in s or "f_rot_mean_hz" not in s:
         raise InputError("/summary", f"no statistics in this result: none of its {s.get('n_trajectories', '?')} trajectories "

@@ -110,6 +110,7 @@ class Config:
     noise: NoiseModel | None = None
     lasers: tuple = ()
     raw: dict = field(default_factory=dict, repr=False)
+    base_dir: str | None = None  # the folder relative paths (layouts, ramp tables) are read from
 
     @property
     def n_ions(self) -> int:
@@ -522,13 +523,14 @@ def _observe(raw, source) -> Observe:
     return Observe(lr, si_s)
 
 
-def from_text(text: str, source: str = "<text>") -> Config:
-    """The Config of a config's TOML text as a result file stores it (``config_text``)."""
+def from_text(text: str, source: str = "<text>", base_dir=None) -> Config:
+    """The Config of a config's TOML text as a result file stores it (``config_text``); relative
+    paths in it (layouts, ramp tables) are read from ``base_dir`` (the result's ``config_dir``)."""
     try:
         raw = tomllib.loads(str(text))
     except tomllib.TOMLDecodeError as e:
         raise InputError("config_text", f"expected the TOML text of a run config ({e})", source) from None
-    return from_dict(raw, source)
+    return from_dict(raw, source, base_dir)
 
 
 def from_dict(raw: dict, source: str = "<dict>", base_dir=None) -> Config:
@@ -551,7 +553,7 @@ def from_dict(raw: dict, source: str = "<dict>", base_dir=None) -> Config:
     cfg = Config(source=source, text=_dump(raw), species=species, trap=trap, pinning=pinning, schedule=schedule,
                  initial=_initial(raw, source), run=_run(raw, source), observe=_observe(raw, source),
                  f_start_hz=f_start, search_seed=_int(raw["crystal"].get("search_seed", 0), "crystal.search_seed", source, 0),
-                 noise=noise, lasers=_lasers(raw, species, schedule, source), raw=raw)
+                 base_dir=str(Path(base_dir).resolve()) if base_dir is not None else None, noise=noise, lasers=_lasers(raw, species, schedule, source), raw=raw)
     _check_rotation(cfg)
     return cfg
 

@@ -108,6 +108,7 @@ def run(cfg, *, trajectories: int | None = None, seed: int | None = None, thread
         "package_version": __version__,
         "config_text": cfg.text,
         "config_source": cfg.source,
+        **({"config_dir": cfg.base_dir} if cfg.base_dir is not None else {}),
         "seed": np.uint64(seed),
         "dt_s": plan.dt_s,
         "n_steps": plan.n_steps,

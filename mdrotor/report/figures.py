@@ -251,7 +251,7 @@ def _ladder(res):
     :func:`mdrotor.physics.rotor.allowed_L_ladder`), or None when the config cannot
     be read back."""
     try:
-        lad = config_ladder(from_text(res.attrs["config_text"], "<result>"))
+        lad = config_ladder(from_text(res.attrs["config_text"], "<result>", res.attrs.get("config_dir")))
     except (KeyError, InputError, PhysicsError):
         return None
     return lad.modulus, lad.residue, lad.statistics, lad.symmetry_order

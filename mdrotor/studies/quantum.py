@@ -14,8 +14,10 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
+import numpy as np
+
 from mdrotor.analysis.quantum_compare import compare
-from mdrotor.config.parse import from_dict, load_config
+from mdrotor.config.parse import from_text, load_config
 from mdrotor.engine.run import run
 from mdrotor.errors import InputError
 from mdrotor.model.quantum import build
@@ -40,13 +42,8 @@ def number_in_range(text, key, lo, hi):
 
 
 def _ensemble_from_result(path):
-    import tomllib
-
-    import numpy as np
-
-
     res = load_result(path)
-    cfg = from_dict(tomllib.loads(res.attrs["config_text"]), str(path))
+    cfg = from_text(res.attrs["config_text"], str(path), res.attrs.get("config_dir"))
     out = {}
     for name, obs in [("initial", res.initial), *res.stages.items()]:
         if obs is None:

@@ -73,3 +73,19 @@ def test_rotor_bad_options(tmp_path, capsys):
     assert main(["rotor", str(bad)]) == 2
     err = capsys.readouterr().err
     assert "noise.multipole" in err and "level" in err
+
+
+def test_rotor_of_a_layout_run_reads_the_layout_beside_the_config(tmp_path, monkeypatch, capsys):
+    """A result keeps the folder its config read relative files from (config_dir): `rotor` on the
+    result of a layout-pinned run works from any working directory (it failed with 'pinning.layout ...
+    is not a file' when the path was taken relative to the result file)."""
+    from conftest import CONFIGS
+
+    out = tmp_path / "elsewhere" / "lay.h5"
+    out.parent.mkdir()
+    assert main(["run", str(CONFIGS / "layout_string2.toml"), "-o", str(out), "--trajectories", "2", "--quiet"]) == 0
+    monkeypatch.chdir(tmp_path)
+    capsys.readouterr()
+    assert main(["rotor", str(out), "--json"]) == 0
+    d = json.loads(capsys.readouterr().out)
+    assert d["source_kind"] == "result" and d["moment_of_inertia_kg_m2"] > 0
