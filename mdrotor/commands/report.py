@@ -8,7 +8,8 @@ import json
 import numpy as np
 
 from mdrotor.errors import InputError
-from mdrotor.report.figures import FORMATS, PLOT_EXTRA, SUMMARY_FORMATS, write_report
+from mdrotor.report.inputs import PLOT_EXTRA
+from mdrotor.report.page import FORMATS, SUMMARY_FORMATS, write_report
 
 
 # ---------------------------------------------------------------------------

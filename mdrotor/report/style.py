@@ -1,4 +1,4 @@
-"""The look of mdrotor's figures (used by :mod:`mdrotor.report.figures`).
+"""The look of mdrotor's figures (used by every figure of :mod:`mdrotor.report`).
 
 Made for a lab-log page and a black-and-white printer:
 

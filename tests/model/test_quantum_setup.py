@@ -289,11 +289,13 @@ def test_report_draws_P_of_L_beside_the_ensemble(quantum_file, tmp_path):
     # L, the ensemble points are counts / N at the histogram's L shifted as
     # compared (quantum_compare), with sqrt(counts) / N error bars (Poisson
     # counting, common practice, no source); the verdict is written under it.
-    from mdrotor.report import figures as report
+    from mdrotor.report.inputs import file_kind
+    from mdrotor.report.page import write_report
+    from mdrotor.report.quantum_figure import quantum_figure
 
     out, d, _ = quantum_file
-    assert report.file_kind(out) == "quantum"
-    fig = report.quantum_figure(out)
+    assert file_kind(out) == "quantum"
+    fig = quantum_figure(out)
     axs = [ax for ax in fig.axes if ax.get_visible()]
     assert len(axs) == 3
     # Wide distributions are drawn in groups of neighbouring allowed L: each
@@ -319,7 +321,7 @@ def test_report_draws_P_of_L_beside_the_ensemble(quantum_file, tmp_path):
             inside = np.abs(hL - xi) < 0.5 * width
             assert yi == pytest.approx(c[inside].sum() / e["n"], rel=1e-12)
     assert d["verdict"].upper() in fig.get_supxlabel()
-    rep = report.write_report(out, tmp_path / "rep")
+    rep = write_report(out, tmp_path / "rep")
     assert rep["kind"] == "quantum" and [p.rsplit("/", 1)[1] for p in rep["figures"]] == ["quantum_P_L.png"]
     assert d["verdict"] in (tmp_path / "rep" / "summary.md").read_text()
 

@@ -20,8 +20,10 @@ from matplotlib.text import Text
 from test_report import BASE, NOISE, SERIES, _sweep, _toml
 
 import mdrotor
-from mdrotor.report import figures as report
 from mdrotor.report import style as plotstyle
+from mdrotor.report.quantum_figure import quantum_figure
+from mdrotor.report.run_figures import MAX_CURVES, phonons_figure, run_figures, schedule_figure, series_figure
+from mdrotor.report.study_figures import optimize_figure, sweep_figures
 
 SLACK_PX = 0.5
 
@@ -217,7 +219,7 @@ def run(tmp_path_factory):
 
 
 def test_every_run_figure_is_readable(run):
-    figs, skipped = report.run_figures(run)
+    figs, skipped = run_figures(run)
     assert not skipped
     for name, fig in figs.items():
         try:
@@ -233,7 +235,7 @@ def test_narrow_stages_keep_their_names_apart(run):
     t_end = res.schedule["stage_bounds_s"][-1]
     res.schedule = dict(res.schedule, stage_bounds_s=np.array([0, 0.5, 0.505, 0.51, 0.515, 1.0]) * t_end,
                         stage_names=["spin-up", "hold-a", "hold-b", "kick", "free rotation"])
-    fig = report.schedule_figure(res)
+    fig = schedule_figure(res)
     assert_readable(fig)
     top = fig.axes[0]
     r = _drawn(fig)
@@ -248,7 +250,7 @@ def test_series_styles_distinct(tmp_path, configs_dir):
         "stage.spin-up.duration='10 us'", "stage.spin-up.f_rot.to='20 kHz'", "stage.release.duration='5 us'",
         "run.trajectories=6", "observe.series_interval='1 us'"])
     res = mdrotor.run(cfg)
-    fig = report.series_figure(res)
+    fig = series_figure(res)
     modes = fig.axes[-1]
     lines = [ln for ln in modes.get_lines() if not ln.get_label().startswith("_")]
     assert len(lines) > 6
@@ -275,17 +277,17 @@ def _many_modes(res, n_modes=90, n_rows=30):
 
 def test_thirty_ion_crystal_is_grouped_and_labelled_clearly(run):
     res = _many_modes(mdrotor.load(run))
-    fig = report.series_figure(res)
+    fig = series_figure(res)
     modes = fig.axes[-1]
     lines = [ln for ln in modes.get_lines() if not ln.get_label().startswith("_")]
-    assert len(lines) <= report.MAX_CURVES
+    assert len(lines) <= MAX_CURVES
     assert len({_style_of(ln) for ln in lines}) == len(lines)
     band = [c for c in modes.collections if c.get_label().endswith("other modes (lowest to highest)")]
     assert len(band) == 1 and band[0].get_label().startswith(f"{90 - len(lines)} ")
     # the hottest modes are the ones drawn (made-up means rise with the column index)
     assert {ln.get_label() for ln in lines} == set(res.final.modes["label"][-len(lines):])
     assert_readable(fig)
-    fig = report.phonons_figure(res)
+    fig = phonons_figure(res)
     assert_tick_labels_clear(fig)
     assert_headings_clear(fig)
 
@@ -298,22 +300,22 @@ def test_mode_frame_in_headings(run):
     # as stored by the run (attributes frame, frame_f_rot_hz of the modes group, on the Observation)
     assert res.final.frame in ("lab", "rotating")
     res.final.frame, res.final.frame_f_rot_hz = "rotating", 199.3e3
-    fig = report.phonons_figure(res)
+    fig = phonons_figure(res)
     assert "rotating frame, 199.3 kHz" in fig.get_suptitle() and "rotating frame, 199.3 kHz" in fig.get_supxlabel()
     res.final.frame = "lab"
-    assert "lab frame" in report.phonons_figure(res).get_suptitle()
+    assert "lab frame" in phonons_figure(res).get_suptitle()
     # without the attributes (older files): at t = 0 the pinning stands still, so the modes are the lab frame's
     # (mdrotor.engine.observe.pinned_frame measures a pinned crystal in the pinning's frame)
     res = mdrotor.load(run)
     for o in [res.initial, *res.stages.values()]:
         o.frame = None
-    assert "lab frame" in report.phonons_figure(res, stage="initial").get_suptitle()
+    assert "lab frame" in phonons_figure(res, stage="initial").get_suptitle()
     # free after release: the crystal's own rotation, its mean f_rot
     f = res.final.summary["f_rot_mean_hz"]
     want = f"rotating frame, {float(f'{f / 1e3:.4g}'):g} kHz"
-    assert want in report.phonons_figure(res).get_suptitle()
+    assert want in phonons_figure(res).get_suptitle()
     # the time series names the frames of its mode panel
-    note = report.series_figure(res).axes[-1].get_title(loc="right").replace("\n", " ")
+    note = series_figure(res).axes[-1].get_title(loc="right").replace("\n", " ")
     assert "pinning's rotating frame" in note and f"'free': {want}" in note
 
 
@@ -333,20 +335,20 @@ def test_axis_scale_follows_the_spacing():
     vals = np.geomspace(1e5, 4e5, 4)
     t = _table({"pinning.strength": ([f"{v:.6g} V/m^2" for v in vals], vals)},
                {"L_std_hbar": np.arange(4.0)}, {"kind": "sweep", "combine": "grid", "base_config_text": BASE})
-    ax = report.sweep_figures(t, metrics="L_std_hbar")[0].axes[0]
+    ax = sweep_figures(t, metrics="L_std_hbar")[0].axes[0]
     assert ax.get_xscale() == "log" and ax.get_xlabel() == "pinning c₂ (V/m²)"
     # ... evenly spaced ones on a linear axis, even over two decades
     vals = np.linspace(1e-6, 100e-6, 5)
     t = _table({"stage.spin-up.duration": ([f"{v * 1e6:.6g} us" for v in vals], vals)},
                {"L_std_hbar": np.arange(5.0)}, {"kind": "sweep", "combine": "grid"})
-    assert report.sweep_figures(t, metrics="L_std_hbar")[0].axes[0].get_xscale() == "linear"
+    assert sweep_figures(t, metrics="L_std_hbar")[0].axes[0].get_xscale() == "linear"
     # scattered points: the file's scale = "log" decides (the values are random)
     rng = np.random.default_rng(1)
     v = 5e4 * 10 ** rng.uniform(0, 1, 12)
     text = '[[axis]]\nkey = "pinning.strength"\nbounds = ["5e4 V/m^2", "5e5 V/m^2"]\nscale = "log"\n'
     t = _table({"pinning.strength": ([f"{x:.6g} V/m^2" for x in v], v)}, {"L_std_hbar": v / 1e4},
                {"kind": "sweep", "combine": "sample", "sweep_text": text, "base_config_text": BASE})
-    fig = report.sweep_figures(t, metrics="L_std_hbar")[0]
+    fig = sweep_figures(t, metrics="L_std_hbar")[0]
     assert fig.axes[0].get_xscale() == "log"
     assert_readable(fig)
 
@@ -361,7 +363,7 @@ def test_log_heat_map_cells_at_their_values():
                 "slip_fraction_lo": np.array([0.005 * (i + 1) for i, _ in rows]),
                 "slip_fraction_hi": np.array([0.02 * (i + 1) for i, _ in rows])},
                {"kind": "sweep", "combine": "grid", "base_config_text": BASE})
-    fig = report.sweep_figures(t, metrics="slip_fraction")[0]
+    fig = sweep_figures(t, metrics="slip_fraction")[0]
     ax = fig.axes[0]
     assert ax.get_xscale() == "log" and np.allclose(ax.get_xticks(), [0.5, 1, 2, 4])
     assert " ".join(ax.get_ylabel().split()) == "'spin-up': $f_\\mathrm{rot}$ ramp shape"  # wrapped to the panel
@@ -379,7 +381,7 @@ def test_fraction_error_bars_are_the_stored_interval():
     t = _table({"initial.temperature": (["0.1 mK", "0.2 mK", "0.3 mK"], [1e-4, 2e-4, 3e-4])},
                {"slip_fraction": v, "slip_fraction_err": np.full(3, 0.3), "slip_fraction_lo": lo, "slip_fraction_hi": hi},
                {"kind": "sweep", "combine": "grid"})
-    ax = report.sweep_figures(t, metrics="slip_fraction")[0].axes[0]
+    ax = sweep_figures(t, metrics="slip_fraction")[0].axes[0]
     seg = ax.containers[0].lines[2][0].get_segments()
     assert np.allclose([s[0, 1] for s in seg], lo) and np.allclose([s[1, 1] for s in seg], hi)
 
@@ -388,15 +390,15 @@ def test_zip_and_labels_on_a_run_sweep(tmp_path):
     out = _sweep(tmp_path, "zip", 'combine = "zip"\n[[axis]]\nkey = "stage.spin-up.f_rot.to"\n'
                                   'values = ["10 kHz", "20 kHz", "30 kHz"]\n[[axis]]\nkey = "stage.spin-up.duration"\n'
                                   'values = ["6 us", "10 us", "14 us"]\n')
-    pages = report.sweep_figures(out, metrics="all")  # every column of the table, stage metrics too
+    pages = sweep_figures(out, metrics="all")  # every column of the table, stage metrics too
     assert len(pages) > 3
     for fig in pages:
         assert_no_internal_names(fig)
     assert_readable(pages[0])
     assert_readable(pages[-1])
-    peak = report.sweep_figures(out, metrics="pinning_peak.n2")[0].axes[0]
+    peak = sweep_figures(out, metrics="pinning_peak.n2")[0].axes[0]
     assert peak.get_ylabel() == "peak pinning c₂ (V/m²)"
-    ax = report.sweep_figures(out, metrics="L_mean_hbar")[0].axes[0]
+    ax = sweep_figures(out, metrics="L_mean_hbar")[0].axes[0]
     # the zipped axis' values stand under the first's
     assert [t.get_text() for t in ax.get_xticklabels()] == ["10\n6", "20\n10", "30\n14"]
 
@@ -424,13 +426,13 @@ trajectories = 3
 
     out = tmp_path / "opt.h5"
     run_optimize(load_optimize(opt), out, workers=1)
-    fig = report.optimize_figure(out)
+    fig = optimize_figure(out)
     assert_readable(fig)
     par = fig.axes[1]
     assert par.get_yscale() == "log" and par.get_ylabel().startswith("pinning c₂")
     star = next(ln for ln in fig.axes[0].get_lines() if ln.get_label().startswith("best (#"))
     assert star.get_marker() == "*"
-    for fig in report.sweep_figures(out):
+    for fig in sweep_figures(out):
         assert_readable(fig)
 
 
@@ -440,5 +442,5 @@ def test_quantum_figure_is_readable(tmp_path):
 
     cfg = mdrotor.load_config(_toml(tmp_path, "weak.toml", WEAK_PAIR), ["initial.occupations.libration=2"])
     d = mdrotor.quantum(cfg, trajectories=40)
-    assert_readable(report.quantum_figure(d))
-    assert_readable(report.quantum_figure(mdrotor.quantum(cfg, ensemble=False)))
+    assert_readable(quantum_figure(d))
+    assert_readable(quantum_figure(mdrotor.quantum(cfg, ensemble=False)))

@@ -17,7 +17,20 @@ from scipy import constants as sc
 import mdrotor
 from mdrotor.commands.main import main
 from mdrotor.errors import InputError
-from mdrotor.report import figures as report
+from mdrotor.report.inputs import MissingData
+from mdrotor.report.page import write_report
+from mdrotor.report.run_figures import (
+    L_histogram_figure,
+    L_stages_figure,
+    coherence_figure,
+    phonons_figure,
+    rotor_info,
+    run_figures,
+    schedule_figure,
+    series_figure,
+    spectrum_figure,
+)
+from mdrotor.report.study_figures import optimize_figure, sweep_figures
 from mdrotor.studies.optimize import load_optimize, run_optimize
 from mdrotor.studies.sweep import load_sweep, read_table, run_sweep
 
@@ -60,7 +73,7 @@ def _labels(fig):
 # ---------------------------------------------------------------------------
 def test_schedule_figure(files):
     res = mdrotor.load(files["full"])
-    fig = report.schedule_figure(files["full"])
+    fig = schedule_figure(files["full"])
     top, pin = fig.axes[0], fig.axes[1]
     assert top.get_ylabel() == "rotation $f_\\mathrm{rot}$ (kHz)"
     assert pin.get_ylabel() == "pinning c₂ (V/m²)"  # the coefficient c_n of the config's multipole convention
@@ -77,7 +90,7 @@ def test_schedule_figure(files):
 
 def test_L_histogram_with_ladder(files):
     res = mdrotor.load(files["full"])
-    fig = report.L_histogram_figure(res)
+    fig = L_histogram_figure(res)
     main, zoom = fig.axes[0], fig.axes[1]
     assert main.get_xlabel() == "angular momentum L (ħ)" and main.get_ylabel().startswith("trajectories per bin (bin ")
     assert zoom.get_xlabel().startswith("L (ħ)")
@@ -102,11 +115,11 @@ def test_L_histogram_with_ladder(files):
 
 def test_stage_histograms_and_phonons(files):
     res = mdrotor.load(files["full"])
-    fig = report.L_stages_figure(res)
+    fig = L_stages_figure(res)
     axs = [ax for ax in fig.axes if ax.get_visible()]
     assert len(axs) == 1 + len(res.stages)  # t = 0 and every stage end
     assert all(ax.get_xlabel() == "L (ħ)" for ax in axs)
-    fig = report.phonons_figure(res)
+    fig = phonons_figure(res)
     com, diff = fig.axes
     assert com.get_ylabel() == "mean phonon number ⟨n⟩ (quanta)"
     assert fig.get_supxlabel().startswith("mode: label and frequency (kHz) in the ")
@@ -123,15 +136,15 @@ def test_identical_L_values(files):
     the histograms still draw (one unit-wide bin range) and count every trajectory."""
     res = mdrotor.load(files["bare"])
     res.initial.arrays["L_hbar"] = np.full_like(res.initial.arrays["L_hbar"], 1234.0)
-    fig = report.L_histogram_figure(res, stage="initial")
+    fig = L_histogram_figure(res, stage="initial")
     counts, edges, _ = fig.axes[0].patches[0].get_data()
     assert counts.sum() == res.initial.summary["n_ok"] and edges[0] < 1234.0 < edges[-1]
-    report.L_stages_figure(res)
+    L_stages_figure(res)
 
 
 def test_series_figure(files):
     res = mdrotor.load(files["full"])
-    fig = report.series_figure(res)
+    fig = series_figure(res)
     a, b, c = fig.axes
     assert (a.get_ylabel(), b.get_ylabel(), c.get_ylabel()) == ("L (ħ)", "lag angle (rad)", "mean phonons ⟨n⟩ (quanta)")
     assert c.get_xlabel() == "time (µs)"
@@ -146,8 +159,8 @@ def test_series_figure(files):
 
 
 def test_spectrum_and_coherence(files):
-    info = report.rotor_info(files["full"])
-    fig = report.spectrum_figure(files["full"], rotor=info)
+    info = rotor_info(files["full"])
+    fig = spectrum_figure(files["full"], rotor=info)
     ax = fig.axes[0]
     assert ax.get_xlabel() == "transition frequency (kHz)" and ax.get_ylabel() == "line profile (peak = 1, no unit)"
     # rigid planar rotor E_L = hbar^2 L^2 / (2 I) with L = 2 pi I f / hbar: the line L -> L + k lies at
@@ -173,7 +186,7 @@ def test_spectrum_and_coherence(files):
     want = [(k * 20e3 + k * k * sc.hbar / (4 * np.pi * I2)) * 1e-3 for k in (1, 2, 3)]
     wide = dict(info_ccw, lines=[dict(ln, width_hz=15e3) for ln in info_ccw["lines"]])
     for d in (info_ccw, wide):
-        ax = report.spectrum_figure(files["full"], rotor=d).axes[0]
+        ax = spectrum_figure(files["full"], rotor=d).axes[0]
         sticks = sorted(float(c.get_segments()[0][0, 0]) for c in ax.collections  # vertical, from 0 to 1
                         if c.__class__.__name__ == "LineCollection" and len(c.get_segments()) == 1
                         and c.get_segments()[0][0, 0] == c.get_segments()[0][1, 0]
@@ -181,7 +194,7 @@ def test_spectrum_and_coherence(files):
         assert np.allclose(sticks, want, rtol=1e-12)
         assert ax.get_xlim()[0] >= 0
 
-    fig = report.coherence_figure(files["full"], rotor=info)
+    fig = coherence_figure(files["full"], rotor=info)
     ax = fig.axes[0]
     assert ax.get_xscale() == "log" and ax.get_ylabel() == "contrast (1 without noise)"
     unit = ax.get_xlabel().split("(")[1].rstrip(")")
@@ -195,7 +208,7 @@ def test_spectrum_and_coherence(files):
     assert ramsey.get_ydata()[0] == pytest.approx(1.0, abs=1e-3)  # no decay at t -> 0
     assert np.all(np.diff(ramsey.get_ydata()) <= 1e-12)  # pure diffusion only ever lowers the contrast
     # a given D overrides the run's (the same precedence as mdrotor rotor)
-    fig = report.coherence_figure(files["full"], diffusion_hbar2_per_s=1e3)
+    fig = coherence_figure(files["full"], diffusion_hbar2_per_s=1e3)
     assert "D = 1000 ħ²/s (given)" in [t.get_text() for t in fig.axes[0].texts]
 
 
@@ -205,7 +218,7 @@ def test_missing_groups_are_skipped(files, tmp_path):
     with h5py.File(stripped, "a") as f:
         del f["schedule"]
     out = tmp_path / "rep"
-    rep = report.write_report(stripped, out)
+    rep = write_report(stripped, out)
     assert set(rep["skipped"]) == {"schedule", "series", "coherence"}
     assert "/schedule" in rep["skipped"]["schedule"]
     assert "observe.series_interval" in rep["skipped"]["series"]
@@ -215,17 +228,17 @@ def test_missing_groups_are_skipped(files, tmp_path):
     text = (out / "summary.md").read_text()
     assert "Skipped figures" in text and "series:" in text and "![" in text
     assert "seed" in text and "dt_s" in text and "package_version" in text  # provenance
-    with pytest.raises(report.MissingData) as e:
-        report.series_figure(stripped)
+    with pytest.raises(MissingData) as e:
+        series_figure(stripped)
     assert e.value.key == "/series"
-    figs, skipped = report.run_figures(files["full"])
+    figs, skipped = run_figures(files["full"])
     assert set(figs) == {"schedule", "L_final", "L_stages", "series", "phonons", "spectrum", "coherence"} and not skipped
     # without /schedule the series figure takes the stage bounds from the stage-end times
     no_sched = tmp_path / "no_schedule.h5"
     no_sched.write_bytes(files["full"].read_bytes())
     with h5py.File(no_sched, "a") as f:
         del f["schedule"]
-    figs, skipped = report.run_figures(no_sched)
+    figs, skipped = run_figures(no_sched)
     assert set(skipped) == {"schedule"} and "series" in figs
     assert {"spin-up", "release", "free"} <= {t.get_text() for t in figs["series"].axes[0].texts}
 
@@ -253,9 +266,9 @@ def test_import_is_light_and_figures_avoid_pyplot(files):
     """--help must not import matplotlib; figures are drawn on Agg without pyplot."""
     code = (
         "import sys\n"
-        "from mdrotor.report import figures as report\n"
+        "from mdrotor.report.run_figures import L_histogram_figure\n"
         "assert 'matplotlib' not in sys.modules\n"
-        f"fig = report.L_histogram_figure({str(files['bare'])!r})\n"
+        f"fig = L_histogram_figure({str(files['bare'])!r})\n"
         "assert 'matplotlib.pyplot' not in sys.modules\n"
         "print(type(fig.canvas).__name__)\n"
     )
@@ -276,7 +289,7 @@ def _sweep(d, name, axes_text, trajectories=2):
 
 def test_sweep_one_axis_line_plots(tmp_path):
     out = _sweep(tmp_path, "line", '[[axis]]\nkey = "stage.spin-up.duration"\nvalues = ["6 us", "10 us", "14 us"]\n')
-    figs = report.sweep_figures(out)
+    figs = sweep_figures(out)
     t = read_table(out)
     axs = [ax for f in figs for ax in f.axes if ax.get_visible()]
     assert all(ax.get_xlabel() == "'spin-up': duration (µs)" for ax in axs)
@@ -286,7 +299,7 @@ def test_sweep_one_axis_line_plots(tmp_path):
     ax = axs[ylabels.index("mean ⟨L⟩ (ħ)")]
     x, y = ax.containers[0].lines[0].get_data()
     assert np.allclose(x, [6, 10, 14]) and np.allclose(y, t["metrics"]["L_mean_hbar"])
-    rep = report.write_report(out, tmp_path / "rep")
+    rep = write_report(out, tmp_path / "rep")
     assert rep["kind"] == "sweep" and rep["figures"] and not rep["skipped"]
     assert "## Points" in (tmp_path / "rep" / "summary.md").read_text()
 
@@ -295,7 +308,7 @@ def test_sweep_two_axes_heat_map(tmp_path):
     out = _sweep(tmp_path, "map", '[[axis]]\nkey = "stage.spin-up.duration"\nvalues = ["6 us", "10 us"]\n'
                                   '[[axis]]\nkey = "initial.temperature"\nvalues = ["0.3 mK", "1 mK"]\n')
     t = read_table(out)
-    fig = report.sweep_figures(out, metrics="L_std_hbar,differential_n_mean")[0]
+    fig = sweep_figures(out, metrics="L_std_hbar,differential_n_mean")[0]
     ax = fig.axes[0]
     assert ax.get_xlabel() == "'spin-up': duration (µs)" and ax.get_ylabel() == "initial temperature (mK)"
     mesh = ax.collections[0]
@@ -306,7 +319,7 @@ def test_sweep_two_axes_heat_map(tmp_path):
     cbar_labels = [a.get_ylabel() for a in fig.axes[1:]]
     assert "spread $\\sigma_L$ (ħ)" in cbar_labels and "differential phonons (quanta)" in cbar_labels
     with pytest.raises(InputError) as e:
-        report.sweep_figures(out, metrics="no_such_metric")
+        sweep_figures(out, metrics="no_such_metric")
     assert e.value.key == "--metrics"
 
 
@@ -327,16 +340,16 @@ def test_slice_of_a_three_axis_grid():
         "metrics": {"L_std_hbar": val, "L_std_err_hbar": np.full(n, 0.5)},
         "meta": {"kind": "sweep", "combine": "grid"},
     }
-    fig = report.sweep_figures(table, metrics="L_std_hbar", fixed={"initial.temperature": "1e-3 K"})[0]
+    fig = sweep_figures(table, metrics="L_std_hbar", fixed={"initial.temperature": "1e-3 K"})[0]
     z = np.asarray(fig.axes[0].collections[0].get_array()).reshape(3, 2)
     assert np.allclose(z, [[100 * i + 10 * j + 1 for i in range(2)] for j in range(3)])
     assert "at initial temperature = 1" in fig.get_suptitle()
-    fig = report.sweep_figures(table, metrics="L_std_hbar", axes="stage.spin-up.f_rot.to,initial.temperature",
+    fig = sweep_figures(table, metrics="L_std_hbar", axes="stage.spin-up.f_rot.to,initial.temperature",
                                fixed={"stage.spin-up.duration": "#1"})[0]
     z = np.asarray(fig.axes[0].collections[0].get_array()).reshape(2, 3)
     assert np.allclose(z, [[100 + 10 * j + k for j in range(3)] for k in range(2)])
     with pytest.raises(InputError) as e:
-        report.sweep_figures(table, fixed={"initial.temperature": "5 mK"})
+        sweep_figures(table, fixed={"initial.temperature": "5 mK"})
     assert e.value.key == "--slice" and "0.3 mK" in e.value.expected
 
 
@@ -363,7 +376,7 @@ trajectories = 4
 """)
     out = tmp_path / "opt.h5"
     s = run_optimize(load_optimize(opt), out, workers=1)
-    fig = report.optimize_figure(out)
+    fig = optimize_figure(out)
     top, par = fig.axes[0], fig.axes[1]
     assert top.get_ylabel() == "objective (as defined)" and par.get_xlabel() == "evaluation number"
     assert par.get_ylabel().endswith("(µs)")
@@ -374,7 +387,7 @@ trajectories = 4
     # bounds drawn in the parameter's unit
     bounds = sorted(ln.get_ydata()[0] for ln in par.get_lines() if ln.get_linestyle() == ":")
     assert bounds == pytest.approx([6.0, 14.0])
-    rep = report.write_report(out, tmp_path / "rep")
+    rep = write_report(out, tmp_path / "rep")
     names = {p.split("/")[-1] for p in rep["figures"]}
     assert {"optimize_history.png", "optimize_landscape_1.png", "confirm_L_final.png", "confirm_schedule.png"} <= names
     assert set(rep["skipped"]) == {"confirm_series", "confirm_coherence"}
@@ -384,7 +397,7 @@ def test_quantum_ladder_groups_keep_the_weight_and_sit_at_their_mean_L():
     # grouping g neighbouring allowed L (L = 1 mod 2) for display: the summed
     # weight is unchanged and each group sits at the mean of the L it spans
     # (arithmetic, common practice, no source)
-    from mdrotor.report.figures import _ladder_groups
+    from mdrotor.report.quantum_figure import _ladder_groups
 
     L = np.arange(-41, 60, 2).astype(float)  # odd L
     w = np.exp(-0.5 * (L / 17.0) ** 2)
