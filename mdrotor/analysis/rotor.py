@@ -23,7 +23,7 @@ import numpy as np
 from mdrotor.analysis.laser import rotor_beams
 from mdrotor.analysis.noise_rates import fit_resolved
 from mdrotor.config.parse import from_text, load_config
-from mdrotor.errors import InputError
+from mdrotor.errors import InputError, PhysicsError
 from mdrotor.model.build import assess_config, model_potential
 from mdrotor.model.quantum import config_ladder
 from mdrotor.physics import coherence as coh
@@ -93,6 +93,10 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
     cr = compute_crystal(model_potential(cfg, f, pin_scale=scales), f, seed=cfg.search_seed)
     I = cr.moment_of_inertia_kg_m2
     n_ions = cr.positions_m.shape[0]
+    if I == 0.0:
+        why = "it has one ion" if n_ions < 2 else "its ions all lie on the rotation axis (a string along z)"
+        raise PhysicsError("crystal", f"a crystal that can rotate about the trap axis; {why}, so it has no moment "
+                                      "of inertia about z and no rotor quantities", str(source) if not isinstance(source, Result) else "<result>")
     names = [s.name for s in cfg.species]
     identical = len(set(names)) == 1
     stat = cfg.species[0].statistics if identical else "mixed"

@@ -101,7 +101,7 @@ def crystal_text(cfg, cr, holding) -> str:
         lines.append(f"rotational constant         hbar/(2 pi I) = {cr.hbar_over_I_hz:.6g} Hz")
         lines.append(f"angular momentum at f_rot   L = {cr.L_hbar:.6g} hbar")
     else:
-        lines.append("  (one ion: no rotation, no rotor quantities)")
+        lines.append("  (one ion, or all ions on the rotation axis: no rotation about z, no rotor quantities)")
     lines.append(f"potential energy            {cr.energy_j:.6e} J")
     lines.append("")
     lines.append(f"  modes ({frame}):")

@@ -17,7 +17,8 @@ import numpy as np
 
 from mdrotor.electrodes.polynomial import PolynomialPotential
 from mdrotor.errors import PhysicsError
-from mdrotor.physics.pinning import K_B, N_PHI, Holding, assess, held_curve, on_axis
+from mdrotor.physics.frame import on_axis
+from mdrotor.physics.pinning import K_B, N_PHI, Holding, assess, held_curve
 from mdrotor.physics.statics import (
     SLOW_ROTATION_HZ,
     TWO_PI,

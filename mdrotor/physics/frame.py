@@ -102,3 +102,10 @@ def alignment_angle_of(r_ref: np.ndarray, r: np.ndarray, masses: np.ndarray) -> 
 
 #: Ions within this fraction of the crystal's size from the rotation axis lie on it.
 AXIS_REL = 1e-6
+
+def on_axis(positions_m, masses_kg) -> bool:
+    """True when every ion lies on the rotation axis (through the centre of mass)."""
+    r = np.asarray(positions_m, dtype=float)
+    size = float(np.max(np.linalg.norm(r - centre_of_mass(r, masses_kg), axis=1))) if len(r) else 0.0
+    rho = np.abs(complex_xy(r, masses_kg))
+    return len(r) < 2 or size == 0.0 or float(np.max(rho)) <= AXIS_REL * size

@@ -76,7 +76,6 @@ import numpy as np
 from scipy import constants as sc
 
 from mdrotor.physics import frame
-from mdrotor.physics.frame import AXIS_REL
 from mdrotor.physics.statics import find_equilibrium
 
 TWO_PI = 2.0 * math.pi
@@ -131,12 +130,6 @@ def lowest_moment_order(positions_m, masses_kg, charges_c, orders=range(2, 13)):
     return None
 
 
-def on_axis(positions_m, masses_kg) -> bool:
-    """True when every ion lies on the rotation axis (through the centre of mass)."""
-    r = np.asarray(positions_m, dtype=float)
-    size = float(np.max(np.linalg.norm(r - frame.centre_of_mass(r, masses_kg), axis=1))) if len(r) else 0.0
-    rho = np.abs(frame.complex_xy(r, masses_kg))
-    return len(r) < 2 or size == 0.0 or float(np.max(rho)) <= AXIS_REL * size
 
 
 # ---------------------------------------------------------------------------
@@ -460,7 +453,7 @@ def assess(pot_on, pot_off, terms, *, start=None, seed: int = 0, n_phi: int = N_
     r_off = _equilibrium(pot_off, r_on, seed)
     base["positions_off_m"] = r_off
     rel = {n: moment_rel(r_off, m, q, n) for n in orders}
-    if on_axis(r_off, m) or on_axis(r_on, m):
+    if frame.on_axis(r_off, m) or frame.on_axis(r_on, m):
         return Holding("none", None, None, "the ions lie on the rotation axis (no in-plane moment of any order)", rel, **base)
     first = [n for n in orders if rel[n] > MOMENT_REL]
     z = frame.complex_xy(r_on, m)
@@ -556,4 +549,4 @@ def schedule_margin(h: Holding, profile: dict, scale_ref: float, orders) -> dict
 
 
 __all__ = ["MOMENT_REL", "HELD_REL", "BARRIER_KT_MIN", "N_PHI", "VERDICTS", "moments", "moment_rel",
-           "lowest_moment_order", "on_axis", "relax_at_angle", "HeldCurve", "held_curve", "Holding", "assess", "schedule_margin",]
+           "lowest_moment_order", "relax_at_angle", "HeldCurve", "held_curve", "Holding", "assess", "schedule_margin",]

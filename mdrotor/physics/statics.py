@@ -46,6 +46,7 @@ from mdrotor.errors import PhysicsError
 from mdrotor.physics import multipole as mp
 from mdrotor.physics import rotor, stability
 from mdrotor.physics.constants import K_COULOMB
+from mdrotor.physics.frame import on_axis
 from mdrotor.physics.stability import turn_directions
 from mdrotor.physics.trap import check_rotation, radial_limit_hz
 
@@ -596,16 +597,17 @@ class Crystal:
     @property
     def moment_of_inertia_kg_m2(self) -> float:
         """I_z about the trap axis (includes centrifugal stretch at f_rot);
-        0 for one ion, which has no rotation (I about its own centre of mass)."""
+        0 for one ion or ions all on the axis (:func:`mdrotor.physics.frame.on_axis`), which have no
+        rotation about z (computed, I would be a rounding residue and hbar/I a meaningless rate)."""
         r = self.positions_m
-        if len(r) < 2:
+        if len(r) < 2 or on_axis(r, self.masses_kg):
             return 0.0
         return float(np.sum(self.masses_kg * (r[:, 0] ** 2 + r[:, 1] ** 2)))
 
     @property
     def hbar_over_I_hz(self) -> float | None:
         """hbar / (2 pi I), Hz (:func:`mdrotor.physics.rotor.hbar_over_I_hz`); None
-        without a rotation (one ion)."""
+        without a rotation (one ion, ions on the axis)."""
 
         I = self.moment_of_inertia_kg_m2
         return float(rotor.hbar_over_I_hz(I)) if I > 0 else None
@@ -613,7 +615,7 @@ class Crystal:
     @property
     def L_hbar(self) -> float | None:
         """Angular momentum 2 pi I f_rot / hbar of rigid rotation
-        (:func:`mdrotor.physics.rotor.L_from_f_rot`); None without a rotation (one ion)."""
+        (:func:`mdrotor.physics.rotor.L_from_f_rot`); None without a rotation (one ion, ions on the axis)."""
 
         I = self.moment_of_inertia_kg_m2
         return float(rotor.L_from_f_rot(self.f_rot_hz, I)) if I > 0 else None

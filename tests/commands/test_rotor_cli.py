@@ -89,3 +89,19 @@ def test_rotor_of_a_layout_run_reads_the_layout_beside_the_config(tmp_path, monk
     assert main(["rotor", str(out), "--json"]) == 0
     d = json.loads(capsys.readouterr().out)
     assert d["source_kind"] == "result" and d["moment_of_inertia_kg_m2"] > 0
+
+
+def test_string_on_the_axis_has_no_rotor_quantities(tmp_path, capsys):
+    """Three ions in a string along z (axial 0.5 MHz below radial 2 MHz): every ion is on the rotation
+    axis, so I_z = sum m rho^2 = 0 (geometry) and hbar/I, L and the rotational lines do not exist.
+    Before, the rounding residue I ~ 3e-77 kg m^2 gave hbar/(2 pi I) ~ 6e41 Hz; now `crystal` reports
+    I = 0 with null rotor quantities and `rotor` refuses in one line (exit 2)."""
+    p = tmp_path / "string.toml"
+    p.write_text(two_ion_toml(crystal={"ions": ["40Ca+"] * 3}, trap={"f_radial": "2.0 MHz", "f_axial": "0.5 MHz"},
+                              pinning=None, rotation=None, stage=[{"name": "hold", "duration": "10 us"}]))
+    assert main(["crystal", str(p), "--json"]) == 0
+    d = json.loads(capsys.readouterr().out)
+    assert d["moment_of_inertia_kg_m2"] == 0.0 and d["hbar_over_I_hz"] is None and d["L_hbar"] is None
+    assert main(["rotor", str(p)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "rotation axis" in err and "Traceback" not in err
