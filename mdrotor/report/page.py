@@ -32,30 +32,6 @@ FORMATS = ("png", "pdf", "svg")
 SUMMARY_FORMATS = ("md", "html")
 
 
-def _report_quantum(src, out, fmt, dpi, doc, written, skipped):
-    d = quantum_dict(src)
-    doc.h(1, f"mdrotor report: {Path(src).name} (quantum rotor)")
-    rows = [["allowed L", f"{d['allowed_L_offset']} mod {d['allowed_L_spacing']} ({d['symmetry_order']}-fold, "
-                          f"{d['statistics']})"],
-            ["ħ/(2πI)", f"{d['hbar_over_I_hz']:.5g} Hz"]]
-    fin = d["stages"][-1]
-    rows.append([f"final L (end of '{fin['name']}')", f"{num_text(fin['L_mean_hbar'], 6)} ħ, spread {num_text(fin['L_std_hbar'], 4)} ħ"])
-    if d.get("verdict"):
-        rows.append(["semiclassical answer", f"{d['verdict']}: {d['verdict_reason']}"])
-    doc.table(["quantity", "value"], rows)
-    doc.pre(text(d))
-    doc.h(2, "Figures")
-    try:
-        _emit({"quantum_P_L": quantum_figure(d)}, out, fmt, dpi, doc, written, captions={"quantum_P_L": QUANTUM_CAPTION})
-    except MissingData as e:
-        skipped["quantum_P_L"] = e.expected
-    doc.h(2, "Provenance")
-    doc.table(["attribute", "value"], _provenance_rows(d, ("package_version", "format_version", "created", "source",
-                                                           "source_kind")))
-    doc.h(2, "Config (overrides applied)")
-    doc.pre(str(d.get("config_text", "")))
-
-
 class _Doc:
     """A tiny document model rendered as Markdown or HTML."""
 
@@ -330,6 +306,30 @@ def _report_sweep(src, kind, out, fmt, dpi, doc, written, skipped, metrics, axes
     if text:
         doc.h(2, "Sweep file" if kind == "sweep" else "Optimisation file")
         doc.pre(str(text))
+
+
+def _report_quantum(src, out, fmt, dpi, doc, written, skipped):
+    d = quantum_dict(src)
+    doc.h(1, f"mdrotor report: {Path(src).name} (quantum rotor)")
+    rows = [["allowed L", f"{d['allowed_L_offset']} mod {d['allowed_L_spacing']} ({d['symmetry_order']}-fold, "
+                          f"{d['statistics']})"],
+            ["ħ/(2πI)", f"{d['hbar_over_I_hz']:.5g} Hz"]]
+    fin = d["stages"][-1]
+    rows.append([f"final L (end of '{fin['name']}')", f"{num_text(fin['L_mean_hbar'], 6)} ħ, spread {num_text(fin['L_std_hbar'], 4)} ħ"])
+    if d.get("verdict"):
+        rows.append(["semiclassical answer", f"{d['verdict']}: {d['verdict_reason']}"])
+    doc.table(["quantity", "value"], rows)
+    doc.pre(text(d))
+    doc.h(2, "Figures")
+    try:
+        _emit({"quantum_P_L": quantum_figure(d)}, out, fmt, dpi, doc, written, captions={"quantum_P_L": QUANTUM_CAPTION})
+    except MissingData as e:
+        skipped["quantum_P_L"] = e.expected
+    doc.h(2, "Provenance")
+    doc.table(["attribute", "value"], _provenance_rows(d, ("package_version", "format_version", "created", "source",
+                                                           "source_kind")))
+    doc.h(2, "Config (overrides applied)")
+    doc.pre(str(d.get("config_text", "")))
 
 
 def _groups(path) -> list:
