@@ -8,10 +8,11 @@ import sys
 from pathlib import Path
 
 from mdrotor.analysis.summary import jsonable
+from mdrotor.commands.common import check_executor_args
 from mdrotor.engine.run import check_memory
 from mdrotor.errors import InputError
 from mdrotor.studies.optimize import load_optimize, optimize_text, run_optimize
-from mdrotor.studies.sweep import check_executor_args, export_csv, output_path
+from mdrotor.studies.table import export_csv, output_path
 
 
 # ---------------------------------------------------------------------------

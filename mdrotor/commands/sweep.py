@@ -7,15 +7,10 @@ import json
 import sys
 
 from mdrotor.analysis.summary import jsonable
-from mdrotor.studies.sweep import (
-    check_executor_args,
-    check_points_memory,
-    export_csv,
-    load_sweep,
-    output_path,
-    run_sweep,
-    sweep_text,
-)
+from mdrotor.commands.common import check_executor_args
+from mdrotor.studies.points import check_points_memory
+from mdrotor.studies.sweep import load_sweep, run_sweep, sweep_text
+from mdrotor.studies.table import export_csv, output_path
 
 
 # ---------------------------------------------------------------------------

@@ -24,7 +24,7 @@ from mdrotor.report.quantum_figure import QUANTUM_CAPTION, quantum_dict, quantum
 from mdrotor.report.run_figures import CAPTIONS, draw_run_figures, frame_of, load_run
 from mdrotor.report.study_figures import confirm_error, optimize_figure, sweep_figures, sweep_meta
 from mdrotor.studies.quantum import text
-from mdrotor.studies.sweep import read_point, read_table
+from mdrotor.studies.table import read_point, read_table
 
 __all__ = ["FORMATS", "SUMMARY_FORMATS", "write_report"]
 

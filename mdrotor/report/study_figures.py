@@ -20,8 +20,9 @@ from mdrotor.errors import InputError
 from mdrotor.report.inputs import MissingData, file_kind, plotting
 from mdrotor.report.labels import key_label, log_ticks, metric_label, metric_name, num_text, pretty_unit
 from mdrotor.report.style import wrap_text
-from mdrotor.studies.optimize import err_name
-from mdrotor.studies.sweep import convert, quantity, read_table, si_value
+from mdrotor.studies.metrics import err_name
+from mdrotor.studies.table import read_table
+from mdrotor.studies.values import convert, quantity, si_value
 
 __all__ = ["sweep_figures", "optimize_figure"]
 
@@ -275,7 +276,7 @@ def sweep_figures(source, metrics=None, axes=None, fixed: dict | None = None, pe
     Parameters
     ----------
     source : path or dict
-        A sweep / optimisation file or a :func:`mdrotor.studies.sweep.read_table`
+        A sweep / optimisation file or a :func:`mdrotor.studies.table.read_table`
         dict (with ``"meta": {"combine": ...}``).
     metrics : str or list, optional
         Metric names (comma-separated), ``"all"``, or None for the final-stage

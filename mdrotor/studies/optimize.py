@@ -28,7 +28,7 @@ An optimisation file (TOML)::
     trajectories = 400                     # re-run of the best point, fresh seeds
 
 The objective is ``sum_j weight_j * m_j`` (or ``weight_j * |m_j - target_j|``
-with a ``target``) over named metrics of :func:`mdrotor.studies.sweep.point_metrics`;
+with a ``target``) over named metrics of :func:`mdrotor.studies.metrics.point_metrics`;
 each violated constraint adds ``penalty * violation / |limit|`` (``penalty``
 default 1e3; the violation itself when the limit is 0). Nothing in the file
 is evaluated as code.
@@ -54,33 +54,34 @@ from pathlib import Path
 
 import numpy as np
 
-from mdrotor import __version__, units
+from mdrotor import __version__
 from mdrotor.engine.executors import make_executor
 from mdrotor.errors import InputError
 from mdrotor.numfmt import clean, interval, plain, value_err
-from mdrotor.studies.store import EntryStore
-from mdrotor.studies.sweep import (
+from mdrotor.studies.metrics import (
+    RUN_METRICS,
+    err_name,
+    known_metric,
+    metric_parser,
+    point_metrics,
+    summary_metric_names,
+)
+from mdrotor.studies.points import (
     SEED_LIMIT,
     as_int,
-    bounds,
     build_config,
     check_keys,
-    convert,
     point_error,
-    point_metrics,
     point_name,
     point_seed,
     read_toml,
     resolve_base,
     rng_keyword,
-    scaled,
-    show,
-    si_value,
-    summary_metric_names,
-    with_unit,
-    write_summary,
 )
+from mdrotor.studies.store import EntryStore
+from mdrotor.studies.table import write_axis, write_summary
 from mdrotor.studies.tasks import Task
+from mdrotor.studies.values import bounds, convert, scaled, show, with_unit
 
 TOP_KEYS = {"base", "trajectories", "seed", "penalty", "parameter", "objective", "constraint", "optimizer", "confirm", "description"}
 PARAM_KEYS = {"key", "bounds", "start", "scale"}
@@ -90,7 +91,6 @@ OPT_KEYS = {"method", "budget", "seed", "popsize", "tol", "atol", "xatol", "fato
 CONFIRM_KEYS = {"trajectories", "seed"}
 METHODS = ("nelder-mead", "differential-evolution")
 FAIL_VALUE = 1e30  # objective of a failed run (finite, so the optimisers' statistics stay finite)
-RUN_METRICS = ("duration_s", "I_kg_m2", "dt_s", "n_steps", "n_trajectories", "f_rot_peak_hz")
 
 
 @dataclass
@@ -278,39 +278,6 @@ def _number(v, key, src, positive=False, allow_inf=False):
     return float(v)
 
 
-def _metric_parse(metric: str, cfg):
-    """Parser of limits / targets for ``metric`` in the metric's own unit."""
-
-    order = {f"pinning_peak.{t.name}": t.order for t in cfg.pinning}
-    if metric in order:
-        n = order[metric]
-        return lambda v, k, s: units.parse(v, "custom", k, s, dimensionality=units.multipole_dimension(n),
-                                           example=units.multipole_example(n))
-    if metric == "I_kg_m2":
-        return lambda v, k, s: units.parse(v, "custom", k, s, dimensionality="[mass]*[length]**2", example="1e-36 kg m^2")
-    if metric.endswith("_hz"):
-        return lambda v, k, s: units.parse(v, "frequency", k, s)
-    if metric.endswith("_s"):
-        return lambda v, k, s: units.parse(v, "time", k, s)
-    return lambda v, k, s: units.parse(v, "dimensionless", k, s)
-
-
-def known_metric(metric: str, cfg) -> bool:
-    """Whether a metric name can occur (mode labels are checked at the first run)."""
-    names = set(summary_metric_names())
-    if metric in names or metric in RUN_METRICS:
-        return True
-    if metric in {f"pinning_peak.{t.name}" for t in cfg.pinning}:
-        return True
-    if metric.startswith(("mode_n_mean.", "mode_n_err.")) and len(metric.split(".", 1)[1]) > 0:
-        return True
-    for st in cfg.schedule.stages:
-        pre = f"stage.{st.name}."
-        if metric.startswith(pre) and metric[len(pre):] in names:
-            return True
-    return False
-
-
 def _objective(spec, src, cfg):
     def metric_of(t, sec):
         m = t.get("metric")
@@ -335,7 +302,7 @@ def _objective(spec, src, cfg):
         check_keys(t, sec, OBJ_KEYS, src)
         m = metric_of(t, sec)
         w = _number(t.get("weight", 1.0), f"{sec}.weight", src)
-        target = _metric_parse(m, cfg)(t["target"], f"{sec}.target", src) if "target" in t else None
+        target = metric_parser(m, cfg)(t["target"], f"{sec}.target", src) if "target" in t else None
         terms.append(Term(m, w, target))
     craw = spec.get("constraint", [])
     if isinstance(craw, dict):
@@ -349,7 +316,7 @@ def _objective(spec, src, cfg):
         m = metric_of(c, sec)
         if "max" not in c and "min" not in c:
             raise InputError(sec, "expected a limit 'max' and/or 'min'", src)
-        parse = _metric_parse(m, cfg)
+        parse = metric_parser(m, cfg)
         hi = parse(c["max"], f"{sec}.max", src) if "max" in c else None
         lo = parse(c["min"], f"{sec}.min", src) if "min" in c else None
         if hi is not None and lo is not None and lo > hi:
@@ -618,33 +585,14 @@ def _summary(spec, store, state, output, best_path, wall) -> dict:
     return out
 
 
-def err_name(metric: str, row: dict):
-    """Name of the standard-error column of a metric, if there is one."""
-    cands = [metric.replace("_mean", "_err", 1), metric + "_err"]
-    for unit in ("_hbar", "_hz"):
-        if metric.endswith(unit):
-            cands.append(metric[: -len(unit)] + "_err" + unit)
-    for c in cands:
-        if c != metric and c in row:
-            return c
-    return None
-
-
 def _optimize_view(f, spec: OptimizeSpec, store) -> None:
-    import h5py
-
     names = sorted(n for n in store.entries if n.startswith("points/"))
     n = len(names)
     ents = [store.entries[nm] for nm in names]
     ax = f.create_group("axes")
     for j, p in enumerate(spec.params):
-        g = ax.create_group(p.key.replace("/", "|"))
-        g.attrs["index"] = j
-        g.attrs["key"] = p.key
+        g = write_axis(ax, j, p.key, [e.attrs["values"][j] for e in ents])
         g.attrs["bounds"] = [show(with_unit(p.lo, p.unit)), show(with_unit(p.hi, p.unit))]
-        texts = [e.attrs["values"][j] for e in ents]
-        g.create_dataset("text", data=np.array(texts, dtype=object), dtype=h5py.string_dtype())
-        g.create_dataset("si", data=np.array([si_value(t) for t in texts]))
     u = np.array([e.attrs["u"] for e in ents], dtype=float).reshape(n, len(spec.params))
     f.create_dataset("history/u", data=u)
     write_summary(f, n, names, store.entries, np.full(n, spec.seed, dtype=np.uint64))

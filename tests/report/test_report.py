@@ -32,7 +32,8 @@ from mdrotor.report.run_figures import (
 )
 from mdrotor.report.study_figures import optimize_figure, sweep_figures
 from mdrotor.studies.optimize import load_optimize, run_optimize
-from mdrotor.studies.sweep import load_sweep, read_table, run_sweep
+from mdrotor.studies.sweep import load_sweep, run_sweep
+from mdrotor.studies.table import read_table
 
 # Two 40Ca+ ions pinned by a rotating quadrupole, spun up to 20 kHz in 10 us,
 # released in 5 us and left to rotate for 5 us: a small stored result.

@@ -258,7 +258,7 @@ def test_optimiser_answers_repeated_points_without_spending_the_budget(tmp_path)
     numbers it has the same value, so it is not run again and the budget
     counts new points only."""
     from mdrotor.studies.optimize import load_optimize, run_optimize
-    from mdrotor.studies.sweep import read_table
+    from mdrotor.studies.table import read_table
 
     (tmp_path / "base.toml").write_text(FORCED_OSCILLATOR_TOML)
     opt = tmp_path / "o.toml"

@@ -11,7 +11,7 @@ import mdrotor
 from mdrotor.commands.main import main
 from mdrotor.engine.executors import ProcessExecutor, SerialExecutor
 from mdrotor.studies.optimize import load_optimize, run_optimize
-from mdrotor.studies.sweep import read_point, read_table
+from mdrotor.studies.table import read_point, read_table
 
 # the forced-oscillator crystal of conftest.py (deterministic trajectories)
 BASE = FORCED_OSCILLATOR_TOML

@@ -12,13 +12,8 @@ from scipy import constants as sc
 
 from mdrotor.commands.main import main
 from mdrotor.engine.executors import ProcessExecutor, SerialExecutor
-from mdrotor.studies.sweep import (
-    export_csv,
-    load_sweep,
-    read_point,
-    read_table,
-    run_sweep,
-)
+from mdrotor.studies.sweep import load_sweep, run_sweep
+from mdrotor.studies.table import export_csv, read_point, read_table
 
 # the forced-oscillator crystal of conftest.py (deterministic trajectories)
 FO_BASE = FORCED_OSCILLATOR_TOML

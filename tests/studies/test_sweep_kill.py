@@ -14,7 +14,8 @@ import h5py
 import numpy as np
 from conftest import FORCED_OSCILLATOR_TOML
 
-from mdrotor.studies.sweep import load_sweep, read_point, read_table, run_sweep
+from mdrotor.studies.sweep import load_sweep, run_sweep
+from mdrotor.studies.table import read_point, read_table
 
 ROOT = Path(__file__).resolve().parents[2]
 
