@@ -642,7 +642,7 @@ def engine_cases() -> list[tuple[str, dict]]:
 
 
 def bench_engine(label, raw, n_traj, n_steps, repeats, threads, seed=1) -> dict:
-    """Steps of the whole engine (engine._Stepper: schedule sampling, noise
+    """Steps of the whole engine (engine.BlockStepper: schedule sampling, noise
     synthesis, laser kicks, kernel), as a run does them, on ``threads``
     threads."""
     from mdrotor.config.parse import from_dict
@@ -656,11 +656,11 @@ def bench_engine(label, raw, n_traj, n_steps, repeats, threads, seed=1) -> dict:
     best = best_cpu = math.inf
     for r in range(repeats + 1):  # the first call compiles
         noise_state = kernel_state(plan.noise, seed, idx) if plan.noise is not None else None
-        stepper = engine._Stepper(plan, n_traj, auto_chunk(n_traj, threads), phases, noise_state,
-                                  laser_keys=engine.laser_keys(seed, idx) if plan.lasers else None)
-        pos, vel = pos0.copy(), vel0.copy()
+        stepper = engine.BlockStepper(plan, auto_chunk(n_traj, threads))
+        state = engine.RunState.start(plan, pos0.copy(), vel0.copy(), rf_phases=phases, noise=noise_state,
+                                      laser_keys=engine.laser_keys(seed, idx) if plan.lasers else None)
         t0, c0 = time.perf_counter(), time.process_time()
-        stepper.advance(pos, vel, 0, 0.0, plan.stage_dt[0], n_steps if r else 8, noise_step0=0)
+        stepper.advance_block(state, 0, 0.0, plan.stage_dt[0], n_steps if r else 8, noise_step0=0)
         if r:
             best = min(best, time.perf_counter() - t0)
             best_cpu = min(best_cpu, time.process_time() - c0)
@@ -698,9 +698,9 @@ class _FineStepPath:
     def __enter__(self):
         self.saved = engine._rf_step
 
-        def fine(plan, dt_auto):
-            plan.rf_exact, plan.rf_steps = False, engine.RF_STEPS_PER_PERIOD
-            return min(dt_auto, 1.0 / (plan.f_drive_hz * engine.RF_STEPS_PER_PERIOD))
+        def fine(cfg, f_drive_hz, dt_auto):
+            dt = min(dt_auto, 1.0 / (f_drive_hz * engine.RF_STEPS_PER_PERIOD))
+            return dt, False, engine.RF_STEPS_PER_PERIOD, None
 
         engine._rf_step = fine
         return self
@@ -990,7 +990,7 @@ def markdown(result) -> str:
                      f"{r['state_mb']:.2f} MB |")
         L.append("")
     if result.get("engine"):
-        L.append("| whole engine (engine._Stepper, as in a run) | threads | trajectories x steps | dt | "
+        L.append("| whole engine (engine.BlockStepper, as in a run) | threads | trajectories x steps | dt | "
                  "traj-steps/s | per core | simulated time per wall second, per trajectory | CPU ns per traj-step |")
         L.append("|---|---|---|---|---|---|---|---|")
         for r in result["engine"]:

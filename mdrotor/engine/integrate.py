@@ -14,13 +14,17 @@ Main loop (pseudocode)::
 
 Memory is O(trajectories x ions) plus one block of schedule samples,
 independent of the number of steps.
+
+The plan is frozen (:class:`Plan`; what is derived from it later is memoised
+in ``plan.memo``); everything that changes during a run is a
+:class:`RunState`, advanced only by :meth:`BlockStepper.advance_block`.
 """
 
 from __future__ import annotations
 
 import math
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import constants as sc
@@ -62,9 +66,27 @@ RF_STEPS_PER_PERIOD = 64
 RF_PROPAGATOR_STEPS = 12
 
 
-@dataclass
+@dataclass(eq=False)
+class PlanMemo:
+    """Memoised pure functions of a plan, computed when first asked for.
+
+    The plan itself is frozen; what is derived from it later and kept (every
+    chunk of a run observes at the same times) lives here, so a cached value
+    is the same whoever asks first."""
+
+    # measurement frames: the free crystal per lattice rate (observe.lattice_node)
+    # and the pinned crystal per observation time (observe.pinned_frame, at most 64)
+    frames: dict = field(default_factory=dict)
+    # the exact propagator's per-step maps: (stage, dt, model) -> (K, N, 3, 4) (Plan.rf_table)
+    rf_tables: dict = field(default_factory=dict)
+
+
+@dataclass(frozen=True, eq=False)
 class Plan:
-    """Everything the run needs, resolved from the config (SI)."""
+    """Everything the run needs, resolved from the config (SI); frozen, made
+    by :func:`make_plan` alone. Per-run state (positions, velocities, RF
+    phases, noise states, lag) is a :class:`RunState`; values derived later
+    from the plan are memoised in ``memo`` (:class:`PlanMemo`)."""
 
     cfg: object
     schedule: object
@@ -86,8 +108,8 @@ class Plan:
     pinned0: bool
     free_rotor0: bool
     dt_s: float
-    stage_steps: list
-    stage_dt: list
+    stage_steps: tuple           # steps per stage
+    stage_dt: tuple              # each stage's step (its duration over its steps)
     fracs: np.ndarray
     lag_n: int
     lag_term: int
@@ -100,20 +122,16 @@ class Plan:
     f_drive_hz: float = 0.0
     rf_orbit: tuple | None = None
     noise: object = None
-    notes: list = field(default_factory=list)
+    notes: tuple = ()
     holding: object = None
     holding0: object = None
     rotor_cdf: tuple | None = None
     lasers: tuple = ()
-    # measurement frames computed so far: the free crystal per lattice rate (observables.lattice_node)
-    # and the pinned crystal per observation time (observables.pinned_frame, at most 64)
-    frame_nodes: dict = field(default_factory=dict)
     # RF runs: steps per RF period (dt = T_RF / rf_steps; the trajectories' RF phases lie on this lattice)
     # and whether the linear trap force is propagated exactly per step (rf_exact) or kicked (fine-step path)
     rf_steps: int = RF_STEPS_PER_PERIOD
     rf_exact: bool = False
-    # the propagator's per-step maps: (stage, dt, model) -> (K, N, 3, 4)
-    rf_tables: dict = field(default_factory=dict)
+    memo: PlanMemo = field(default_factory=PlanMemo)
 
     @property
     def pin_is_multipole(self) -> np.ndarray:
@@ -156,7 +174,7 @@ class Plan:
 
         w2, rf2 = model[0], model[1]
         key = (stage, dt, w2.tobytes(), rf2.tobytes())
-        got = self.rf_tables.get(key)
+        got = self.memo.rf_tables.get(key)
         if got is not None:
             return got
         K = self.rf_steps
@@ -177,7 +195,7 @@ class Plan:
                 out[:, i, u, 1] = m[:, 0, 1] / half
                 out[:, i, u, 2] = m[:, 1, 0] * half
                 out[:, i, u, 3] = m[:, 1, 1]
-        self.rf_tables[key] = out
+        self.memo.rf_tables[key] = out
         return out
 
     @property
@@ -186,15 +204,10 @@ class Plan:
 
     def pin_scales(self, t) -> np.ndarray:
         """Pinning multipliers at time(s) t: (P,) or (len(t), P)."""
-        if self.schedule is None or len(self.pin_orders) == 0:
-            return np.ones(len(self.pin_orders)) if np.ndim(t) == 0 else np.ones((len(t), len(self.pin_orders)))
-        vals = [self.schedule.pinning_scale(t, p) for p in range(len(self.pin_orders))]
-        return np.array(vals) if np.ndim(t) == 0 else np.stack(vals, axis=-1)
+        return _pin_scales(self.schedule, len(self.pin_orders), t)
 
     def pinned_at(self, t: float) -> bool:
-        if len(self.pin_orders) == 0:
-            return False
-        return bool(np.any(np.abs(self.pin_scales(t) * self.pin_strength) > 0.0))
+        return _pinned(self.pin_scales(t), self.pin_strength)
 
     def crystal_at(self, t_s: float, f_hz: float):
         """Equilibrium and modes of the crystal rotating at f_hz with the
@@ -207,8 +220,27 @@ class Plan:
         return model_potential(self.cfg, f_hz, theta_rad=theta, pin_scale=scales)
 
 
+def _pin_scales(sched, n_terms: int, t) -> np.ndarray:
+    """Pinning multipliers of the ``n_terms`` terms at time(s) t: (P,) or (len(t), P)."""
+    if sched is None or n_terms == 0:
+        return np.ones(n_terms) if np.ndim(t) == 0 else np.ones((len(t), n_terms))
+    vals = [sched.pinning_scale(t, p) for p in range(n_terms)]
+    return np.array(vals) if np.ndim(t) == 0 else np.stack(vals, axis=-1)
+
+
+def _pinned(scales: np.ndarray, strength: np.ndarray) -> bool:
+    """Whether any pinning term acts at these multipliers."""
+    if len(strength) == 0:
+        return False
+    return bool(np.any(np.abs(scales * strength) > 0.0))
+
+
 def make_plan(cfg) -> Plan:
-    """Resolve a config into a :class:`Plan` (crystal at t = 0, dt, kernel arrays)."""
+    """Resolve a config into a :class:`Plan` (crystal at t = 0, dt, kernel arrays).
+
+    Everything is computed first, then the plan made in one call; an RF run's
+    orbit at t = 0 is found by stepping that plan and added to a copy of it
+    (``dataclasses.replace``; the copy shares the memo)."""
 
     sched = cfg.schedule
     if sched is None:
@@ -227,28 +259,30 @@ def make_plan(cfg) -> Plan:
     strength = np.array([t.strength for t in cfg.pinning], dtype=float)
     angle = np.array([t.angle_rad for t in cfg.pinning], dtype=float)
     f0 = float(sched.f_rot_hz(0.0))
-    plan = Plan(cfg, sched, m, q, _species_ids(cfg), w2, rf2, stray_acc, q / m, kq_i, kq_j, orders, strength, angle,
-                None, f0, 0.0, False, False, 0.0, [], [], None, 0, -1, 0.0, 0.0,
-                cfg.observe.loss_radius_m, cfg.initial.wigner, cfg.observe.series_interval_s, 0.0)
-    scales0 = plan.pin_scales(0.0)
-    plan.pinned0 = plan.pinned_at(0.0)
+
+    def potential(scales):
+        return model_potential(cfg, f0, theta_rad=0.0, pin_scale=scales)
+
+    notes = []
+    scales0 = _pin_scales(sched, len(orders), 0.0)
+    pinned0 = _pinned(scales0, strength)
     try:
-        cr = compute_crystal(plan.potential(f0, 0.0, scales0), f0, seed=cfg.search_seed)
+        cr = compute_crystal(potential(scales0), f0, seed=cfg.search_seed)
     except PhysicsError as e:
         raise e.with_source(cfg.source)
-    plan.crystal0 = cr
-    plan.free_rotor0 = not any(lab == "libration" for lab in cr.modes.labels) and not plan.pinned0 and n > 1
+    free_rotor0 = not any(lab == "libration" for lab in cr.modes.labels) and not pinned0 and n > 1
+    holding0 = holding = rotor_cdf = None
     if len(orders) and n > 1:
         # the pinning core at t = 0; a well shallower than BARRIER_KT_MIN k_B T
         # is not a harmonic libration: the angle is drawn from the Boltzmann
         # weight of the relaxed held curve instead (see initial_states)
 
         try:
-            h0 = assess(plan.potential(f0, 0.0, scales0), plan.potential(f0, 0.0, np.zeros(len(orders))),
-                        config_terms(cfg, scales0), start=cr.positions_m, seed=cfg.search_seed)
+            holding0 = assess(potential(scales0), potential(np.zeros(len(orders))), config_terms(cfg, scales0),
+                              start=cr.positions_m, seed=cfg.search_seed)
         except PhysicsError as e:
             raise e.with_source(cfg.source)
-        plan.holding0 = h0
+        h0 = holding0
         kT = KB * cfg.initial.temperature_k
         if (h0.held and kT > 0 and h0.barrier_j < BARRIER_KT_MIN * kT and h0.curve is not None
                 and "libration" in cr.modes.labels):
@@ -256,60 +290,67 @@ def make_plan(cfg) -> Plan:
             wgt = np.exp(-u / kT)
             step = TWO_PI / len(wgt)
             edges = h0.curve.phi_rad - 0.5 * step
-            plan.rotor_cdf = (np.r_[edges, edges[-1] + step], np.r_[0.0, np.cumsum(wgt)] / np.sum(wgt))
+            rotor_cdf = (np.r_[edges, edges[-1] + step], np.r_[0.0, np.cumsum(wgt)] / np.sum(wgt))
     # the pinning term whose lag is tracked, and the order of its wells: the
     # pinning core's verdict on the t = 0 crystal with every term at its
     # largest multiplier of the schedule (a pinning that ramps up from 0 counts)
+    lag_n, lag_term, lag_u_ref, lag_threshold = 0, -1, 0.0, 0.0
     if len(orders):
         peak = np.array([sched.peak_pinning_scale(j) for j in range(len(orders))])
         try:
-            hold = assess(plan.potential(f0, 0.0, peak), plan.potential(f0, 0.0, np.zeros(len(orders))),
-                          config_terms(cfg, peak), start=cr.positions_m, seed=cfg.search_seed, curve=False)
+            hold = assess(potential(peak), potential(np.zeros(len(orders))), config_terms(cfg, peak),
+                          start=cr.positions_m, seed=cfg.search_seed, curve=False)
         except PhysicsError as e:
             raise e.with_source(cfg.source)
-        plan.holding = hold
+        holding = hold
         if hold.held and moment_rel(cr.positions_m, m, q, hold.order) > MOMENT_REL:
-            plan.lag_term, plan.lag_n = hold.term, int(hold.order)
+            lag_term, lag_n = hold.term, int(hold.order)
 
             p3 = np.ascontiguousarray(cr.positions_m.T[:, :, None])
-            plan.lag_u_ref = float(lag_phases(p3, m, q, plan.lag_n)[0])
-            plan.lag_threshold = 0.1 * float(peak[hold.term])
+            lag_u_ref = float(lag_phases(p3, m, q, lag_n)[0])
+            lag_threshold = 0.1 * float(peak[hold.term])
             if hold.verdict == "deformation":
-                plan.notes.append(f"the pinning holds this crystal only through its deformation: {hold.reason}")
+                notes.append(f"the pinning holds this crystal only through its deformation: {hold.reason}")
         elif hold.held:
-            plan.notes.append(f"the crystal is {hold.describe()}, but has no order-{hold.order} moment at t = 0 to "
-                              f"track its lag by; lag and slips are not measured")
+            notes.append(f"the crystal is {hold.describe()}, but has no order-{hold.order} moment at t = 0 to "
+                         f"track its lag by; lag and slips are not measured")
         else:
-            plan.notes.append(f"the pinning does not hold this crystal: {hold.reason}")
+            notes.append(f"the pinning does not hold this crystal: {hold.reason}")
     # time step from the fastest frequency in the problem
     f_sec = float(np.sqrt(np.max(cfg.trap.omega_sq(m, q)))) / TWO_PI
     f_modes = float(np.max(cr.modes.freq_hz)) + abs(f0) if len(cr.modes.omega) else 0.0
     f_pin = float(np.max(orders)) * sched.max_f_rot_hz() if len(orders) else 0.0
-    plan.f_fast_hz = max(f_sec, f_modes, f_pin)
-    dt = 1.0 / (plan.f_fast_hz * cfg.run.steps_per_period)
+    f_fast = max(f_sec, f_modes, f_pin)
+    dt = 1.0 / (f_fast * cfg.run.steps_per_period)
     if cfg.lasers and sched is not None:
         for b in cfg.lasers:
             s_max = max(b.saturation_in(st.name) for st in sched.stages)
             if s_max > 0 and b.ions:
                 rate = max_friction_coefficient(s_max, b.k_rad_per_m) / float(np.min(m[list(b.ions)]))
                 dt = min(dt, LASER_DAMPING_PER_STEP / rate)
+    f_drive, rf_exact, rf_steps = 0.0, False, RF_STEPS_PER_PERIOD
     if cfg.trap.model == "rf":
-        plan.f_drive_hz = float(cfg.trap.f_drive_hz)
-        dt = _rf_step(plan, dt)
+        f_drive = float(cfg.trap.f_drive_hz)
+        dt, rf_exact, rf_steps, note = _rf_step(cfg, f_drive, dt)
+        if note:
+            notes.append(note)
     elif cfg.run.dt_s is not None:
         dt = cfg.run.dt_s
-    plan.dt_s = dt
-    for st in sched.stages:
-        k = max(1, int(math.ceil(st.duration_s / dt * (1 - 1e-12))))
-        plan.stage_steps.append(k)
-        plan.stage_dt.append(st.duration_s / k)
-
-    plan.fracs = substep_fractions(cfg.run.integrator)
-    if cfg.noise is not None:
-        plan.noise = None if cfg.noise.is_empty else cfg.noise
-    plan.lasers = tuple(cfg.lasers)
+    stage_steps = tuple(max(1, int(math.ceil(st.duration_s / dt * (1 - 1e-12)))) for st in sched.stages)
+    stage_dt = tuple(st.duration_s / k for st, k in zip(sched.stages, stage_steps))
+    noise = None if cfg.noise is None or cfg.noise.is_empty else cfg.noise
+    plan = Plan(cfg=cfg, schedule=sched, masses=m, charges=q, species_ids=_species_ids(cfg), w2=w2, rf2=rf2,
+                stray_acc=stray_acc, qm=q / m, kq_i=kq_i, kq_j=kq_j, pin_orders=orders, pin_strength=strength,
+                pin_angle=angle, crystal0=cr, f0_hz=f0, theta0=0.0, pinned0=pinned0, free_rotor0=free_rotor0,
+                dt_s=dt, stage_steps=stage_steps, stage_dt=stage_dt, fracs=substep_fractions(cfg.run.integrator),
+                lag_n=lag_n, lag_term=lag_term, lag_u_ref=lag_u_ref, lag_threshold=lag_threshold,
+                loss_radius_m=cfg.observe.loss_radius_m, wigner=cfg.initial.wigner,
+                series_interval_s=cfg.observe.series_interval_s, f_fast_hz=f_fast, f_drive_hz=f_drive,
+                noise=noise, notes=tuple(notes), holding=holding, holding0=holding0, rotor_cdf=rotor_cdf,
+                lasers=tuple(cfg.lasers), rf_steps=rf_steps, rf_exact=rf_exact)
     if plan.rf:
-        plan.rf_orbit = rf_orbit(plan)
+        orbit, orbit_notes = rf_orbit(plan)
+        plan = replace(plan, rf_orbit=orbit, notes=plan.notes + orbit_notes)
     return plan
 
 
@@ -321,9 +362,9 @@ def _whole_steps(duration_s: float, dt: float) -> int | None:
     return n if n >= 1 and abs(k - n) <= 1e-9 * max(1.0, k) else None
 
 
-def _rf_step(plan: Plan, dt_auto: float) -> float:
-    """The step of an RF run, and whether the linear trap force is propagated
-    exactly (``plan.rf_exact``, ``plan.rf_steps``; docs/rf.md).
+def _rf_step(cfg, f_drive_hz: float, dt_auto: float) -> tuple:
+    """The step of an RF run and whether the linear trap force is propagated
+    exactly: ``(dt, rf_exact, rf_steps, note or None)`` (docs/rf.md).
 
     Verlet with the automatic dt: dt = T_RF / K with K = RF_PROPAGATOR_STEPS,
     or more when the secular motion, the pinning or the beams ask for a
@@ -335,8 +376,7 @@ def _rf_step(plan: Plan, dt_auto: float) -> float:
     kicks of the plain stepper at dt <= T_RF / RF_STEPS_PER_PERIOD, with a
     note saying why.
     """
-    cfg = plan.cfg
-    period = 1.0 / plan.f_drive_hz
+    period = 1.0 / f_drive_hz
     given = cfg.run.dt_s
     why = None
     if cfg.run.integrator != "verlet":
@@ -348,17 +388,16 @@ def _rf_step(plan: Plan, dt_auto: float) -> float:
         if K is None and why is None:
             why = f"run.dt = {given:.6g} s does not divide the RF period {period:.6g} s"
     if why is None:
-        bad = [st.name for st in plan.schedule.stages if _whole_steps(st.duration_s, period / K) is None]
+        bad = [st.name for st in cfg.schedule.stages if _whole_steps(st.duration_s, period / K) is None]
         if bad:
             why = (f"stage {', '.join(repr(b) for b in bad)} does not last a whole number of steps of T_RF / {K} "
                    f"= {period / K:.6g} s")
     if why is None:
-        plan.rf_exact, plan.rf_steps = True, K
-        return period / K
-    plan.rf_exact, plan.rf_steps = False, RF_STEPS_PER_PERIOD
-    plan.notes.append(f"RF run without the exact Mathieu propagator ({why}): the RF force is integrated by the "
-                      f"plain stepper at dt <= T_RF / {RF_STEPS_PER_PERIOD}, several times slower")
-    return given if given is not None else min(dt_auto, period / RF_STEPS_PER_PERIOD)
+        return period / K, True, K, None
+    note = (f"RF run without the exact Mathieu propagator ({why}): the RF force is integrated by the "
+            f"plain stepper at dt <= T_RF / {RF_STEPS_PER_PERIOD}, several times slower")
+    dt = given if given is not None else min(dt_auto, period / RF_STEPS_PER_PERIOD)
+    return dt, False, RF_STEPS_PER_PERIOD, note
 
 
 def laser_keys(seed: int, indices) -> np.ndarray:
@@ -547,7 +586,7 @@ def _orbit_model(plan: Plan):
     return (w2a, rf2a, straya, qm, kq_i, kq_j), note
 
 
-def rf_orbit(plan: Plan, *, tol: float = 1e-12, max_iter: int = 12):
+def rf_orbit(plan: Plan, *, tol: float = 1e-12, max_iter: int = 12) -> tuple:
     """The periodic orbit of the equilibrium crystal under the full RF force.
 
     At rest (f_rot(0) = 0) the orbit is periodic in the lab. A crystal
@@ -563,12 +602,13 @@ def rf_orbit(plan: Plan, *, tol: float = 1e-12, max_iter: int = 12):
     Jacobian from finite differences, all perturbed copies integrated as one
     batch of trajectories (least squares: a free crystal's orientation is a
     continuous family). For an in-plane anisotropic trap see
-    :func:`_orbit_model` (a note is added to the plan).
+    :func:`_orbit_model`.
 
-    Returns the orbit's positions and velocities (lab frame) at the
-    ``plan.rf_steps`` step phases, each (K, 3, N), turned back by -w t_k
-    to the orientation the pinning has at t = 0: the state a trajectory
-    starting at t = 0 with RF phase W t_k takes.
+    Returns ``((positions, velocities), notes)``: the orbit (lab frame) at
+    the ``plan.rf_steps`` step phases, each (K, 3, N), turned back by -w t_k
+    to the orientation the pinning has at t = 0 (the state a trajectory
+    starting at t = 0 with RF phase W t_k takes), and the notes for the plan
+    (a tuple: the averaged trap, a residual left).
     """
     n = len(plan.masses)
     dim = 6 * n
@@ -579,22 +619,22 @@ def rf_orbit(plan: Plan, *, tol: float = 1e-12, max_iter: int = 12):
     dt = period / K
     qh = 0.5 * plan.cfg.trap.q_per_ion(plan.masses, plan.charges)  # (N, 3)
     model, note = _orbit_model(plan)
-    if note:
-        plan.notes.append(note)
+    notes = (note,) if note else ()
     r0 = plan.crystal0.positions_m
     p_start = r0 * (1.0 - qh)                       # lowest order at phase 0
     v_start = _spin_velocity(w, p_start.T).T
     z = np.concatenate([p_start.ravel(), v_start.ravel()])
     size = np.max(np.abs(r0)) + 1e-6
     scale = np.concatenate([np.full(3 * n, size), np.full(3 * n, W * size)])
-    stepper = _Stepper(plan, dim + 1, dim + 1, np.zeros(dim + 1), model=model)
+    stepper = BlockStepper(plan, dim + 1, model=model)
     eps = 1e-7
     turn = _turn_matrix(n, w * period)
 
     def one_period(states):
         p = np.ascontiguousarray(states[:, : 3 * n].reshape(-1, n, 3).transpose(2, 1, 0))
         v = np.ascontiguousarray(states[:, 3 * n:].reshape(-1, n, 3).transpose(2, 1, 0))
-        stepper.advance(p, v, 0, 0.0, dt, K, frozen=True, spin=w)
+        stepper.advance_block(RunState.start(plan, p, v, rf_phases=np.zeros(dim + 1)), 0, 0.0, dt, K, frozen=True,
+                              spin=w)
         return np.concatenate([p.transpose(2, 1, 0).reshape(-1, 3 * n), v.transpose(2, 1, 0).reshape(-1, 3 * n)], axis=1)
 
     best = (np.inf, z)
@@ -614,20 +654,21 @@ def rf_orbit(plan: Plan, *, tol: float = 1e-12, max_iter: int = 12):
         z = z + step * scale
     err, z = best
     if err > 1e-8:
-        plan.notes.append(f"the RF orbit at t = 0 was found only to a relative residual {err:.2g} per RF period "
-                          "(the field is not periodic in the frame co-rotating with the pinning)")
+        notes += (f"the RF orbit at t = 0 was found only to a relative residual {err:.2g} per RF period "
+                  "(the field is not periodic in the frame co-rotating with the pinning)",)
     # sample the orbit at every step phase, turned back to the t = 0 orientation
     p = np.ascontiguousarray(z[: 3 * n].reshape(1, n, 3).transpose(2, 1, 0))
     v = np.ascontiguousarray(z[3 * n:].reshape(1, n, 3).transpose(2, 1, 0))
-    stepper1 = _Stepper(plan, 1, 1, np.zeros(1), model=model)
+    stepper1 = BlockStepper(plan, 1, model=model)
+    state = RunState.start(plan, p, v, rf_phases=np.zeros(1))
     op, ov = [], []
 
     for j in range(K):
         back = -w * j * dt
         op.append(rotate_states(p, back)[:, :, 0])
         ov.append(rotate_states(v, back)[:, :, 0])
-        stepper1.advance(p, v, 0, j * dt, dt, 1, frozen=True, spin=w)
-    return np.array(op), np.array(ov)
+        stepper1.advance_block(state, 0, j * dt, dt, 1, frozen=True, spin=w)
+    return (np.array(op), np.array(ov)), notes
 
 
 def _turn_matrix(n: int, angle: float) -> np.ndarray:
@@ -698,13 +739,14 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
         raise ValueError("a run with noise needs the trajectories' noise state")
     if plan.lasers and laser_keys is None:
         raise ValueError("a run with laser beams needs the trajectories' laser keys")
-    stepper = _Stepper(plan, T, chunk, rf_phases, noise_state, laser_keys=laser_keys)
+    state = RunState.start(plan, pos, vel, rf_phases=rf_phases, noise=noise_state, laser_keys=laser_keys)
+    stepper = BlockStepper(plan, chunk)
     if plan.lag_n > 0:
         raw = lag_phases(pos, plan.masses, plan.charges, plan.lag_n)
-        stepper.lag_u[0] = plan.lag_u_ref + np.array([wrap_angle(r - plan.lag_u_ref) for r in raw])
-        stepper.lag_u[1] = raw
+        state.lag_u[0] = plan.lag_u_ref + np.array([wrap_angle(r - plan.lag_u_ref) for r in raw])
+        state.lag_u[1] = raw
     t0 = time.perf_counter()
-    initial = stepper.observe(pos, vel, 0, 0.0, plan.stage_dt[0]) if observe_stages else {}
+    initial = stepper.observe(state, 0, 0.0, plan.stage_dt[0]) if observe_stages else {}
     stages, series = {}, []
     t = 0.0
     bounds = sched.boundaries_s
@@ -715,22 +757,22 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
         every = series_steps(plan, k) if plan.series_interval_s else 0  # series point every `every` steps
         while n_left > 0:
             nb = min(BLOCK_STEPS, n_left, every - step0 % every if every else BLOCK_STEPS)
-            stepper.advance(pos, vel, k, bounds[k] + dt * step0, dt, nb, noise_step0=step0)
+            stepper.advance_block(state, k, bounds[k] + dt * step0, dt, nb, noise_step0=step0)
             n_left -= nb
             step0 += nb
             t = bounds[k] + dt * step0
             if progress is not None:
                 progress.update(nb * T)
             if every and step0 % every == 0 and n_left > 0:
-                obs = stepper.observe(pos, vel, k, t, dt)
+                obs = stepper.observe(state, k, t, dt)
                 series.append(series_values(obs, t, st.name) if series_raw else _series_point(obs, t, st.name))
         t = bounds[k + 1]
         if observe_stages or k == len(sched.stages) - 1:
-            stages[st.name] = stepper.observe(pos, vel, k, t, dt)
+            stages[st.name] = stepper.observe(state, k, t, dt)
             if plan.lasers:
-                stages[st.name]["_laser_photons"] = stepper.photons.T.copy()
+                stages[st.name]["_laser_photons"] = state.photons.T.copy()
         if plan.lasers:
-            stepper.photons[:] = 0.0
+            state.photons[:] = 0.0
         if plan.series_interval_s:
             obs = stages[st.name]
             series.append(series_values(obs, t, st.name) if series_raw else _series_point(obs, t, st.name))
@@ -763,50 +805,87 @@ def warm_up(plan: Plan, pos: np.ndarray, vel: np.ndarray, rf_phases=None, noise_
     # beams: any key will do (their kicks are stateless); their kick runs only with a step index
     keys = np.zeros(1, dtype=np.uint64) if plan.lasers else None
     kicks = noise_state is not None or (plan.lasers and plan.noise is None)
-    stepper = _Stepper(plan, 1, 1, ph, noise_state, laser_keys=keys)
+    state = RunState.start(plan, p, v, rf_phases=ph, noise=noise_state, laser_keys=keys)
+    stepper = BlockStepper(plan, 1)
     bounds = plan.schedule.boundaries_s
     for k in range(len(plan.stage_dt)):
-        stepper.advance(p, v, k, bounds[k], plan.stage_dt[k], 1, noise_step0=0 if kicks else None)
+        stepper.advance_block(state, k, bounds[k], plan.stage_dt[k], 1, noise_step0=0 if kicks else None)
     if plan.rf:
-        stepper.advance(p, v, 0, 0.0, plan.stage_dt[0], 1)
+        stepper.advance_block(state, 0, 0.0, plan.stage_dt[0], 1)
     return time.perf_counter() - t0
 
 
-class _Stepper:
-    """Builds the kernel's per-block arrays and observes (secular state in RF runs)."""
+@dataclass(eq=False)
+class RunState:
+    """The trajectories' state during a run: the only mutable thing of the
+    engine, and only :meth:`BlockStepper.advance_block` advances it (the
+    kernel updates positions, velocities, lag, colored-noise states and photon
+    counts in place); :func:`integrate` sets the lag's start and resets the
+    photon counts at each stage's end.
 
-    def __init__(self, plan: Plan, n_traj: int, chunk: int, rf_phases, noise_state=None, model=None,
-                 laser_keys=None):
+    The RF phases are each trajectory's at t = 0, as cosine and sine and, for
+    the exact propagator, as a step of the plan's lattice of ``rf_steps``
+    phases (``rf_on_lattice``: all of them lie on it; phases given by a
+    caller, not drawn by :meth:`Plan.rf_phases`, may not)."""
+
+    pos: np.ndarray                # (3, N, T)
+    vel: np.ndarray                # (3, N, T)
+    lag_u: np.ndarray              # (2, T): unwrapped lag phase, last raw phase (kernels.advance)
+    rf_c: np.ndarray               # (T,) cos of the RF phase at t = 0
+    rf_s: np.ndarray               # (T,) sin of the RF phase at t = 0
+    rf_idx: np.ndarray             # (T,) the RF phase in lattice steps (mod plan.rf_steps)
+    rf_on_lattice: bool
+    noise: object = None           # each trajectory's keys and colored-noise states (noise.KernelNoiseState)
+    laser_keys: np.ndarray | None = None   # (T,) each trajectory's key for the recoil kicks
+    photons: np.ndarray | None = None      # (N, T) expected photon counts since the last reset
+
+    @classmethod
+    def start(cls, plan: Plan, pos: np.ndarray, vel: np.ndarray, *, rf_phases=None, noise=None,
+              laser_keys=None) -> RunState:
+        """The state of trajectories at ``pos``, ``vel`` (kept, not copied:
+        they are advanced in place) with RF phases ``rf_phases`` (T,) at t = 0."""
+        T = pos.shape[2]
+        ph = np.zeros(T) if rf_phases is None else np.asarray(rf_phases, dtype=float)
+        lattice = ph / (TWO_PI / plan.rf_steps)
+        on = bool(np.all(np.abs(lattice - np.rint(lattice)) <= 1e-9 * np.maximum(1.0, np.abs(lattice))))
+        photons = np.zeros((len(plan.masses), T)) if laser_keys is not None else None
+        return cls(pos, vel, np.zeros((2, T)), np.cos(ph), np.sin(ph),
+                   np.rint(lattice).astype(np.int64) % plan.rf_steps, on, noise, laser_keys, photons)
+
+    def window(self) -> RunState:
+        """A copy for a measurement window: positions, velocities and lag
+        copied, the RF phases shared, without noise and beams."""
+        return RunState(self.pos.copy(), self.vel.copy(), self.lag_u.copy(), self.rf_c, self.rf_s, self.rf_idx,
+                        self.rf_on_lattice)
+
+
+class BlockStepper:
+    """Advances a :class:`RunState` by blocks of steps: builds the kernel's
+    per-block arrays from the plan (schedule samples, pinning coefficients,
+    RF drive and propagator maps, noise, beams) and calls
+    :func:`mdrotor.engine.kernels.advance`; observes (the secular state in
+    RF runs). It holds only what the plan fixes, never a trajectory's state.
+    ``model``: the kernel's trap model, if not the plan's (the RF orbit search)."""
+
+    def __init__(self, plan: Plan, chunk: int, model=None):
         self.plan = plan
+        self.chunk = chunk
         self.model = plan.kernel_model() if model is None else model
         self.rf = bool(np.any(self.model[1] != 0.0))  # the RF spring terms rf2
-        # beams: each trajectory's key and every ion's expected photon count since the last reset
-        self.laser_keys = laser_keys
-        self.photons = np.zeros((len(plan.masses), n_traj)) if laser_keys is not None else None
-        # each trajectory's keys and colored-noise states (noise.KernelNoiseState), advanced by the kernel
-        self.noise_state = noise_state
-        self.chunk = chunk
-        self.lag_u = np.zeros((2, n_traj))
         # a lag update every spp/4 steps: the pinning turns by at most 2 pi / 4 per order n in between
         self.lag_stride = max(1, plan.cfg.run.steps_per_period // 4)
-        ph = np.zeros(n_traj) if rf_phases is None else np.asarray(rf_phases, dtype=float)
-        self.ph_c, self.ph_s = np.cos(ph), np.sin(ph)
-        # the exact propagator: each trajectory's RF phase in lattice steps, and the kicks' model without the
-        # linear trap force (it is in the propagator's maps)
-        lattice = ph / (TWO_PI / plan.rf_steps)
-        self.ph_idx = np.rint(lattice).astype(np.int64) % plan.rf_steps
-        # phases off the lattice (given by a caller, not drawn by plan.rf_phases) have no precomputed maps
-        self.on_lattice = bool(np.all(np.abs(lattice - np.rint(lattice)) <= 1e-9 * np.maximum(1.0, np.abs(lattice))))
+        # the exact propagator's kicks: the model without the linear trap force (it is in the maps)
         w2, rf2, *rest = self.model
         self.kick_model = (np.zeros_like(w2), np.zeros_like(rf2), *rest)
 
-    def advance(self, pos, vel, stage: int, t_start: float, dt: float, n: int, lag_u=None, frozen: bool = False,
-                noise_step0: int | None = None, spin: float = 0.0) -> None:
-        """Advance ``n`` steps from ``t_start``; ``frozen``: the schedule held
-        at t = 0 (the RF drive still runs from phase W t_start), except the
-        pinning angle, which turns at ``spin`` (rad/s) from 0. Noise and
-        laser beams act only when ``noise_step0`` (the block's first step
-        within the stage) is given: measurement windows run without them."""
+    def advance_block(self, state: RunState, stage: int, t_start: float, dt: float, n: int, *,
+                      frozen: bool = False, noise_step0: int | None = None, spin: float = 0.0) -> None:
+        """Advance ``state`` ``n`` steps from ``t_start``; ``frozen``: the
+        schedule held at t = 0 (the RF drive still runs from phase W
+        t_start), except the pinning angle, which turns at ``spin`` (rad/s)
+        from 0. Noise and laser beams act only when ``noise_step0`` (the
+        block's first step within the stage) is given: measurement windows
+        run without them."""
 
         plan = self.plan
         sched = plan.schedule
@@ -827,40 +906,39 @@ class _Stepper:
         # a feature that is off goes as None: the kernel's variant without its code (see kernels.advance)
         drive, model_k = None, self.model
         if self.rf:
-            drive = (np.cos(W * te), np.sin(W * te), self.ph_c, self.ph_s) + NO_LINEAR
-            j0 = self._lattice_step(stage, t_start, dt)
+            drive = (np.cos(W * te), np.sin(W * te), state.rf_c, state.rf_s) + NO_LINEAR
+            j0 = self._lattice_step(state, stage, t_start, dt)
             if j0 is not None:  # the linear trap force by its exact per-step maps, the rest as kicks
-                drive = (drive[0], drive[1], self.ph_c, self.ph_s, plan.rf_table(stage, dt, self.model),
-                         self.ph_idx, j0)
+                drive = (drive[0], drive[1], state.rf_c, state.rf_s, plan.rf_table(stage, dt, self.model),
+                         state.rf_idx, j0)
                 model_k = self.kick_model
-        lag = (plan.masses, plan.charges, plan.lag_n, sched.theta_rad(ts), track, self.lag_stride,
-               self.lag_u if lag_u is None else lag_u)
+        lag = (plan.masses, plan.charges, plan.lag_n, sched.theta_rad(ts), track, self.lag_stride, state.lag_u)
         noise = None
         model = plan.noise
         if model is not None and noise_step0 is not None and model.active(sched.stages[stage].name):
-            # white kicks, colored modes (their states carried in noise_state) and tones, all drawn in the kernel
+            # white kicks, colored modes (their states carried in state.noise) and tones, all drawn in the kernel
             step = int(sum(plan.stage_steps[:stage])) + int(noise_step0)
-            noise = kernel_arrays(model, self.noise_state, t_start_s=sched.boundaries_s[stage], dt_s=dt,
-                                        step0=noise_step0, n_steps=n, global_step0=step,
-                                        stage=sched.stages[stage].name)
+            noise = kernel_arrays(model, state.noise, t_start_s=sched.boundaries_s[stage], dt_s=dt,
+                                  step0=noise_step0, n_steps=n, global_step0=step,
+                                  stage=sched.stages[stage].name)
         laser = None
-        if plan.lasers and noise_step0 is not None and self.laser_keys is not None:
+        if plan.lasers and noise_step0 is not None and state.laser_keys is not None:
             arrays = laser_arrays(plan, sched.stages[stage].name)
             if arrays is not None:  # beams on: recoil kicks counted by the global step, like the white noise
                 step = int(sum(plan.stage_steps[:stage])) + int(noise_step0)
-                laser = arrays + (self.laser_keys, step, self.photons)
+                laser = arrays + (state.laser_keys, step, state.photons)
         poly = _poly_coefficients(plan, t_sched, theta)
-        advance(pos, vel, dt, n, plan.fracs, model_k, drive, (plan.pin_orders, c_re, c_im), poly, lag, noise,
-                laser, self.chunk)
+        advance(state.pos, state.vel, dt, n, plan.fracs, model_k, drive, (plan.pin_orders, c_re, c_im), poly, lag,
+                noise, laser, self.chunk)
 
-    def _lattice_step(self, stage: int, t_start: float, dt: float) -> int | None:
+    def _lattice_step(self, state: RunState, stage: int, t_start: float, dt: float) -> int | None:
         """The lattice index (mod rf_steps) of a block's first step in
         ``stage`` when the exact propagator applies (RF run, dt = T_RF /
         rf_steps, the block starting a whole number of steps after the
         stage's start, every trajectory's RF phase on the lattice), else None
         (the fine-step path)."""
         plan = self.plan
-        if not (plan.rf and plan.rf_exact and self.on_lattice):
+        if not (plan.rf and plan.rf_exact and state.rf_on_lattice):
             return None
         K = plan.rf_steps
         if abs(dt * plan.f_drive_hz * K - 1.0) > 1e-9:
@@ -869,33 +947,34 @@ class _Stepper:
         k = 0 if off == 0.0 else _whole_steps(off, dt)
         return None if k is None else k % K
 
-    def observe(self, pos, vel, stage: int, t: float, dt: float) -> dict:
+    def observe(self, state: RunState, stage: int, t: float, dt: float) -> dict:
         """Observables at time t. In an RF run they are measured on the
         secular motion, from two consecutive RF periods after t (run on a
-        copy): the secular position is the mean of the two period averages,
-        the secular velocity their difference over T_RF (both refer to t +
-        T_RF; the filters' gains are divided out per mode), and L_z is the
-        average of the instantaneous L_z over both periods."""
+        copy, :meth:`RunState.window`): the secular position is the mean of
+        the two period averages, the secular velocity their difference over
+        T_RF (both refer to t + T_RF; the filters' gains are divided out per
+        mode), and L_z is the average of the instantaneous L_z over both
+        periods."""
 
         plan = self.plan
         if not plan.rf:
-            return observe(plan, pos, vel, t, self.lag_u)
+            return observe(plan, state.pos, state.vel, t, state.lag_u)
         n = max(1, int(round(1.0 / (plan.f_drive_hz * dt))))
-        p, v = pos.copy(), vel.copy()
-        lag_u = self.lag_u.copy()
+        win = state.window()
+        p, v = win.pos, win.vel
         means = [np.zeros_like(p), np.zeros_like(p)]
-        ke = np.zeros(pos.shape[2])
-        lz = np.zeros(pos.shape[2])
+        ke = np.zeros(p.shape[2])
+        lz = np.zeros(p.shape[2])
         m = plan.masses[None, :, None]
         for j in range(2 * n):
-            self.advance(p, v, stage, t + j * dt, dt, 1, lag_u)
+            self.advance_block(win, stage, t + j * dt, dt, 1)
             means[j // n] += p / n
             ke += 0.5 * np.sum(m * v * v, axis=(0, 1)) / (2 * n)
             lz += np.sum(m[0] * (p[0] * v[1] - p[1] * v[0]), axis=0) / (2 * n)
         period = n * dt
         p_sec = 0.5 * (means[0] + means[1])
         v_sec = (means[1] - means[0]) / period
-        out = observe(plan, p_sec, v_sec, t + period, lag_u, window_s=period, L_z=lz)
+        out = observe(plan, p_sec, v_sec, t + period, win.lag_u, window_s=period, L_z=lz)
         # time-averaged kinetic energy of the micromotion: <KE> - KE(secular velocity)
         out["micromotion_ke_j"] = ke - 0.5 * np.sum(m * v_sec * v_sec, axis=(0, 1))
         return out

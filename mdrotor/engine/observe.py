@@ -87,10 +87,10 @@ PINNED_FRAMES_KEPT = 64  # pinned frames kept on a plan (each an equilibrium and
 def pinned_frame(plan, t_s: float) -> ModeFrame:
     """The pinning's frame at time t (the schedule's f_rot(t), the pinning
     static in it): one equilibrium and its modes, the libration among them.
-    A function of the plan and t alone, kept on the plan (``frame_nodes``)
+    A function of the plan and t alone, memoised on the plan (``plan.memo.frames``)
     once computed: every chunk of a run observes at the same times."""
     key = ("pinned", float(t_s))
-    cache = plan.frame_nodes
+    cache = plan.memo.frames
     if key not in cache:
         pinned = [k for k in cache if isinstance(k, tuple)]
         if len(pinned) >= PINNED_FRAMES_KEPT:  # a long time series: keep memory bounded, drop the oldest
@@ -123,10 +123,10 @@ def lattice_node(plan, j: int) -> tuple:
     centrifugally stretched relative equilibrium, relaxed from the t = 0
     crystal and turned back to its orientation and labels. Each node depends
     on the plan and j alone; computed when first used, then kept on the plan
-    (``plan.frame_nodes``), so a trajectory's phonon numbers never depend on
+    (``plan.memo.frames``), so a trajectory's phonon numbers never depend on
     which other trajectories are measured with it."""
 
-    cache = plan.frame_nodes
+    cache = plan.memo.frames
     j = int(j)
     if j in cache:
         return cache[j]
@@ -257,7 +257,7 @@ def observe(plan, pos: np.ndarray, vel: np.ndarray, t_s: float, lag_u: np.ndarra
     """All per-trajectory observables at time ``t_s`` (see module docstring).
 
     ``window_s``: pos and vel are secular estimates filtered by RF-period
-    windows (:meth:`mdrotor.engine.integrate._Stepper.observe`); each mode's normal
+    windows (:meth:`mdrotor.engine.integrate.BlockStepper.observe`); each mode's normal
     coordinates are divided by the filters' known gains at its frequency,
     sin(w T) / (w T) for positions and sinc^2(w T / 2) for velocities.
     ``L_z`` (J s): the angular momentum to report instead of the one from

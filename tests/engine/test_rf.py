@@ -10,7 +10,7 @@ from scipy.integrate import solve_ivp
 
 import mdrotor
 from mdrotor.commands.main import main
-from mdrotor.engine.integrate import NO_LINEAR, RF_PROPAGATOR_STEPS, _Stepper, initial_states, make_plan
+from mdrotor.engine.integrate import NO_LINEAR, RF_PROPAGATOR_STEPS, BlockStepper, RunState, initial_states, make_plan
 from mdrotor.engine.kernels import advance
 
 M = 40 * sc.atomic_mass
@@ -162,11 +162,11 @@ def test_excess_micromotion_from_stray_field():
     plan = make_plan(cfg)
     q = cfg.trap.q[0]
     pos, vel = initial_states(plan, 1, np.arange(1))
-    st = _Stepper(plan, 1, 1, plan.rf_phases(1, np.arange(1)))
+    st, state = BlockStepper(plan, 1), RunState.start(plan, pos, vel, rf_phases=plan.rf_phases(1, np.arange(1)))
     dt = plan.stage_dt[0]
     xs = []
     for j in range(64 * 30):
-        st.advance(pos, vel, 0, j * dt, dt, 1)
+        st.advance_block(state, 0, j * dt, dt, 1)
         xs.append(pos[0, 0, 0])
     xs = np.array(xs)
     disp = sc.e * 200 / (M * (TWO_PI * 1.0e6) ** 2)
@@ -203,11 +203,11 @@ def test_rotating_two_ion_radius_rf_vs_pseudo():
     r_pseudo = np.hypot(*plan.crystal0.positions_m[0, :2])
     idx = np.arange(4)
     pos, vel = initial_states(plan, 3, idx)
-    st = _Stepper(plan, 4, 4, plan.rf_phases(3, idx))
+    st, state = BlockStepper(plan, 4), RunState.start(plan, pos, vel, rf_phases=plan.rf_phases(3, idx))
     dt = plan.stage_dt[0]
     radii = []
     for j in range(128 * 40):
-        st.advance(pos, vel, 0, j * dt, dt, 1)
+        st.advance_block(state, 0, j * dt, dt, 1)
         radii.append(np.hypot(pos[0, 0], pos[1, 0]))
     r_rf = np.mean(radii)
     lead = q * q / 8
@@ -258,11 +258,11 @@ def test_rotating_two_ion_stretch_frequency_rf_vs_pseudo():
     assert abs(f_pseudo / np.sqrt(3 * 1.0e6**2 + 150e3**2) - 1) < 1e-6
     idx = np.arange(1)
     pos, vel = initial_states(plan, 1, idx)
-    st = _Stepper(plan, 1, 1, plan.rf_phases(1, idx))
+    st, state = BlockStepper(plan, 1), RunState.start(plan, pos, vel, rf_phases=plan.rf_phases(1, idx))
     dt = plan.stage_dt[0]
     r = []
     for j in range(600):
-        st.advance(pos, vel, 0, j * 128 * dt, dt, 128)
+        st.advance_block(state, 0, j * 128 * dt, dt, 128)
         r.append(np.hypot(pos[0, 0, 0], pos[1, 0, 0]) + np.hypot(pos[0, 1, 0], pos[1, 1, 0]))
     r = np.array(r) - np.mean(r)
     t = np.arange(len(r)) * 128 * dt
@@ -364,15 +364,14 @@ def test_rotating_start_L_does_not_depend_on_rf_phase():
     assert -q * q / 8 < np.mean(L) / L_p - 1 < 0
     _assert_orbit_periodic(plan, rel=1e-4)
     # the measured (secular) L equals it
-    st = _Stepper(plan, 64, 16, phases)
-    obs = st.observe(pos, vel, 0, 0.0, plan.stage_dt[0])
+    obs = BlockStepper(plan, 16).observe(RunState.start(plan, pos, vel, rf_phases=phases), 0, 0.0, plan.stage_dt[0])
     assert np.max(np.abs(obs["L_hbar"] / L - 1)) < 1e-9
 
     cfg = _rotating_pair(pinning={"order": 2, "strength": "2e5 V/m^2"})
     plan = make_plan(cfg)
     pos, vel = initial_states(plan, 3, idx)
-    st = _Stepper(plan, 64, 16, plan.rf_phases(3, idx))
-    obs = st.observe(pos, vel, 0, 0.0, plan.stage_dt[0])
+    state = RunState.start(plan, pos, vel, rf_phases=plan.rf_phases(3, idx))
+    obs = BlockStepper(plan, 16).observe(state, 0, 0.0, plan.stage_dt[0])
     assert np.ptp(obs["L_hbar"]) / np.mean(obs["L_hbar"]) < 1e-9
     assert not plan.notes
 
@@ -405,7 +404,8 @@ def test_thermal_micromotion_first_order_in_q():
         else:
             pos[0] = 1e-6
         _add_micromotion(plan, pos, vel, phases)
-        obs = _Stepper(plan, K, K, phases).observe(pos, vel, 0, 0.0, plan.stage_dt[0])
+        obs = BlockStepper(plan, K).observe(RunState.start(plan, pos, vel, rf_phases=phases), 0, 0.0,
+                                            plan.stage_dt[0])
         labels = obs["_modes"].labels
         n = sum(obs["mode_n"][:, labels.index(lab)] for lab in ("com-xy-1", "com-xy-2"))
         assert np.ptp(n) / np.mean(n) < (q + beta) ** 2, start

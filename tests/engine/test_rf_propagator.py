@@ -7,7 +7,7 @@ import scipy.optimize
 from conftest import assert_identical, two_ion_config
 
 import mdrotor
-from mdrotor.engine.integrate import RF_PROPAGATOR_STEPS, RF_STEPS_PER_PERIOD, _Stepper, make_plan
+from mdrotor.engine.integrate import RF_PROPAGATOR_STEPS, RF_STEPS_PER_PERIOD, BlockStepper, RunState, make_plan
 from mdrotor.physics.mathieu import characteristic_exponent, transfer_matrices
 
 TWO_PI = 2 * np.pi
@@ -57,12 +57,13 @@ def test_single_ion_secular_frequency(a, q):
     assert plan.rf_exact and plan.rf_steps >= RF_PROPAGATOR_STEPS  # more when the axial motion asks for it
     K = plan.rf_steps
     dt = plan.stage_dt[0]
-    st = _Stepper(plan, 1, 1, np.zeros(1))
+    st = BlockStepper(plan, 1)
     pos, vel = np.zeros((3, 1, 1)), np.zeros((3, 1, 1))
     pos[0, 0, 0] = 1e-7
+    state = RunState.start(plan, pos, vel, rf_phases=np.zeros(1))
     xs = []
     for j in range(1000):
-        st.advance(pos, vel, 0, j * K * dt, dt, K)
+        st.advance_block(state, 0, j * K * dt, dt, K)
         xs.append(pos[0, 0, 0])
     xs = np.array(xs)
     t = np.arange(1, len(xs) + 1) * K * dt
@@ -185,11 +186,11 @@ def test_off_lattice_phase_takes_the_fine_path():
     w2, rf2 = plan.kernel_model()[0][0, 0], plan.kernel_model()[1][0, 0]
 
     def final_x(phase, stepper_phase):
-        st = _Stepper(plan, 1, 1, np.array([stepper_phase]))
         pos, vel = np.zeros((3, 1, 1)), np.zeros((3, 1, 1))
         pos[0, 0, 0] = 1e-7
-        st.advance(pos, vel, 0, 0.0, dt, n_per * K)
-        return pos[0, 0, 0], st.on_lattice
+        state = RunState.start(plan, pos, vel, rf_phases=np.array([stepper_phase]))
+        BlockStepper(plan, 1).advance_block(state, 0, 0.0, dt, n_per * K)
+        return pos[0, 0, 0], state.rf_on_lattice
 
     phase = 3.5 * TWO_PI / K
     n_per = 1

@@ -21,7 +21,8 @@ from scipy import integrate, optimize
 
 import mdrotor
 from mdrotor.engine.integrate import (
-    _Stepper,
+    BlockStepper,
+    RunState,
     initial_states,
     laser_arrays,
     laser_keys,
@@ -236,15 +237,16 @@ def _setup(d, trajectories, seed=1):
     plan = make_plan(cfg)
     idx = np.arange(trajectories)
     pos, vel = initial_states(plan, seed, idx)
-    return plan, pos, vel, _Stepper(plan, trajectories, 256, None, None, laser_keys=laser_keys(seed, idx))
+    return plan, pos, vel, RunState.start(plan, pos, vel, laser_keys=laser_keys(seed, idx))
 
 
-def _advance(plan, stepper, pos, vel, n_steps):
+def _advance(plan, state, n_steps):
+    stepper = BlockStepper(plan, 256)
     dt = plan.stage_dt[0]
     done = 0
     while done < n_steps:
         nb = min(2048, n_steps - done)
-        stepper.advance(pos, vel, 0, done * dt, dt, nb, noise_step0=done)
+        stepper.advance_block(state, 0, done * dt, dt, nb, noise_step0=done)
         done += nb
 
 
@@ -290,12 +292,12 @@ def test_doppler_temperature_along_the_beam(detuning_frac, s, pattern):
         import dataclasses
 
         b = dataclasses.replace(b, emission=np.diag([1.0, 0.0, 0.0]), emission_label="along the beam")
-        plan.lasers = (b,)
+        plan = dataclasses.replace(plan, lasers=(b,))
     xi = b.xi
     assert xi == pytest.approx(1.0 if pattern == "1d" else 1 / 3, rel=1e-12, abs=0)
     gamma_c = laser.cooling_rate(s, b.delta_rad_s, b.gamma_rad_s, b.k_rad_per_m, plan.masses[0])
     n = int(round(5.0 / gamma_c / plan.stage_dt[0]))
-    _advance(plan, st, pos, vel, n)
+    _advance(plan, st, n)
     w = TWO_PI * 0.3e6
     m = plan.masses[0]
     x, v = pos[0, 0], vel[0, 0]
@@ -329,7 +331,7 @@ def test_doppler_temperature_of_modes_at_an_angle():
     m = plan.masses[0]
     gamma_c = 0.5 * laser.cooling_rate(0.1, b.delta_rad_s, b.gamma_rad_s, b.k_rad_per_m, m)
     n = int(round(5.0 / gamma_c / plan.stage_dt[0]))
-    _advance(plan, st, pos, vel, n)
+    _advance(plan, st, n)
     for u, f in ((0, 0.33e6), (1, 0.27e6)):
         w = TWO_PI * f
         x, v = pos[u, 0], vel[u, 0]
@@ -379,7 +381,7 @@ def test_friction_and_cooling_rate():
         return np.mean(0.5 * m * v[0, 0] ** 2 + 0.5 * m * w**2 * (p[0, 0] - x_bar) ** 2)
 
     a0, e0 = amplitude(pos, vel), energy(pos, vel)
-    _advance(plan, st, pos, vel, n)
+    _advance(plan, st, n)
     beta_sim = -2 * m * math.log(amplitude(pos, vel) / a0) / t
     assert abs(beta_sim / beta - 1) < 0.05, (beta_sim, beta)
     e_ss = KB * t_ss
@@ -407,7 +409,7 @@ def _rotating_pair(direction, trajectories, s=0.1, f_hz=200e3):
     pos = rotate_states(np.repeat(r0.T[:, :, None], trajectories, axis=2), phi)
     vel = rotate_states(np.repeat(v0.T[:, :, None], trajectories, axis=2), phi)
     idx = np.arange(trajectories)
-    return plan, pos, vel, _Stepper(plan, trajectories, 256, None, None, laser_keys=laser_keys(2, idx))
+    return plan, pos, vel, RunState.start(plan, pos, vel, laser_keys=laser_keys(2, idx))
 
 
 def test_rotating_pair_torque_and_recoil_diffusion():
@@ -428,7 +430,7 @@ def test_rotating_pair_torque_and_recoil_diffusion():
     f = 200e3
     plan, pos, vel, st = _rotating_pair([1, 0, 0], T)
     l0 = angular_momentum(pos, vel, plan.masses)[0]
-    _advance(plan, st, pos, vel, plan.stage_steps[0])
+    _advance(plan, st, plan.stage_steps[0])
     dl = angular_momentum(pos, vel, plan.masses)[0] - l0
     t = plan.stage_steps[0] * plan.stage_dt[0]
     I = plan.crystal0.moment_of_inertia_kg_m2
@@ -447,7 +449,7 @@ def test_beam_along_z_gives_no_torque():
     T = 20000
     plan, pos, vel, st = _rotating_pair([0, 0, 1], T)
     l0 = angular_momentum(pos, vel, plan.masses)[0]
-    _advance(plan, st, pos, vel, plan.stage_steps[0])
+    _advance(plan, st, plan.stage_steps[0])
     dl = angular_momentum(pos, vel, plan.masses)[0] - l0
     t = plan.stage_steps[0] * plan.stage_dt[0]
     assert abs(np.mean(dl)) < 4 * np.std(dl) / math.sqrt(T)
