@@ -176,12 +176,12 @@ def test_series_interval_is_stored_as_used(tmp_path, cfg_path):
 
 
 def test_outputs_that_cannot_be_written_are_refused_before_any_work(tmp_path, cfg_path, capsys, monkeypatch):
-    import mdrotor.engine.run as runner
-
     def no_work(*a, **k):
         raise AssertionError("the run started before the output was checked")
 
-    monkeypatch.setattr(runner, "run", no_work)
+    # patched where the commands hold it (imported, then patched: each module keeps its own name after the test)
+    monkeypatch.setattr("mdrotor.commands.run.run", no_work)
+    monkeypatch.setattr("mdrotor.studies.tasks.run", no_work)
     blocker = tmp_path / "file"
     blocker.write_text("x")
     for target in (str(blocker / "out.h5"), "/sys/out.h5", str(tmp_path)):  # no folder, no permission (even as root), a folder
