@@ -12,7 +12,7 @@ Notebook use::
 Submodules are imported on first use (the ``startup:`` lines) so that the command line starts fast.
 """
 
-__version__ = "0.1.0"
+from mdrotor.version import __version__  # noqa: F401  (the face hands it on)
 
 
 def load_config(path_or_dict, overrides=()):

@@ -9,11 +9,12 @@ import warnings
 import numpy as np
 from scipy.constants import k as KB
 
-from mdrotor import __version__, units
+from mdrotor import units
 from mdrotor.commands.common import add_common
 from mdrotor.config.parse import load_config
 from mdrotor.model.build import assess_config, crystal_from_config
 from mdrotor.physics.pinning import MOMENT_REL
+from mdrotor.version import __version__
 
 
 def add_parser(subparsers, help_text: str):

@@ -16,9 +16,9 @@ import argparse
 import importlib
 import sys
 
-from mdrotor import __version__
 from mdrotor.commands.common import EXIT_INPUT
 from mdrotor.errors import InputError
+from mdrotor.version import __version__
 
 COMMANDS = {  # name: one-line help (the command's module is mdrotor.commands.<name with _ for ->)
     "crystal": "equilibrium, normal modes and pinning margin of a config's crystal",

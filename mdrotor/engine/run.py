@@ -10,7 +10,6 @@ from pathlib import Path
 
 import numpy as np
 
-from mdrotor import __version__
 from mdrotor.analysis.laser import run_block
 from mdrotor.analysis.micromotion import micromotion_report
 from mdrotor.analysis.noise_rates import run_rates
@@ -32,6 +31,7 @@ from mdrotor.errors import InputError, PhysicsError
 from mdrotor.numfmt import clean
 from mdrotor.results.result import Result, observation_from_raw
 from mdrotor.results.status import Status
+from mdrotor.version import __version__
 
 TWO_PI = 2.0 * np.pi
 EXIT_NO_STATISTICS = 3

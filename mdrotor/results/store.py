@@ -12,11 +12,11 @@ from pathlib import Path
 
 import numpy as np
 
-from mdrotor import __version__
 from mdrotor.errors import InputError
 from mdrotor.inputfiles import open_hdf5
 from mdrotor.results.result import Observation, Result
 from mdrotor.results.stats import FRACTION_INTERVAL
+from mdrotor.version import __version__
 
 FORMAT_VERSION = 2  # 2: fraction intervals (_lo, _hi, _count), n_trajectories, mode frames, no NaN statistics
 

@@ -54,7 +54,6 @@ from pathlib import Path
 
 import numpy as np
 
-from mdrotor import __version__
 from mdrotor.engine.executors import make_executor
 from mdrotor.errors import InputError
 from mdrotor.numfmt import clean, interval, plain, value_err
@@ -82,6 +81,7 @@ from mdrotor.studies.store import EntryStore
 from mdrotor.studies.table import write_axis, write_summary
 from mdrotor.studies.tasks import Task
 from mdrotor.studies.values import bounds, convert, scaled, show, with_unit
+from mdrotor.version import __version__
 
 TOP_KEYS = {"base", "trajectories", "seed", "penalty", "parameter", "objective", "constraint", "optimizer", "confirm", "description"}
 PARAM_KEYS = {"key", "bounds", "start", "scale"}

@@ -39,7 +39,6 @@ from pathlib import Path
 
 import numpy as np
 
-from mdrotor import __version__
 from mdrotor.engine.executors import SerialExecutor, make_executor
 from mdrotor.errors import InputError
 from mdrotor.numfmt import MISSING, interval, plain, value_err
@@ -60,6 +59,7 @@ from mdrotor.studies.store import EntryStore
 from mdrotor.studies.table import read_table, write_axis, write_summary
 from mdrotor.studies.tasks import Task
 from mdrotor.studies.values import bounds, convert, quantity, scaled, show, with_unit
+from mdrotor.version import __version__
 
 SWEEP_KEYS = {"base", "combine", "seed", "seeding", "trajectories", "axis", "sample", "description"}
 AXIS_KEYS = {"key", "values", "range", "bounds", "scale"}
