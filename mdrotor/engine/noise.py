@@ -24,8 +24,9 @@ a sum of independent pieces:
   ``(2 sigma^2 / gamma) [L(f - f_c) + L(f + f_c)]`` with ``Omega = 2 pi f_c``,
   width ``gamma / 2 pi``; ``sigma^2 = <x^2>``). A Lorentzian term is one mode
   (rotating if ``f_c > 0``) and is exact. A power law is fitted by real OU
-  modes: corners log-spaced at 2 per decade from 1.5 decades below
-  ``f_min`` to 1.5 decades above ``f_max``, weights by non-negative least
+  modes: corners log-spaced at 2 per decade from 0.5, 1 or 1.5 decades
+  below ``f_min`` to as far above ``f_max`` (the fewest modes that meet
+  the tolerance below), weights by non-negative least
   squares on the relative error over the band (the sum-of-Lorentzians
   representation of 1/f^alpha noise: M.S. Keshner, Proc. IEEE 70, 212
   (1982)). The fit is checked on a fine grid and refined (3, 4, 6 per

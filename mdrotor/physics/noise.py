@@ -198,7 +198,7 @@ KINDS = ("white", "power", "lorentzian")
 COMPONENTS = ("re", "im", "rotating")
 
 FIT_DENSITIES = (2, 3, 4, 6)       # OU corners per decade, tried in turn
-FIT_EXTENSION_DECADES = 1.5        # corners reach this far beyond the band
+FIT_EXTENSIONS_DECADES = (0.5, 1.0, 1.5)   # how far the corners reach beyond the band, tried in turn per density
 FIT_TOLERANCE = 2e-3               # largest relative error accepted in the band
 
 _SRC = "mdrotor.physics.noise"
@@ -320,11 +320,14 @@ class Spectrum:
 def fit_power_law(level: float, f_ref_hz: float, alpha: float, f_min_hz: float, f_max_hz: float):
     """Sum of real OU spectra ``c_j / (1 + (f / f_j)^2)`` fitted to a power law.
 
-    Corners log-spaced (2, 3, 4 or 6 per decade, the first that meets
-    :data:`FIT_TOLERANCE`) from 1.5 decades below ``f_min`` to 1.5 decades
-    above ``f_max``; weights ``c_j >= 0`` by bounded least squares on the
-    relative error over the band (M.S. Keshner, Proc. IEEE 70, 212 (1982)
-    for the representation).
+    Corners log-spaced at 2, 3, 4 or 6 per decade from 0.5, 1 or 1.5
+    decades below ``f_min`` to as far above ``f_max`` (the first density
+    that meets :data:`FIT_TOLERANCE` with any of these reaches, and of
+    those the fit with the fewest modes: each mode costs the kernel a
+    random number and an update per step);
+    weights ``c_j >= 0`` by bounded least squares on the relative error
+    over the band (M.S. Keshner, Proc. IEEE 70, 212 (1982) for the
+    representation).
 
     Returns
     -------
@@ -341,22 +344,27 @@ def fit_power_law(level: float, f_ref_hz: float, alpha: float, f_min_hz: float, 
     f_chk = np.logspace(lo, hi, max(400, int(200 * span)))
     target_fit = (f_fit / f_ref_hz) ** (-alpha)
     target_chk = (f_chk / f_ref_hz) ** (-alpha)
-    best = None
+    best = met = None   # the closest fit so far; the one with the fewest modes that meets the tolerance
     for dens in FIT_DENSITIES:
-        a, b = lo - FIT_EXTENSION_DECADES, hi + FIT_EXTENSION_DECADES
-        m = int(math.ceil((b - a) * dens)) + 1
-        fj = np.logspace(a, b, m)
-        A = _lorentz(f_fit[:, None], fj[None, :]) / target_fit[:, None]
-        col = np.linalg.norm(A, axis=0)
-        sol = lsq_linear(A / col, np.ones(len(f_fit)), bounds=(0.0, np.inf), method="bvls")
-        c = sol.x / col
-        keep = c > 0
-        fj, c = fj[keep], c[keep]
-        err = float(np.max(np.abs(_lorentz(f_chk[:, None], fj[None, :]) @ c / target_chk - 1.0)))
-        if best is None or err < best[2]:
-            best = (fj, c * level, err)
-        if err <= FIT_TOLERANCE:
-            break
+        for ext in FIT_EXTENSIONS_DECADES:
+            a, b = lo - ext, hi + ext
+            m = int(math.ceil((b - a) * dens)) + 1
+            fj = np.logspace(a, b, m)
+            A = _lorentz(f_fit[:, None], fj[None, :]) / target_fit[:, None]
+            col = np.linalg.norm(A, axis=0)
+            sol = lsq_linear(A / col, np.ones(len(f_fit)), bounds=(0.0, np.inf), method="bvls")
+            c = sol.x / col
+            keep = c > 0
+            fj, c = fj[keep], c[keep]
+            err = float(np.max(np.abs(_lorentz(f_chk[:, None], fj[None, :]) @ c / target_chk - 1.0)))
+            fit = (fj, c * level, err)
+            if err <= FIT_TOLERANCE:
+                if met is None or len(fj) < len(met[0]):
+                    met = fit
+            elif best is None or err < best[2]:
+                best = fit
+        if met is not None:
+            return met
     return best
 
 
