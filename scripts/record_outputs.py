@@ -267,7 +267,7 @@ TEXT_MASKS = [
     (re.compile(r"\bwall [-+0-9.eE]+ s\b"), "wall <time>"),
     (re.compile(r"\(\+ [-+0-9.eE]+ s kernel compilation"), "(+ <time> kernel compilation"),
     (re.compile(r"[-+0-9.eE]+ s CPU \([-+0-9.eE]+ s wall\)"), "<time> CPU (<time> wall)"),  # quantum numerics
-    (re.compile(r"(-> \S+  )\[[-+0-9.eE]+ s\]$", re.M), r"\1[<time>]"),     # sweep / optimize summary line
+    (re.compile(r"(-> \S+  )\[[-+0-9.eE]+ s\]"), r"\1[<time>]"),     # sweep / optimize summary line (optimize goes on)
     (re.compile(r"\| (wall_s|total_wall_s|compile_s|cpu_s|traj_steps_per_s) \|[^|\n]*\|"),
      r"| \1 | <time> |"),                                                   # report summary tables
     (re.compile(r"[-+0-9.eE]+\s*(k|M|G)?\s*(trajectory-steps|traj(ectory)?[- ]steps|steps)/s"), "<rate>"),
