@@ -217,9 +217,6 @@ def key_label(key: str, meta: dict | None = None) -> str:
     return " ".join(p.replace("_", " ") for p in parts)
 
 
-# -- end of the stand-in ------------------------------------------------------
-
-
 def frame_text(frame: tuple[str, float]) -> str:
     """'lab frame' or 'rotating frame, 199.3 kHz'."""
     kind, f = frame

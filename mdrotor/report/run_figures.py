@@ -453,6 +453,9 @@ def _pinning_at(res, t_s: float):
     return bool(on), f
 
 
+# -- end of the stand-in ------------------------------------------------------
+
+
 def _series_labels(res, n_cols: int, series) -> list:
     """Mode label of every column of /series/mode_n_mean, row by row (the
     mode set changes when the pinning is switched off): the labels of the
