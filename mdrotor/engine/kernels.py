@@ -388,10 +388,11 @@ def _innovations(keys, b0, step, us):
     c0 = np.uint64(step) * np.uint64(n_hash)
     one = np.uint64(0x3FF0000000000000)
     mant = np.uint64(0x000FFFFF80000000)   # the mantissa's top 21 bits
+    kb = keys[b0:b0 + nb]   # indexed from 0: no negative-index wraparound per element (which blocks contiguous loads)
     for h in range(n_hash):
         c = c0 + np.uint64(h)
         for b in range(nb):
-            x = _hash64(keys[b0 + b], c)
+            x = _hash64(kb[b], c)
             ub[3 * h, b] = ((x >> np.uint64(12)) & mant) | one
             ub[3 * h + 1, b] = ((x << np.uint64(9)) & mant) | one
             ub[3 * h + 2, b] = ((x << np.uint64(30)) & mant) | one
@@ -540,6 +541,19 @@ def _noise_field_accel(qm, nv, ex, ey, ez):
             ex[i, b] = f * nv[0, b]
             ey[i, b] = f * nv[1, b]
             ez[i, b] = f * nv[2, b]
+
+
+@njit(cache=True)
+def _noise_field_kick(vx, vy, vz, qm, nv, h):
+    """v += h (Q/m) E(s): the uniform noise field's kick, in one pass (the
+    same operations as _noise_field_accel then _kick)."""
+    n_ions, nb = vx.shape
+    for i in range(n_ions):
+        f = qm[i]
+        for b in range(nb):
+            vx[i, b] += h * (f * nv[0, b])
+            vy[i, b] += h * (f * nv[1, b])
+            vz[i, b] += h * (f * nv[2, b])
 
 
 @njit(cache=True)
@@ -917,7 +931,7 @@ def _advance_chunk(b0, b1, pos, vel, dt, n_steps, fracs, model, drive, pin, poly
             if has_field or has_multipole:
                 _noise_step(b0, s, step0 + s, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr_loc, c_tgt, c_par,
                             zc_loc, us, nv, offs)
-            if has_field:
+            if has_field and has_multipole:
                 _noise_field_accel(qm, nv, ex, ey, ez)
         for k in range(n_sub):
             h = fracs[k] * dt
@@ -945,7 +959,7 @@ def _advance_chunk(b0, b1, pos, vel, dt, n_steps, fracs, model, drive, pin, poly
                 _noise_accel(px, py, qm, n_orders, nv, ex, ey, ez, nx, ny, nz, zr, zi)
                 _kick(vx, vy, vz, nx, ny, nz, dt)
             elif has_field:
-                _kick(vx, vy, vz, ex, ey, ez, dt)
+                _noise_field_kick(vx, vy, vz, qm, nv, dt)
         if laser is not None:
             if n_beams > 0:
                 _laser_kick(px, py, pz, vx, vy, vz, b0, l_step0 + s, dt, l_khat, l_par, l_centre, l_vrec,
