@@ -283,6 +283,7 @@ IGNORED_KEYS = re.compile("(" + "|".join([
     "wall_s", "total_wall_s", "compile_s", "cpu_s",  # wall, CPU and compile times: the machine's load
     "traj_steps_per_s",                      # a rate: wall time again
     "threads", "host", "hostname",           # where and how it ran
+    "config_dir",                            # the config's absolute folder: inside each record's own folder
 ]) + ")$")
 
 
