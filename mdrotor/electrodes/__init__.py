@@ -3,7 +3,8 @@
 Gapless-plane electrostatics of rectangle and polygon electrodes, layout
 files, the RF pseudopotential, multipole expansions at the trap point,
 voltage solves for static targets and rotating in-plane multipoles, the
-export of the voltages over a run's schedule.
+export of the voltages over a run's schedule, the full field of a layout on
+a crystal (for the statics) and the torque on the crystal turned rigidly.
 
 Modules
 -------
@@ -15,6 +16,8 @@ harmonic_fit  real solid-harmonic fit, in-plane coefficients k_n
 solve       voltages for static targets and rotating order-n pinning
 polynomial  a layout's voltage plan as a polynomial potential for the run
 waveform    electrode voltages versus time over a schedule (CSV, HDF5)
+full_field  a layout's full field on a crystal as statics terms: per-ion RF pseudopotential, dc electrodes
+torque_scan torque of a layout's field on a rigidly turned crystal: harmonics, rigid libration, barrier
 
 Typical use::
 
@@ -26,8 +29,9 @@ Typical use::
     plan.voltages_at(theta_rad)                    # V per channel
 
     from mdrotor.config.parse import load_config
-    from mdrotor.studies.design_check import design_check, check_text
-    print(check_text(design_check(lay, load_config("configs/electrodes/ring8_triangle3_run.toml"))))
+    from mdrotor.studies.design_check import design_check
+    d = design_check(lay, load_config("configs/electrodes/ring8_triangle3_run.toml"))  # JSON-ready dict
+    # text: mdrotor.commands.electrodes.check_text(d), or `mdrotor electrodes LAYOUT --config RUN`
 
 The names are loaded on first use (PEP 562), so that importing the command
 line does not import scipy. Voltages must stay within the trap's rated
@@ -44,6 +48,8 @@ _WHERE = {
     "pseudo": ("NullResult", "PseudoTrap", "find_rf_null", "pseudo_energy_j", "rf_pseudopotential"),
     "solve": ("CAUTION", "StaticSolution", "RotatingPlan", "solve_static", "solve_rotating"),
     "waveform": ("write_waveform", "waveform_voltages"),
+    "full_field": ("RFPseudoTerm", "ElectrodeTerm", "plan_voltages", "full_potential"),
+    "torque_scan": ("rigid_scan", "RIPPLE_FLOOR"),
 }
 _NAME_TO_MODULE = {name: mod for mod, names in _WHERE.items() for name in names}
 
