@@ -13,9 +13,6 @@ the second writes the electrode voltages of the run's whole schedule
 overrides keys of the run config, ``--set-layout`` keys of the layout file
 (``--set-layout rf.amplitude='120 V'``, ``--set-layout segments.s.limit='10 V'``).
 Bad input of any kind: one line on stderr naming the file and key, exit 2.
-
-Until the command is wired into ``mdrotor/cli.py`` it runs as
-``python -m mdrotor.commands.electrodes LAYOUT.toml ...``.
 """
 
 from __future__ import annotations
