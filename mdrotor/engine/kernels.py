@@ -160,10 +160,24 @@ def _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n
                     ax[i, b] -= f * (cr * x - ci * y)
                     ay[i, b] += f * (cr * y + ci * x)
                 continue
+            # z^(n-1) by n - 2 multiplications by z, the first one and the
+            # last one in the passes that start it and use it (fewer passes
+            # over the chunk; the same operations in the same order)
+            if n == 3:
+                for b in range(nb):
+                    x = px[i, b]
+                    y = py[i, b]
+                    wr = x * x - y * y
+                    wi = x * y + y * x
+                    ax[i, b] -= f * (cr * wr - ci * wi)
+                    ay[i, b] += f * (cr * wi + ci * wr)
+                continue
             for b in range(nb):
-                zr[b] = px[i, b]
-                zi[b] = py[i, b]
-            for _ in range(n - 2):
+                x = px[i, b]
+                y = py[i, b]
+                zr[b] = x * x - y * y
+                zi[b] = x * y + y * x
+            for _ in range(n - 4):
                 for b in range(nb):
                     x = px[i, b]
                     y = py[i, b]
@@ -171,8 +185,12 @@ def _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n
                     zi[b] = zr[b] * y + zi[b] * x
                     zr[b] = t
             for b in range(nb):
-                ax[i, b] -= f * (cr * zr[b] - ci * zi[b])
-                ay[i, b] += f * (cr * zi[b] + ci * zr[b])
+                x = px[i, b]
+                y = py[i, b]
+                wr = zr[b] * x - zi[b] * y
+                wi = zr[b] * y + zi[b] * x
+                ax[i, b] -= f * (cr * wr - ci * wi)
+                ay[i, b] += f * (cr * wi + ci * wr)
     # Coulomb: each pair's force added to both ions in one pass over the chunk
     for i in range(n_ions - 1):
         for j in range(i + 1, n_ions):
