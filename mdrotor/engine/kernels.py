@@ -550,21 +550,8 @@ def noise_series(n_steps, tones, keys, step0, w_tgt, w_sd, r_tgt, r_par, z_real,
 
 
 @njit(cache=True)
-def _noise_field_accel(qm, nv, ex, ey, ez):
-    """(Q/m) E(s): the uniform noise field's acceleration for the step."""
-    n_ions, nb = ex.shape
-    for i in range(n_ions):
-        f = qm[i]
-        for b in range(nb):
-            ex[i, b] = f * nv[0, b]
-            ey[i, b] = f * nv[1, b]
-            ez[i, b] = f * nv[2, b]
-
-
-@njit(cache=True)
 def _noise_field_kick(vx, vy, vz, qm, nv, h):
-    """v += h (Q/m) E(s): the uniform noise field's kick, in one pass (the
-    same operations as _noise_field_accel then _kick)."""
+    """v += h (Q/m) E(s): the uniform noise field's kick, in one pass."""
     n_ions, nb = vx.shape
     for i in range(n_ions):
         f = qm[i]
@@ -575,24 +562,36 @@ def _noise_field_kick(vx, vy, vz, qm, nv, h):
 
 
 @njit(cache=True)
-def _noise_accel(px, py, qm, n_orders, nv, ex, ey, ez, nx, ny, nz, zr, zi):
+def _noise_accel(px, py, qm, n_orders, nv, field, nx, ny, nz, zr, zi):
     """Noise accelerations (nx, ny, nz) at the current positions: the uniform
-    field's (ex, ey, ez), plus -(Q/m) grad Re[g_n z^n] for each multipole
-    order (the pinning formula with C = g_n, :mod:`mdrotor.physics.multipole`)."""
+    field's (Q/m) E (when ``field``; else 0), plus -(Q/m) grad Re[g_n z^n]
+    for each multipole order (the pinning formula with C = g_n,
+    :mod:`mdrotor.physics.multipole`)."""
     n_ions, nb = px.shape
     for i in range(n_ions):
+        f = qm[i] if field else 0.0
         for b in range(nb):
-            nx[i, b] = ex[i, b]
-            ny[i, b] = ey[i, b]
-            nz[i, b] = ez[i, b]
+            nx[i, b] = f * nv[0, b]
+            ny[i, b] = f * nv[1, b]
+            nz[i, b] = f * nv[2, b]
     for p in range(n_orders.shape[0]):
         n = n_orders[p]
         for i in range(n_ions):
             f = qm[i] * n
+            if n == 2:  # z^(n-1) = z: one pass
+                for b in range(nb):
+                    x = px[i, b]
+                    y = py[i, b]
+                    cr = nv[3 + 2 * p, b]
+                    ci = nv[4 + 2 * p, b]
+                    nx[i, b] -= f * (cr * x - ci * y)
+                    ny[i, b] += f * (cr * y + ci * x)
+                continue
+            # z^(n-1) = z times z, n - 2 times, the last multiplication in the pass that uses it
             for b in range(nb):
-                zr[b] = 1.0
-                zi[b] = 0.0
-            for _ in range(n - 1):
+                zr[b] = px[i, b]
+                zi[b] = py[i, b]
+            for _ in range(n - 3):
                 for b in range(nb):
                     x = px[i, b]
                     y = py[i, b]
@@ -600,10 +599,14 @@ def _noise_accel(px, py, qm, n_orders, nv, ex, ey, ez, nx, ny, nz, zr, zi):
                     zi[b] = zr[b] * y + zi[b] * x
                     zr[b] = t
             for b in range(nb):
+                x = px[i, b]
+                y = py[i, b]
+                wr = zr[b] * x - zi[b] * y
+                wi = zr[b] * y + zi[b] * x
                 cr = nv[3 + 2 * p, b]
                 ci = nv[4 + 2 * p, b]
-                nx[i, b] -= f * (cr * zr[b] - ci * zi[b])
-                ny[i, b] += f * (cr * zi[b] + ci * zr[b])
+                nx[i, b] -= f * (cr * wr - ci * wi)
+                ny[i, b] += f * (cr * wi + ci * wr)
 
 
 @njit(cache=True)
@@ -915,9 +918,6 @@ def _advance_chunk(b0, b1, pos, vel, dt, n_steps, fracs, model, drive, pin, poly
     nx = np.zeros((n_ions, nb))
     ny = np.zeros((n_ions, nb))
     nz = np.zeros((n_ions, nb))
-    ex = np.zeros((n_ions, nb))
-    ey = np.zeros((n_ions, nb))
-    ez = np.zeros((n_ions, nb))
     nv = np.zeros((3 + 2 * n_orders_k, nb))
     us = np.empty((3 * n_hash, nb))
     zr_loc = np.empty((n_mr, nb))
@@ -949,8 +949,6 @@ def _advance_chunk(b0, b1, pos, vel, dt, n_steps, fracs, model, drive, pin, poly
             if has_field or has_multipole:
                 _noise_step(b0, s, step0 + s, tones, keys, w_tgt, w_sd, r_tgt, r_par, zr_loc, c_tgt, c_par,
                             zc_loc, us, nv, offs)
-            if has_field and has_multipole:
-                _noise_field_accel(qm, nv, ex, ey, ez)
         for k in range(n_sub):
             h = fracs[k] * dt
             if drive is not None:
@@ -974,7 +972,7 @@ def _advance_chunk(b0, b1, pos, vel, dt, n_steps, fracs, model, drive, pin, poly
         # step's end (a kick after the deterministic step)
         if noise is not None:
             if has_multipole:
-                _noise_accel(px, py, qm, n_orders, nv, ex, ey, ez, nx, ny, nz, zr, zi)
+                _noise_accel(px, py, qm, n_orders, nv, has_field, nx, ny, nz, zr, zi)
                 _kick(vx, vy, vz, nx, ny, nz, dt)
             elif has_field:
                 _noise_field_kick(vx, vy, vz, qm, nv, dt)
