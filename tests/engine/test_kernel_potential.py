@@ -231,12 +231,11 @@ def test_kernel_multipole_noise_force_is_minus_gradient(order):
     pos = _positions(n, b, seed=order)
     rng = np.random.default_rng(order)
     g = rng.normal(size=(1, 2, b)) * 1e6 * 3.3e5 ** (order - 2)
-    z = np.zeros((n, b))
     out = [np.zeros((n, b)) for _ in range(3)]
     nv = np.zeros((5, b))  # the kernel's noise values: field x, y, z, then g_re, g_im of the one order
     nv[3:] = g[0]
     kernels._noise_accel(np.ascontiguousarray(pos[0]), np.ascontiguousarray(pos[1]), plan.qm, np.array([order]), nv,
-                         z, z, z, *out, np.empty(b), np.empty(b))
+                         False, *out, np.empty(b), np.empty(b))   # False: no uniform field part
     got = np.stack(out)
     ref = np.empty_like(got)
     for k in range(b):
