@@ -122,6 +122,31 @@ def inv_r3(r2, out, refined=False):
             out[k] = _inv_r3(r2[k])
 
 
+@njit(cache=True, inline="always")
+def _z_power(px, py, i, nb, zr, zi, k):
+    """z^k (k >= 1) of ion i over the chunk into (zr, zi), z = x + i y: z^2 in
+    the first pass, then k - 2 multiplications by z in place; the same
+    operations in the same order as multiplying z by itself k - 1 times. The
+    pinning and the multipole noise take z^(n-1) = z^(n-2) z from it."""
+    if k == 1:
+        for b in range(nb):
+            zr[b] = px[i, b]
+            zi[b] = py[i, b]
+        return
+    for b in range(nb):
+        x = px[i, b]
+        y = py[i, b]
+        zr[b] = x * x - y * y
+        zi[b] = x * y + y * x
+    for _ in range(k - 2):
+        for b in range(nb):
+            x = px[i, b]
+            y = py[i, b]
+            t = zr[b] * x - zi[b] * y
+            zi[b] = zr[b] * y + zi[b] * x
+            zr[b] = t
+
+
 @njit(cache=True, error_model="numpy")
 def _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n, c_re, c_im, zr, zi, fx, fy, fz):
     """Accelerations (ax, ay, az) of one chunk; every array (N, B) or (B,).
@@ -160,9 +185,9 @@ def _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n
                     ax[i, b] -= f * (cr * x - ci * y)
                     ay[i, b] += f * (cr * y + ci * x)
                 continue
-            # z^(n-1) by n - 2 multiplications by z, the first one and the
-            # last one in the passes that start it and use it (fewer passes
-            # over the chunk; the same operations in the same order)
+            # z^(n-1): z^(n-2) by _z_power, the last multiplication in the
+            # pass that uses it (fewer passes over the chunk; the same
+            # operations in the same order)
             if n == 3:
                 for b in range(nb):
                     x = px[i, b]
@@ -172,18 +197,7 @@ def _accel(px, py, pz, ax, ay, az, w2, rf2, rf, stray_acc, qm, kq_i, kq_j, pin_n
                     ax[i, b] -= f * (cr * wr - ci * wi)
                     ay[i, b] += f * (cr * wi + ci * wr)
                 continue
-            for b in range(nb):
-                x = px[i, b]
-                y = py[i, b]
-                zr[b] = x * x - y * y
-                zi[b] = x * y + y * x
-            for _ in range(n - 4):
-                for b in range(nb):
-                    x = px[i, b]
-                    y = py[i, b]
-                    t = zr[b] * x - zi[b] * y
-                    zi[b] = zr[b] * y + zi[b] * x
-                    zr[b] = t
+            _z_power(px, py, i, nb, zr, zi, n - 2)
             for b in range(nb):
                 x = px[i, b]
                 y = py[i, b]
@@ -587,17 +601,8 @@ def _noise_accel(px, py, qm, n_orders, nv, field, nx, ny, nz, zr, zi):
                     nx[i, b] -= f * (cr * x - ci * y)
                     ny[i, b] += f * (cr * y + ci * x)
                 continue
-            # z^(n-1) = z times z, n - 2 times, the last multiplication in the pass that uses it
-            for b in range(nb):
-                zr[b] = px[i, b]
-                zi[b] = py[i, b]
-            for _ in range(n - 3):
-                for b in range(nb):
-                    x = px[i, b]
-                    y = py[i, b]
-                    t = zr[b] * x - zi[b] * y
-                    zi[b] = zr[b] * y + zi[b] * x
-                    zr[b] = t
+            # z^(n-1): z^(n-2) by _z_power, the last multiplication in the pass that uses it
+            _z_power(px, py, i, nb, zr, zi, n - 2)
             for b in range(nb):
                 x = px[i, b]
                 y = py[i, b]
