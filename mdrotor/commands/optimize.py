@@ -8,7 +8,7 @@ import sys
 from pathlib import Path
 
 from mdrotor.analysis.summary import jsonable
-from mdrotor.commands.common import check_executor_args
+from mdrotor.commands.common import add_executor_args, check_executor_args
 from mdrotor.engine.run import check_memory
 from mdrotor.errors import InputError
 from mdrotor.studies.optimize import load_optimize, optimize_text, run_optimize
@@ -28,8 +28,7 @@ def add_parser(subparsers, help_text: str):
     p.add_argument("optimize", help="optimisation file (TOML)")
     p.add_argument("-o", "--output", default=None, help="HDF5 output (default: <file stem>.h5); resumed if it exists")
     p.add_argument("--best", default=None, metavar="FILE", help="best config as TOML (default: <output stem>.best.toml)")
-    p.add_argument("--workers", type=int, default=None, help="local worker processes (default: one per core; 1: in this process)")
-    p.add_argument("--scheduler", default=None, metavar="ADDRESS", help="run on a Dask distributed cluster, e.g. tcp://10.0.0.5:8786")
+    add_executor_args(p)
     p.add_argument("--restart", action="store_true", help="discard an existing output (also one from a changed file) and start over")
     p.add_argument("--csv", default=None, metavar="FILE", help="also write the evaluation history as CSV")
     p.add_argument("--quiet", action="store_true", help="no progress bar")

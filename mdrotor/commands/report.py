@@ -5,8 +5,7 @@ from __future__ import annotations
 
 import json
 
-import numpy as np
-
+from mdrotor.commands.common import diffusion_arg
 from mdrotor.errors import InputError
 from mdrotor.report.inputs import PLOT_EXTRA
 from mdrotor.report.page import FORMATS, SUMMARY_FORMATS, write_report
@@ -44,14 +43,7 @@ def add_parser(subparsers, help_text: str):
 
 def main(args) -> int:
     """``mdrotor report``: write the figures and the summary, print what was written and skipped."""
-    D = None
-    if args.diffusion is not None:
-        try:
-            D = float(args.diffusion)
-        except ValueError:
-            raise InputError("--diffusion", f"expected a number in hbar^2/s, got {args.diffusion!r}", "command line") from None
-        if not (np.isfinite(D) and D >= 0):
-            raise InputError("--diffusion", "expected a non-negative diffusion constant in hbar^2/s", "command line")
+    D = diffusion_arg(args.diffusion)
     if args.k is not None and args.k < 1:
         raise InputError("--k", "expected a positive number of quanta", "command line")
     if not 10 <= args.dpi <= 2400:

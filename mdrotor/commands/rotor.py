@@ -6,11 +6,9 @@ from __future__ import annotations
 import json
 import math
 
-import numpy as np
-
 from mdrotor.analysis.laser import rotor_lines
 from mdrotor.analysis.rotor import NULL_REASONS, json_safe, rotor_summary
-from mdrotor.commands.common import add_common
+from mdrotor.commands.common import add_common, diffusion_arg
 from mdrotor.errors import InputError
 from mdrotor.numfmt import plain, value_err
 
@@ -81,15 +79,7 @@ def text(d: dict) -> str:
 
 
 def main(args) -> int:
-    D = None
-    if args.diffusion is not None:
-        try:
-            D = float(args.diffusion)
-        except ValueError:
-            raise InputError("--diffusion", f"expected a number in hbar^2/s, got {args.diffusion!r}", "command line") from None
-        if not (np.isfinite(D) and D >= 0):
-            raise InputError("--diffusion", f"expected a finite, non-negative diffusion constant in hbar^2/s, got {args.diffusion!r}",
-                             "command line")
+    D = diffusion_arg(args.diffusion)
     if args.k is not None and args.k < 1:
         raise InputError("--k", "expected a positive number of quanta", "command line")
     dq = getattr(args, "drift_quanta", 1.0)

@@ -7,7 +7,7 @@ import json
 import sys
 
 from mdrotor.analysis.summary import jsonable
-from mdrotor.commands.common import check_executor_args
+from mdrotor.commands.common import add_executor_args, check_executor_args
 from mdrotor.studies.points import check_points_memory
 from mdrotor.studies.sweep import load_sweep, run_sweep, sweep_text
 from mdrotor.studies.table import export_csv, output_path
@@ -24,8 +24,7 @@ def add_parser(subparsers, help_text: str):
                     "interruption skips the finished points.")
     p.add_argument("sweep", help="sweep file (TOML)")
     p.add_argument("-o", "--output", default=None, help="HDF5 output (default: <sweep stem>.h5); resumed if it exists")
-    p.add_argument("--workers", type=int, default=None, help="local worker processes (default: one per core; 1: in this process)")
-    p.add_argument("--scheduler", default=None, metavar="ADDRESS", help="run on a Dask distributed cluster, e.g. tcp://10.0.0.5:8786")
+    add_executor_args(p)
     p.add_argument("--restart", action="store_true", help="discard an existing output (also one from a changed sweep file) and start over")
     p.add_argument("--csv", default=None, metavar="FILE", help="also write the summary table as CSV")
     p.add_argument("--trajectories", type=int, default=None, help="trajectories per point (overrides the sweep file)")
