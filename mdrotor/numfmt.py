@@ -22,6 +22,8 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
+
 MISSING = "n/a"
 
 
@@ -109,3 +111,25 @@ def interval(p, lo, hi, sig: int = 2) -> str:
         return "0" if v == 0.0 else "1" if v == 1.0 else _fixed(v, d)
 
     return f"{_fixed(p, d)} [{b(lo)}, {b(hi)}]"
+
+def jsonable(v):
+    """A value ready for json.dumps: arrays as lists, numpy scalars as
+    Python numbers, complex numbers as {"re", "im"}, non-finite floats as
+    null (JSON has no NaN). Every command's --json goes through it."""
+    if isinstance(v, dict):
+        return {str(k): jsonable(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [jsonable(x) for x in v]
+    if isinstance(v, np.ndarray):
+        return jsonable(v.tolist())
+    if isinstance(v, (np.bool_, bool)):
+        return bool(v)
+    if isinstance(v, (np.integer, int)):
+        return int(v)
+    if isinstance(v, (complex, np.complexfloating)):
+        return {"re": jsonable(v.real), "im": jsonable(v.imag)}
+    if isinstance(v, (np.floating, float)):
+        return float(v) if np.isfinite(v) else None
+    if isinstance(v, bytes):
+        return v.decode()
+    return v

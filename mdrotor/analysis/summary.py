@@ -9,32 +9,8 @@ from scipy.constants import k as KB
 
 from mdrotor.analysis.laser import run_lines
 from mdrotor.analysis.noise_rates import RESOLVED_SIGMA, fit_resolved, fit_upper_bound
-from mdrotor.numfmt import MISSING, interval, plain, value_err
+from mdrotor.numfmt import MISSING, interval, jsonable, plain, value_err
 from mdrotor.results.stats import FRACTION_INTERVAL
-
-
-# ---------------------------------------------------------------------------
-# command line
-# ---------------------------------------------------------------------------
-def jsonable(v):
-    """A value ready for json.dumps: arrays as lists, numpy scalars as
-    Python numbers, non-finite floats as null (JSON has no NaN)."""
-    if isinstance(v, dict):
-        return {str(k): jsonable(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        return [jsonable(x) for x in v]
-    if isinstance(v, np.ndarray):
-        return jsonable(v.tolist())
-    if isinstance(v, (np.bool_, bool)):
-        return bool(v)
-    if isinstance(v, (np.integer, int)):
-        return int(v)
-    if isinstance(v, (np.floating, float)):
-        return float(v) if np.isfinite(v) else None
-    if isinstance(v, bytes):
-        return v.decode()
-    return v
-
 
 def _modes_list(obs) -> list:
     s = obs.summary

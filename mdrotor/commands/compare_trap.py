@@ -6,10 +6,9 @@ from __future__ import annotations
 import json
 import sys
 
-from mdrotor.analysis.summary import jsonable
 from mdrotor.commands.common import add_common
 from mdrotor.config.parse import load_config
-from mdrotor.numfmt import interval, value_err
+from mdrotor.numfmt import interval, jsonable, value_err
 from mdrotor.studies.compare_trap import compare_trap
 
 

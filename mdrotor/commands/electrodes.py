@@ -27,6 +27,7 @@ from mdrotor.electrodes.torque_scan import RIPPLE_FLOOR
 from mdrotor.electrodes.waveform import write_waveform
 from mdrotor.errors import InputError
 from mdrotor.inputfiles import read_text
+from mdrotor.numfmt import jsonable
 from mdrotor.studies.design_check import design_check, prepare_design
 
 EXIT_INPUT = 2
@@ -73,26 +74,6 @@ def _load_layout(path, overrides):
     return parse_layout(data, src)
 
 
-def _jsonable(x):
-    import numpy as np
-
-    if isinstance(x, dict):
-        return {str(k): _jsonable(v) for k, v in x.items()}
-    if isinstance(x, (list, tuple)):
-        return [_jsonable(v) for v in x]
-    if isinstance(x, complex):
-        return {"re": x.real, "im": x.imag}
-    if isinstance(x, np.ndarray):
-        return _jsonable(x.tolist())
-    if isinstance(x, (np.floating,)):
-        return float(x)
-    if isinstance(x, (np.integer,)):
-        return int(x)
-    if isinstance(x, np.bool_):
-        return bool(x)
-    if isinstance(x, float) and (x != x or x in (float("inf"), float("-inf"))):
-        return None
-    return x
 
 
 def _khz(f):
@@ -271,11 +252,11 @@ def main(args) -> int:
             d = write_waveform(args.waveform, layout, ds.plan, cfg, rate, allow_over=args.allow_over)
             d.update({"order": ds.plan.order, "strength_si": ds.plan.strength_si, "target_from": ds.target["from"],
                       "layout": layout.source, "config": cfg.source})
-            print(json.dumps(_jsonable(d)) if args.json else waveform_text(d))
+            print(json.dumps(jsonable(d)) if args.json else waveform_text(d))
             return 0
 
         d = design_check(layout, cfg)
-    print(json.dumps(_jsonable(d)) if args.json else check_text(d))
+    print(json.dumps(jsonable(d)) if args.json else check_text(d))
     return 0
 
 

@@ -7,10 +7,10 @@ import json
 import sys
 from pathlib import Path
 
-from mdrotor.analysis.summary import jsonable
 from mdrotor.commands.common import add_executor_args, check_executor_args
 from mdrotor.engine.run import check_memory
 from mdrotor.errors import InputError
+from mdrotor.numfmt import jsonable
 from mdrotor.studies.optimize import load_optimize, optimize_text, run_optimize
 from mdrotor.studies.table import export_csv, output_path
 

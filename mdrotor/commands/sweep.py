@@ -6,8 +6,8 @@ from __future__ import annotations
 import json
 import sys
 
-from mdrotor.analysis.summary import jsonable
 from mdrotor.commands.common import add_executor_args, check_executor_args
+from mdrotor.numfmt import jsonable
 from mdrotor.studies.points import check_points_memory
 from mdrotor.studies.sweep import load_sweep, run_sweep, sweep_text
 from mdrotor.studies.table import export_csv, output_path
