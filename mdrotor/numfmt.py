@@ -115,7 +115,8 @@ def interval(p, lo, hi, sig: int = 2) -> str:
 def jsonable(v):
     """A value ready for json.dumps: arrays as lists, numpy scalars as
     Python numbers, complex numbers as {"re", "im"}, non-finite floats as
-    null (JSON has no NaN). Every command's --json goes through it."""
+    null (JSON has no NaN). The commands' --json output goes through it
+    (rotor's through analysis.rotor.json_safe, which also says why a value is null)."""
     if isinstance(v, dict):
         return {str(k): jsonable(x) for k, x in v.items()}
     if isinstance(v, (list, tuple)):

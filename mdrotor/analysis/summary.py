@@ -12,6 +12,7 @@ from mdrotor.analysis.noise_rates import RESOLVED_SIGMA, fit_resolved, fit_upper
 from mdrotor.numfmt import MISSING, interval, jsonable, plain, value_err
 from mdrotor.results.stats import FRACTION_INTERVAL
 
+
 def _modes_list(obs) -> list:
     s = obs.summary
     means = s.get("mode_n_mean")

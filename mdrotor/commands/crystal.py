@@ -13,6 +13,7 @@ from mdrotor import units
 from mdrotor.commands.common import add_common
 from mdrotor.config.parse import load_config
 from mdrotor.model.build import assess_config, crystal_from_config
+from mdrotor.numfmt import jsonable
 from mdrotor.physics.pinning import MOMENT_REL
 from mdrotor.version import __version__
 
@@ -145,7 +146,7 @@ def main(args) -> int:
         cr = crystal_from_config(cfg, f_rot)
         holding = assess_config(cfg, cr.f_rot_hz, start=cr.positions_m) if cfg.pinning else None
     if args.json:
-        print(json.dumps(crystal_json(cfg, cr, holding)))
+        print(json.dumps(jsonable(crystal_json(cfg, cr, holding))))
     else:
         print(crystal_text(cfg, cr, holding))
         for w in cr.warnings:

@@ -7,6 +7,7 @@ import json
 import sys
 
 from mdrotor.errors import InputError
+from mdrotor.numfmt import jsonable
 from mdrotor.studies.quantum import number_in_range, quantum_report, text
 
 
@@ -45,7 +46,7 @@ def main(args) -> int:
                        stretch=not args.rigid, progress=not args.quiet and not args.json,
                        max_columns=args.max_columns, output=args.output)
     if args.json:
-        print(json.dumps(d))
+        print(json.dumps(jsonable(d)))
     else:
         print(text(d, args.lines))
     sys.stdout.flush()

@@ -7,6 +7,7 @@ import json
 
 from mdrotor.commands.common import diffusion_arg
 from mdrotor.errors import InputError
+from mdrotor.numfmt import jsonable
 from mdrotor.report.inputs import PLOT_EXTRA
 from mdrotor.report.page import FORMATS, SUMMARY_FORMATS, write_report
 
@@ -58,7 +59,7 @@ def main(args) -> int:
     rep = write_report(args.source, args.output, args.format, summary=args.summary, diffusion_hbar2_per_s=D, k=args.k,
                        metrics=args.metrics, axes=args.axes, fixed=fixed, dpi=args.dpi)
     if args.json:
-        print(json.dumps(rep))
+        print(json.dumps(jsonable(rep)))
         return 0
     print(f"report of {args.source} ({rep['kind']}) in {rep['output_dir']}/")
     for p in rep["figures"]:
