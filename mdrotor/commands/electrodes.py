@@ -133,12 +133,7 @@ def check_text(d: dict) -> str:
         L.append("  largest unwanted terms (rms on the crystal sphere / target's): "
                  + ", ".join(f"(l={u['l']}, m={u['m']}) {u['rel'] * 100:.2g} %" for u in unw))
     if "full" not in d:
-        for note in d["notes"]:
-            L.append(f"note: {note}")
-        L.append("")
-        L.append("verdict: " + ("OK" if d["verdict"]["ok"] else "PROBLEMS: " + "; ".join(d["verdict"]["problems"])))
-        L.append(f"CAUTION: {d['caution']}")
-        return "\n".join(L)
+        return _closing(L, d)
     fu, fi, cm = d["full"], d["fitted"], d["comparison"]
     lab = fu["lab"]
     L.append("")
@@ -204,6 +199,11 @@ def check_text(d: dict) -> str:
         L.append(f"  no torque harmonic other than the pinning above {RIPPLE_FLOOR:.0e} of {what}")
     if st["lag_ripple_rad"] is not None:
         L.append(f"  lag ripple over a turn: +-{st['lag_ripple_rad'] * 1e3:.3g} mrad")
+    return _closing(L, d)
+
+
+def _closing(L: list, d: dict) -> str:
+    """The check's notes, its verdict and the safety caution, last in the text."""
     for note in d["notes"]:
         L.append(f"note: {note}")
     L.append("")

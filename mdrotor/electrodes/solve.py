@@ -41,7 +41,7 @@ lab's safety rules; the solver only knows the limits in the layout file.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy.optimize import lsq_linear
@@ -545,11 +545,9 @@ def resolved_table(table: MultipoleTable) -> MultipoleTable:
     coefficient, say), which a solve without limits would otherwise exploit
     with absurd voltages.
     """
-    import dataclasses
-
     size = np.abs(table.coeffs) * np.array([table.term_rms[j] * table.radius_m ** l for j, (l, m) in enumerate(table.terms)])
     floor = 10.0 * np.maximum(table.residual_rms, 1e-15 * table.potential_rms)
-    return dataclasses.replace(table, coeffs=np.where(size > floor[:, None], table.coeffs, 0.0))
+    return replace(table, coeffs=np.where(size > floor[:, None], table.coeffs, 0.0))
 
 
 def lacking_terms(table: MultipoleTable, use, order: int, suppress_order: int, free, reaches) -> str:

@@ -37,7 +37,7 @@ left out of the mode list (the one about z is reported as L).
 from __future__ import annotations
 
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import constants as sc
@@ -643,8 +643,6 @@ def compute_crystal(pot: Potential, f_rot_hz: float = 0.0, *, seed: int = 0,
 
     ``pot.omega_frame`` is overridden by ``2 pi f_rot_hz``.
     """
-    from dataclasses import replace
-
     if abs(f_rot_hz) < SLOW_ROTATION_HZ:
         # below ~1 hbar of L for any crystal here: the lab frame, where the
         # nearly degenerate rotating-frame pairs (split by 2 w) are not

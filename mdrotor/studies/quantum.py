@@ -54,8 +54,6 @@ def _ensemble_from_result(path):
 
 
 def _ensemble_run(cfg, trajectories, progress):
-    import numpy as np
-
 
     res = run(cfg, trajectories=trajectories, progress=progress)
     out = {}
@@ -92,8 +90,6 @@ def quantum_report(source, *, overrides=(), trajectories=None, ensemble: bool = 
         (:func:`mdrotor.results.store.save_quantum`); refused before any work when
         it cannot be written.
     """
-    import numpy as np
-
 
     samples = None
     if output is not None:
