@@ -59,10 +59,12 @@ def complex_xy(r: np.ndarray, masses: np.ndarray | None = None) -> np.ndarray:
 
 def moment_of_inertia(r: np.ndarray, masses: np.ndarray, *, about: str = "com") -> float:
     """I_z (kg m^2) of one configuration (N, 3), about the centre of mass
-    (``about="com"``) or the trap axis (``about="axis"``)."""
+    (``about="com"``) or the trap axis (``about="axis"``). About the centre
+    of mass, one ion or ions all on the axis (:func:`on_axis`) have no
+    rotation of their own: 0 exactly (computed, a rounding residue)."""
     m = np.asarray(masses, dtype=float)
-    if about == "com" and len(m) < 2:
-        return 0.0  # one ion: no rotation about its own centre of mass
+    if about == "com" and (len(m) < 2 or on_axis(r, m)):
+        return 0.0
     z = complex_xy(r, m if about == "com" else None)
     return float(np.sum(m * np.abs(z) ** 2))
 

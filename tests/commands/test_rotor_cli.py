@@ -95,7 +95,7 @@ def test_string_on_the_axis_has_no_rotor_quantities(tmp_path, capsys):
     """Three ions in a string along z (axial 0.5 MHz below radial 2 MHz): every ion is on the rotation
     axis, so I_z = sum m rho^2 = 0 (geometry) and hbar/I, L and the rotational lines do not exist.
     Before, the rounding residue I ~ 3e-77 kg m^2 gave hbar/(2 pi I) ~ 6e41 Hz; now `crystal` reports
-    I = 0 with null rotor quantities and `rotor` refuses in one line (exit 2)."""
+    I = 0 with null rotor quantities, and `rotor` and `quantum` refuse in one line (exit 2)."""
     p = tmp_path / "string.toml"
     p.write_text(two_ion_toml(crystal={"ions": ["40Ca+"] * 3}, trap={"f_radial": "2.0 MHz", "f_axial": "0.5 MHz"},
                               pinning=None, rotation=None, stage=[{"name": "hold", "duration": "10 us"}]))
@@ -103,5 +103,9 @@ def test_string_on_the_axis_has_no_rotor_quantities(tmp_path, capsys):
     d = json.loads(capsys.readouterr().out)
     assert d["moment_of_inertia_kg_m2"] == 0.0 and d["hbar_over_I_hz"] is None and d["L_hbar"] is None
     assert main(["rotor", str(p)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "rotation axis" in err and "Traceback" not in err
+    # the quantum rotor takes I about the centre of mass (frame.moment_of_inertia): refused the same way
+    assert main(["quantum", str(p), "--no-ensemble"]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "rotation axis" in err and "Traceback" not in err
