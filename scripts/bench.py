@@ -643,8 +643,8 @@ def engine_cases() -> list[tuple[str, dict]]:
 
 def bench_engine(label, raw, n_traj, n_steps, repeats, threads, seed=1) -> dict:
     """Steps of the whole engine (engine.BlockStepper: schedule sampling, noise
-    synthesis, laser kicks, kernel), as a run does them, on ``threads``
-    threads."""
+    synthesis, laser kicks, kernel), as a run does them (``n_steps`` of the
+    first stage in blocks of engine.BLOCK_STEPS), on ``threads`` threads."""
     from mdrotor.config.parse import from_dict
 
     numba.set_num_threads(threads)
@@ -661,7 +661,8 @@ def bench_engine(label, raw, n_traj, n_steps, repeats, threads, seed=1) -> dict:
         state = engine.RunState.start(plan, pos0.copy(), vel0.copy(), rf_phases=phases, noise=noise_state,
                                       laser_keys=engine.laser_keys(seed, idx) if plan.lasers else None)
         t0, c0, m0 = time.perf_counter(), time.process_time(), machine_busy_s()
-        stepper.advance_block(state, 0, 0.0, plan.stage_dt[0], n_steps if r else 8, noise_step0=0)
+        # the run's blocks of stage 0 (the next block's arrays made while the pool steps this one)
+        stepper.advance_stage(state, 0, engine.stage_blocks(n_steps if r else 8))
         if r:
             wall, cpu = time.perf_counter() - t0, time.process_time() - c0
             if wall < best:
@@ -1177,7 +1178,7 @@ def main(argv=None) -> int:
         sizes = dict(traj=4096, steps=2000, repeats=15,
                      np_traj=4096, np_steps=200, np_repeats=3,
                      ivp_n=(2, 4, 8), ivp_time=20e-6, ivp_traj=3, ivp_repeats=3, rtols=rtols, tight=True,
-                     mem_steps=(1000, 10_000), mem_traj=10_000, eng_traj=2048, eng_steps=1024, eng_repeats=3,
+                     mem_steps=(1000, 10_000), mem_traj=10_000, eng_traj=2048, eng_steps=4096, eng_repeats=5,
                      rf_traj=200, rf_cost_traj=400, rf_spin_up="0.2 ms", rf_cost_spin_up=None)
     t_start = time.perf_counter()
     result = {"machine": machine_info(), "settings": {k: (list(v) if isinstance(v, tuple) else v)

@@ -8,8 +8,9 @@ Main loop (pseudocode)::
     for stage in schedule:
         for block in stage (<= BLOCK_STEPS steps, ends at series times):
             sample theta(t), pinning multipliers at every force time of the block
-            kernels.advance(pos, vel, block arrays)      # whole block in numba
-            [series point]
+            kernels.start_advance(pos, vel, block arrays)   # whole block in numba, chunks on the pool
+            [sample the next block while the pool steps this one]
+            wait; [series point]
         observe(end of stage)
 
 Memory is O(trajectories x ions) plus one block of schedule samples,
@@ -17,7 +18,7 @@ independent of the number of steps.
 
 The plan is frozen (:class:`Plan`; what is derived from it later is memoised
 in ``plan.memo``); everything that changes during a run is a
-:class:`RunState`, advanced only by :meth:`BlockStepper.advance_block`.
+:class:`RunState`, advanced only by :class:`BlockStepper`.
 """
 
 from __future__ import annotations
@@ -35,7 +36,7 @@ from mdrotor.engine.initial import (
     sample_normal_coordinates,
     trajectory_rng,
 )
-from mdrotor.engine.kernels import advance, lag_phases, substep_fractions, wrap_angle
+from mdrotor.engine.kernels import advance, lag_phases, start_advance, substep_fractions, wrap_angle
 from mdrotor.engine.noise import kernel_arrays
 from mdrotor.engine.observe import observe
 from mdrotor.errors import InputError, PhysicsError
@@ -751,21 +752,19 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
     t = 0.0
     bounds = sched.boundaries_s
     for k, st in enumerate(sched.stages):
-        n_left = plan.stage_steps[k]
         dt = plan.stage_dt[k]
-        step0 = 0
         every = series_steps(plan, k) if plan.series_interval_s else 0  # series point every `every` steps
-        while n_left > 0:
-            nb = min(BLOCK_STEPS, n_left, every - step0 % every if every else BLOCK_STEPS)
-            stepper.advance_block(state, k, bounds[k] + dt * step0, dt, nb, noise_step0=step0)
-            n_left -= nb
-            step0 += nb
-            t = bounds[k] + dt * step0
+
+        def after_block(step0, nb, k=k, st=st, dt=dt, every=every):
+            end = step0 + nb
             if progress is not None:
                 progress.update(nb * T)
-            if every and step0 % every == 0 and n_left > 0:
+            if every and end % every == 0 and end < plan.stage_steps[k]:
+                t = bounds[k] + dt * end
                 obs = stepper.observe(state, k, t, dt)
                 series.append(series_values(obs, t, st.name) if series_raw else _series_point(obs, t, st.name))
+
+        stepper.advance_stage(state, k, stage_blocks(plan.stage_steps[k], every), after_block)
         t = bounds[k + 1]
         if observe_stages or k == len(sched.stages) - 1:
             stages[st.name] = stepper.observe(state, k, t, dt)
@@ -777,6 +776,17 @@ def integrate(plan: Plan, pos: np.ndarray, vel: np.ndarray, *, chunk: int = 64, 
             obs = stages[st.name]
             series.append(series_values(obs, t, st.name) if series_raw else _series_point(obs, t, st.name))
     return RawRun(plan, initial, stages, series, time.perf_counter() - t0, T)
+
+
+def stage_blocks(n_steps: int, every: int = 0):
+    """The blocks of a stage of ``n_steps`` steps, ``(step0, n)`` in order:
+    at most BLOCK_STEPS steps each, ending at every multiple of ``every``
+    steps (the time-series points; 0: none)."""
+    step0 = 0
+    while step0 < n_steps:
+        nb = min(BLOCK_STEPS, n_steps - step0, every - step0 % every if every else BLOCK_STEPS)
+        yield step0, nb
+        step0 += nb
 
 
 def series_steps(plan: Plan, k: int) -> int:
@@ -818,8 +828,8 @@ def warm_up(plan: Plan, pos: np.ndarray, vel: np.ndarray, rf_phases=None, noise_
 @dataclass(eq=False)
 class RunState:
     """The trajectories' state during a run: the only mutable thing of the
-    engine, and only :meth:`BlockStepper.advance_block` advances it (the
-    kernel updates positions, velocities, lag, colored-noise states and photon
+    engine, and only a :class:`BlockStepper` advances it (``advance_block``,
+    ``advance_stage``; the kernel updates positions, velocities, lag, colored-noise states and photon
     counts in place); :func:`integrate` sets the lag's start and resets the
     photon counts at each stage's end.
 
@@ -886,6 +896,45 @@ class BlockStepper:
         from 0. Noise and laser beams act only when ``noise_step0`` (the
         block's first step within the stage) is given: measurement windows
         run without them."""
+        advance(*self.kernel_args(state, stage, t_start, dt, n, frozen=frozen, noise_step0=noise_step0, spin=spin))
+
+    def advance_stage(self, state: RunState, stage: int, blocks, after=None) -> None:
+        """Advance ``state`` through ``blocks`` of ``stage`` in order, each
+        ``(step0, n)``: n steps from the stage's step step0, noise and beams
+        on, as :meth:`advance_block` does them one by one (the same
+        numbers); after each block, ``after(step0, n)`` (progress, a series
+        point) sees the state at the block's end.
+
+        On more than one thread the next block's arrays (schedule samples,
+        noise and beam arrays: they depend on the plan and the times, never
+        on the state's values) are made while the thread pool steps the
+        current block, so that this Python part of each block does not
+        leave a core idle (:func:`mdrotor.engine.kernels.start_advance`)."""
+        dt = self.plan.stage_dt[stage]
+        t0 = float(self.plan.schedule.boundaries_s[stage])
+
+        def kernel_args(block):
+            return self.kernel_args(state, stage, t0 + dt * block[0], dt, block[1], noise_step0=block[0])
+
+        blocks = iter(blocks)
+        block = next(blocks, None)
+        args = kernel_args(block) if block is not None else None
+        while block is not None:
+            running = start_advance(*args)
+            following = next(blocks, None)
+            args = kernel_args(following) if following is not None else None
+            running.wait()
+            if after is not None:
+                after(*block)
+            block = following
+
+    def kernel_args(self, state: RunState, stage: int, t_start: float, dt: float, n: int, *,
+                    frozen: bool = False, noise_step0: int | None = None, spin: float = 0.0) -> tuple:
+        """The arguments of :func:`mdrotor.engine.kernels.advance` for the
+        block of :meth:`advance_block` (the same parameters): the schedule
+        sampled at the block's force times, the pinning coefficients, the RF
+        drive and propagator maps, the noise and beam arrays, and the state's
+        arrays (referenced, not copied: the kernel updates them in place)."""
 
         plan = self.plan
         sched = plan.schedule
@@ -928,7 +977,7 @@ class BlockStepper:
                 step = int(sum(plan.stage_steps[:stage])) + int(noise_step0)
                 laser = arrays + (state.laser_keys, step, state.photons)
         poly = _poly_coefficients(plan, t_sched, theta)
-        advance(state.pos, state.vel, dt, n, plan.fracs, model_k, drive, (plan.pin_orders, c_re, c_im), poly, lag,
+        return (state.pos, state.vel, dt, n, plan.fracs, model_k, drive, (plan.pin_orders, c_re, c_im), poly, lag,
                 noise, laser, self.chunk)
 
     def _lattice_step(self, state: RunState, stage: int, t_start: float, dt: float) -> int | None:

@@ -805,6 +805,30 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
     pruned at compile time, so a run compiles only the code it needs; the
     other arguments' empty arrays (no rows) also mean "off".
     """
+    start_advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, laser, chunk).wait()
+
+
+class Advancing:
+    """A block of steps under way on the thread pool (:func:`start_advance`):
+    :meth:`wait` returns when every chunk is done (and raises what a chunk
+    raised). Until then the arrays given to the kernel must not be read or
+    written: the chunks update them in place."""
+
+    def __init__(self, jobs: list):
+        self._jobs = jobs
+
+    def wait(self) -> None:
+        for job in self._jobs:
+            job.result()
+        self._jobs = []
+
+
+def start_advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, laser, chunk) -> Advancing:
+    """Start :func:`advance` (the same arguments) and return at once when
+    it runs on more than one thread, so that the caller can prepare the next
+    block's arrays while the chunks run (:meth:`Advancing.wait` joins
+    them); on one thread (or one chunk) it runs here, before returning.
+    The chunks and their numbers are the same either way."""
     T = pos.shape[2]
     starts = range(0, T, chunk)
     args = (pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, laser)
@@ -812,11 +836,10 @@ def advance(pos, vel, dt, n_steps, fracs, model, drive, pin, poly, lag, noise, l
     if threads == 1 or len(starts) == 1:
         for b0 in starts:
             _advance_chunk(b0, min(T, b0 + chunk), *args)
-        return
+        return Advancing([])
     pool = _pool(threads)
     # every chunk writes only its own trajectories' columns: the order the threads take them in is free
-    for job in [pool.submit(_advance_chunk, b0, min(T, b0 + chunk), *args) for b0 in starts]:
-        job.result()
+    return Advancing([pool.submit(_advance_chunk, b0, min(T, b0 + chunk), *args) for b0 in starts])
 
 
 _POOLS: dict = {}
