@@ -33,15 +33,13 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import constants as sc
 
 from mdrotor.numfmt import plain, value_err
+from mdrotor.physics.constants import HBAR, K_B
 from mdrotor.physics.laser import SAFETY, doppler_temperature_k, rotor_laser
 from mdrotor.results.stats import mean_sem
 from mdrotor.results.status import usable
 
-HBAR = sc.hbar
-KB = sc.k
 RATE_NODES = 16  # quantiles of the trajectories' rotation rates at which the rigid crystal is evaluated
 
 
@@ -90,7 +88,7 @@ def run_block(plan, raw) -> dict:
             dl, dl_err = math.nan, math.nan
         modes = after["_modes"]
         off = 0.5 if plan.wigner else 0.0
-        e = (after["mode_n"][ok] + off) * (HBAR * np.asarray(modes.omega))[None, :] / KB
+        e = (after["mode_n"][ok] + off) * (HBAR * np.asarray(modes.omega))[None, :] / K_B
         temps = [mean_sem(e[:, j]) for j in range(e.shape[1])]
         cols["t0_s"].append(t0)
         cols["t1_s"].append(t1)

@@ -5,11 +5,11 @@
 from __future__ import annotations
 
 import numpy as np
-from scipy.constants import k as KB
 
 from mdrotor.analysis.laser import run_lines
 from mdrotor.analysis.noise_rates import RESOLVED_SIGMA, fit_resolved, fit_upper_bound
 from mdrotor.numfmt import MISSING, interval, jsonable, plain, value_err
+from mdrotor.physics.constants import K_B
 from mdrotor.results.stats import FRACTION_INTERVAL
 
 
@@ -146,7 +146,7 @@ def summary_text(res, path=None) -> str:
         for i, (ar, az, rad) in enumerate(zip(np.atleast_1d(mm["amplitude_radial_m"]), np.atleast_1d(mm["amplitude_axial_m"]),
                                               np.atleast_1d(mm["radius_m"]))):
             lines.append(f"  ion {i}: radial {ar * 1e9:8.2f} nm, axial {az * 1e9:8.2f} nm   (radius {rad * 1e6:.3f} um)")
-        mk = 1e3 / KB
+        mk = 1e3 / K_B
         lines.append(f"  time-averaged micromotion kinetic energy: {value_err(mm['ke_measured_j'] * mk, mm['ke_measured_err_j'] * mk)} mK k_B "
                      f"(lowest order {plain(mm['ke_lowest_order_j'] * mk, 4)} mK k_B)")
         lines.append("  phonons and L are measured on the secular motion (two RF-period averages; see docs/rf.md)")

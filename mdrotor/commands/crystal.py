@@ -7,13 +7,13 @@ import sys
 import warnings
 
 import numpy as np
-from scipy.constants import k as KB
 
 from mdrotor import units
 from mdrotor.commands.common import add_common
 from mdrotor.config.parse import load_config
 from mdrotor.model.build import assess_config, crystal_from_config
 from mdrotor.numfmt import jsonable
+from mdrotor.physics.constants import K_B
 from mdrotor.physics.pinning import MOMENT_REL
 from mdrotor.version import __version__
 
@@ -130,7 +130,7 @@ def crystal_text(cfg, cr, holding) -> str:
             alpha = holding.alpha_max_rad_s2
             lines.append(f"largest angular acceleration before a slip   {alpha:.4e} rad/s^2"
                          f" (an f_rot ramp of {alpha / TWO_PI / 1e6:.4g} kHz/ms)")
-            lines.append(f"pinning barrier   {holding.barrier_j / KB * 1e3:.4g} mK x k_B")
+            lines.append(f"pinning barrier   {holding.barrier_j / K_B * 1e3:.4g} mK x k_B")
         for note in _pin_notes(cfg, cr, holding):
             lines.append(f"note: {note}")
     return "\n".join(lines)

@@ -22,14 +22,13 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import constants as sc
 
 from mdrotor.electrodes.full_field import RFPseudoTerm
+from mdrotor.physics.constants import K_B
 
 __all__ = ["rigid_scan", "N_PHI", "RIPPLE_FLOOR"]
 
 TWO_PI = 2.0 * math.pi
-K_B = sc.k
 #: Grid of crystal angles for the rigid scan (a power of 2 for the FFT).
 N_PHI = 256
 #: Torque harmonics below this fraction of the pinning torque are not listed

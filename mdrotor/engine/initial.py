@@ -23,10 +23,8 @@ b), never on chunking, threads or the other trajectories.
 from __future__ import annotations
 
 import numpy as np
-from scipy import constants as sc
 
-HBAR = sc.hbar
-KB = sc.k
+from mdrotor.physics.constants import HBAR
 
 
 def trajectory_rng(seed: int, index: int, stream: int = 0) -> np.random.Generator:

@@ -28,7 +28,6 @@ import time
 from dataclasses import dataclass, field, replace
 
 import numpy as np
-from scipy import constants as sc
 
 from mdrotor.engine.initial import (
     counter_keys,
@@ -41,7 +40,7 @@ from mdrotor.engine.noise import kernel_arrays
 from mdrotor.engine.observe import observe
 from mdrotor.errors import InputError, PhysicsError
 from mdrotor.model.build import config_terms, model_potential
-from mdrotor.physics.constants import K_COULOMB
+from mdrotor.physics.constants import HBAR, K_B, K_COULOMB
 from mdrotor.physics.frame import alignment_angle, rotate_positions, rotate_states
 from mdrotor.physics.laser import emission_sqrt, max_friction_coefficient
 from mdrotor.physics.mathieu import transfer_matrices
@@ -50,8 +49,6 @@ from mdrotor.physics.statics import compute_crystal, mode_occupations
 from mdrotor.results.status import usable
 
 TWO_PI = 2.0 * np.pi
-HBAR = sc.hbar
-KB = sc.k
 BLOCK_STEPS = 2048
 LASER_STREAM = 4  # SeedSequence spawn_key (trajectory, 4): each trajectory's key for the recoil kicks
 # the laser kick is a first-order splitting of a velocity-dependent force: the automatic dt keeps its
@@ -284,7 +281,7 @@ def make_plan(cfg) -> Plan:
         except PhysicsError as e:
             raise e.with_source(cfg.source)
         h0 = holding0
-        kT = KB * cfg.initial.temperature_k
+        kT = K_B * cfg.initial.temperature_k
         if (h0.held and kT > 0 and h0.barrier_j < BARRIER_KT_MIN * kT and h0.curve is not None
                 and "libration" in cr.modes.labels):
             u = h0.curve.energy_j - np.min(h0.curve.energy_j)
@@ -484,7 +481,7 @@ def initial_states(plan: Plan, seed: int, indices: np.ndarray):
             phi = rng.uniform(0.0, TWO_PI)
             if thermal_rotor:  # inverse CDF of the Boltzmann weight on the held curve
                 phi = float(np.interp(phi / TWO_PI, plan.rotor_cdf[1], plan.rotor_cdf[0]))
-            dl = rng.standard_normal() * math.sqrt(I * KB * cfg.initial.temperature_k)
+            dl = rng.standard_normal() * math.sqrt(I * K_B * cfg.initial.temperature_k)
             rc = r - np.sum(m[:, None] * r, axis=0) / np.sum(m)
             v[:, 0] += -dl / I * rc[:, 1]
             v[:, 1] += dl / I * rc[:, 0]

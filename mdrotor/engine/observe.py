@@ -46,8 +46,8 @@ from __future__ import annotations
 from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy import constants as sc
 
+from mdrotor.physics.constants import HBAR
 from mdrotor.physics.frame import (
     alignment_angle,
     alignment_angle_of,
@@ -59,7 +59,6 @@ from mdrotor.physics.statics import compute_crystal, normal_modes, quanta
 from mdrotor.physics.trap import DECONFINED_FRACTION
 from mdrotor.results.status import Status
 
-HBAR = sc.hbar
 TWO_PI = 2.0 * np.pi
 
 

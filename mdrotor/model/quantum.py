@@ -44,11 +44,11 @@ import warnings
 from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy import constants as sc
 
 from mdrotor.errors import InputError, PhysicsError
 from mdrotor.model.build import assess_config, model_potential
 from mdrotor.physics import frame, pinning
+from mdrotor.physics.constants import HBAR, K_B
 from mdrotor.physics.noise import moment_vanishes
 from mdrotor.physics.quantum_rotor import (
     KickChannel,
@@ -61,8 +61,6 @@ from mdrotor.physics.quantum_rotor import (
 from mdrotor.physics.rotor import allowed_L_ladder
 from mdrotor.physics.statics import compute_crystal, find_equilibrium, mode_occupations
 
-HBAR = sc.hbar
-KB = sc.k
 TWO_PI = 2.0 * np.pi
 STRETCH_NODES = 10
 NOISE_NODES = 33         # rate samples per stage
@@ -412,9 +410,9 @@ def build(cfg, *, stretch: bool = True, cut: float = 1e-4) -> QuantumSetup:
         nbar = float(mode_occupations(cr0.modes, ini.temperature_k, ini.occupations, wigner=True)[k])
         beta = math.log1p(1.0 / nbar) / (HBAR * TWO_PI * f_lib) if nbar > 0 else math.inf
     else:
-        beta = 1.0 / (KB * ini.temperature_k) if ini.temperature_k > 0 else math.inf
+        beta = 1.0 / (K_B * ini.temperature_k) if ini.temperature_k > 0 else math.inf
         if any(sel == "libration" for sel, _ in ini.occupations):
             notes.append("the crystal is not pinned at t = 0: the libration occupation is not used")
-    temp = 0.0 if math.isinf(beta) else 1.0 / (KB * beta)
+    temp = 0.0 if math.isinf(beta) else 1.0 / (K_B * beta)
     return QuantumSetup(model, ThermalState(beta, cut), I0, N, cycles, stat, f_lib, _libration_of_model(model),
                         nbar, temp, tuple(notes), holding.describe() if holding is not None else None)

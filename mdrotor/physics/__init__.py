@@ -1,6 +1,6 @@
 """The physics of a rotating ion crystal: pure functions and small frozen types, no files, no config.
 
-constants      shared constants (Coulomb constant)
+constants      shared constants (Coulomb constant; hbar and k_B from scipy.constants, CODATA)
 species        ion table: masses, charges, nuclear spins; the usual cooling line per element
 mathieu        Mathieu stability and characteristic exponents; (a, q) <-> secular frequency
 trap           the harmonic trap: per-ion secular frequencies, the rotation limit of the radial confinement

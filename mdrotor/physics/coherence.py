@@ -126,9 +126,9 @@ by ``q = n``.
 from __future__ import annotations
 
 import numpy as np
-from scipy.constants import hbar
 
 from mdrotor.errors import InputError
+from mdrotor.physics.constants import HBAR
 
 __all__ = [
     "decay_exponent",
@@ -248,7 +248,7 @@ def _invert_x_minus_sin(c: float) -> float:
 
 def _rates(dl, D, I, kick_quanta):
     """``(b, q, gamma_q)``: relative angular velocity (rad/s), kick size, kick rate (1/s)."""
-    b = hbar * dl / I
+    b = HBAR * dl / I
     q = kick_quanta
     return b, q, D / q**2
 
@@ -398,7 +398,7 @@ def short_time_contrast(t_s, dl: int, D_hbar2_per_s: float, I_kg_m2: float, *,
     D = _nonneg(D_hbar2_per_s, "D_hbar2_per_s", func)
     I = _positive(I_kg_m2, "I_kg_m2", func)
     kind = _kind(kind, func)
-    b = hbar * dl / I
+    b = HBAR * dl / I
     expo = D * b**2 * t**3 / 3.0
     if kind == "echo":
         expo = expo / 4.0
@@ -452,7 +452,7 @@ def short_time_validity_s(dl: int, I_kg_m2: float, *, rel_tol: float = 0.01,
 
     # R(x) decreases from 1 (x -> 0) to 6/x^2 (x >> 1): 1 - R(30) > 0.99.
     x = brentq(deviation, 1e-3 * np.sqrt(tol), 30.0, xtol=1e-15, rtol=4e-15)
-    qb = q * hbar * abs(dl) / I
+    qb = q * HBAR * abs(dl) / I
     return float(x / qb if kind == "ramsey" else 2.0 * x / qb)
 
 
@@ -496,7 +496,7 @@ def coherence_time_s(dl: int, D_hbar2_per_s: float, I_kg_m2: float,
     kind = _kind(kind, func)
     if D == 0 or dl == 0:
         return float("inf")
-    qb = q * hbar * abs(dl) / I
+    qb = q * HBAR * abs(dl) / I
     kappa = (2.0 if kind == "ramsey" else 4.0) * D / (q**2 * qb)
     x = _invert_x_minus_sin(-np.log(c) / kappa)
     return float(x / qb if kind == "ramsey" else 2.0 * x / qb)
@@ -606,7 +606,7 @@ def master_equation_coherence(t_s, dl: int, D_hbar2_per_s: float, I_kg_m2: float
     L_lo = L0 + min(0, dl) - L_cut
     L = np.arange(L_lo, L0 + max(0, dl) + L_cut + 1)
     n = L.size
-    w = hbar * L.astype(float) ** 2 / (2.0 * I)          # E_L / hbar, 1/s
+    w = HBAR * L.astype(float) ** 2 / (2.0 * I)          # E_L / hbar, 1/s
     one = sp.identity(n, format="csr")
     U = sp.eye(n, k=-q, format="csr")                       # U[i+q, i] = 1
     gam = D / q**2

@@ -109,10 +109,9 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import constants as sc
 
-HBAR = sc.hbar
-KB = sc.k
+from mdrotor.physics.constants import HBAR, K_B
+
 TWO_PI = 2.0 * math.pi
 
 PATTERNS = ("isotropic", "linear", "circular")
@@ -323,13 +322,13 @@ def doppler_temperature_k(s, delta_rad_s, gamma_rad_s, xi):
     if d >= 0.0:
         return math.inf
     x = 2.0 * d / gamma_rad_s
-    return (1.0 + xi) * HBAR * gamma_rad_s**2 * (1.0 + s + x * x) / (16.0 * abs(d) * KB)
+    return (1.0 + xi) * HBAR * gamma_rad_s**2 * (1.0 + s + x * x) / (16.0 * abs(d) * K_B)
 
 
 def doppler_minimum_k(gamma_rad_s, xi=1.0):
     """(1 + xi) hbar Gamma / (4 k_B): the s -> 0 minimum, at delta = -Gamma / 2
     (hbar Gamma / (2 k_B) for the one-dimensional model xi = 1)."""
-    return (1.0 + xi) * HBAR * gamma_rad_s / (4.0 * KB)
+    return (1.0 + xi) * HBAR * gamma_rad_s / (4.0 * K_B)
 
 
 def mode_doppler_temperature_k(beam: Beam, mode_direction, stage: str | None = None) -> float:

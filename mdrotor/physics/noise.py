@@ -170,9 +170,9 @@ from dataclasses import dataclass
 from typing import NamedTuple
 
 import numpy as np
-from scipy import constants as sc
 
 from mdrotor.errors import InputError
+from mdrotor.physics.constants import HBAR
 from mdrotor.physics.multipole import moment
 from mdrotor.physics.pinning import MOMENT_REL, moment_rel
 
@@ -191,7 +191,6 @@ __all__ = [
     "moment_vanishes",
 ]
 
-HBAR = sc.hbar
 TWO_PI = 2.0 * math.pi
 AXES = ("x", "y", "z")
 KINDS = ("white", "power", "lorentzian")

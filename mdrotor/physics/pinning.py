@@ -73,13 +73,12 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import constants as sc
 
 from mdrotor.physics import frame
+from mdrotor.physics.constants import K_B
 from mdrotor.physics.statics import find_equilibrium
 
 TWO_PI = 2.0 * math.pi
-K_B = sc.k
 #: An order-n moment is present when |M_n| exceeds this fraction of
 #: sum_i |Q_i| |z_i - z_c|^n. A regular N-gon's vanishing moments come out
 #: at the equilibrium search's precision (~1e-10); a present one is ~1.

@@ -138,9 +138,9 @@ import time
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.constants import hbar as HBAR
 
 from mdrotor.errors import InputError, PhysicsError
+from mdrotor.physics.constants import HBAR
 
 __all__ = [
     "Ladder",

@@ -38,10 +38,10 @@ from dataclasses import dataclass
 from typing import NamedTuple
 
 import numpy as np
-from scipy.constants import hbar
 
 from mdrotor.errors import InputError
 from mdrotor.physics import frame
+from mdrotor.physics.constants import HBAR
 from mdrotor.physics.frame import AXIS_REL
 
 __all__ = [
@@ -114,7 +114,7 @@ def hbar_over_I_hz(I_kg_m2):
         ``hbar / (2 pi I)`` in Hz.
     """
     I = _positive(I_kg_m2, "I_kg_m2", "hbar_over_I_hz")
-    return _out(hbar / (2.0 * np.pi * I))
+    return _out(HBAR / (2.0 * np.pi * I))
 
 
 def L_from_f_rot(f_rot_hz, I_kg_m2):
@@ -138,7 +138,7 @@ def L_from_f_rot(f_rot_hz, I_kg_m2):
     if not np.all(np.isfinite(f)):
         raise InputError("f_rot_hz", f"a finite frequency, got {f_rot_hz!r}",
                          f"{_SRC}.L_from_f_rot")
-    return _out(2.0 * np.pi * I * f / hbar)
+    return _out(2.0 * np.pi * I * f / HBAR)
 
 
 class TransitionLines(NamedTuple):
@@ -243,7 +243,7 @@ def exchange_time_s(I_kg_m2, k, N):
     I = _positive(I_kg_m2, "I_kg_m2", func)
     kk = _integer(k, "k", func, nonzero=True)
     n = _integer(N, "N", func, minimum=1)
-    return _out(2.0 * np.pi * I / (n * np.abs(kk) * hbar))
+    return _out(2.0 * np.pi * I / (n * np.abs(kk) * HBAR))
 
 
 def revival_time_s(I_kg_m2, k):
@@ -267,7 +267,7 @@ def revival_time_s(I_kg_m2, k):
     func = "revival_time_s"
     I = _positive(I_kg_m2, "I_kg_m2", func)
     kk = _integer(k, "k", func, nonzero=True)
-    return _out(2.0 * np.pi * I / (np.abs(kk) * hbar))
+    return _out(2.0 * np.pi * I / (np.abs(kk) * HBAR))
 
 
 # --------------------------------------------------------------------------

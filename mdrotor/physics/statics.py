@@ -40,19 +40,16 @@ import warnings
 from dataclasses import dataclass, field, replace
 
 import numpy as np
-from scipy import constants as sc
 
 from mdrotor.errors import PhysicsError
 from mdrotor.physics import multipole as mp
 from mdrotor.physics import rotor, stability
-from mdrotor.physics.constants import K_COULOMB
+from mdrotor.physics.constants import HBAR, K_B, K_COULOMB
 from mdrotor.physics.frame import on_axis
 from mdrotor.physics.stability import turn_directions
 from mdrotor.physics.trap import check_rotation, radial_limit_hz
 
 SLOW_ROTATION_HZ = 10.0
-KB = sc.k
-HBAR = sc.hbar
 TWO_PI = 2.0 * np.pi
 
 
@@ -677,7 +674,7 @@ def mode_occupations(modes, temperature_k: float, selectors=(), wigner: bool = T
     """
     w = modes.omega
     if temperature_k > 0:
-        x = HBAR * w / (KB * temperature_k)
+        x = HBAR * w / (K_B * temperature_k)
         n = 1.0 / np.expm1(x) if wigner else 1.0 / x
     else:
         n = np.zeros_like(w)

@@ -63,7 +63,6 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from scipy import constants as sc
 
 from mdrotor.config.parse import from_dict
 from mdrotor.electrodes.full_field import RFPseudoTerm, full_potential, plan_voltages
@@ -74,12 +73,12 @@ from mdrotor.electrodes.torque_scan import N_PHI, rigid_scan
 from mdrotor.errors import InputError, PhysicsError
 from mdrotor.model.build import assess_config, model_potential
 from mdrotor.physics import pinning as pin
+from mdrotor.physics.constants import K_B
 from mdrotor.physics.statics import compute_crystal, normal_modes
 
 __all__ = ["resolve_target", "Design", "prepare_design", "design_check", "TRAP_MISMATCH_REL", "CAUTION"]
 
 TWO_PI = 2.0 * math.pi
-K_B = sc.k
 #: The run config's secular frequencies may differ from the layout's by this
 #: fraction before the check calls it a problem (the libration and the held
 #: acceleration of a crystal scale with the trap; a few per cent is what a
