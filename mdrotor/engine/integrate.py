@@ -918,9 +918,11 @@ class BlockStepper:
         args = kernel_args(block) if block is not None else None
         while block is not None:
             running = start_advance(*args)
-            following = next(blocks, None)
-            args = kernel_args(following) if following is not None else None
-            running.wait()
+            try:
+                following = next(blocks, None)
+                args = kernel_args(following) if following is not None else None
+            finally:  # never leave the pool writing into the state
+                running.wait()
             if after is not None:
                 after(*block)
             block = following
