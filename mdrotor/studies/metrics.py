@@ -23,7 +23,8 @@ def point_metrics(res, cfg=None) -> dict:
 
     Final stage: the summary numbers unprefixed (``L_std_hbar``,
     ``slip_fraction``, ``differential_n_mean`` ...) and one
-    ``mode_n_mean.<label>`` / ``mode_n_err.<label>`` per mode; every stage:
+    ``mode_n_mean.<label>`` / ``mode_n_err.<label>`` per mode (NaN: a mean
+    without a usable trajectory, an error with fewer than two); every stage:
     ``stage.<name>.<metric>``; run: ``duration_s``, ``I_kg_m2`` (moment of
     inertia), ``dt_s``, ``n_steps``, ``n_trajectories``, ``wall_s``,
     ``preflight_margin`` (the smallest held / asked angular acceleration of the
@@ -42,7 +43,11 @@ def point_metrics(res, cfg=None) -> dict:
     scalars("", summ)
     fin = res.final
     seen: dict = {}
-    for lab, n, e in zip(fin.modes["label"], summ["mode_n_mean"], summ["mode_n_err"]):
+    # the summary holds a mode's mean only with a usable trajectory and its error
+    # only with two (mdrotor.results.stats.summarize): NaN where there is none
+    labels = list(fin.modes["label"])
+    nan = np.full(len(labels), np.nan)
+    for lab, n, e in zip(labels, summ.get("mode_n_mean", nan), summ.get("mode_n_err", nan)):
         seen[lab] = seen.get(lab, 0) + 1
         name = lab if seen[lab] == 1 else f"{lab}#{seen[lab]}"
         out[f"mode_n_mean.{name}"] = float(n)
