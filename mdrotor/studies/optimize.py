@@ -90,7 +90,8 @@ CON_KEYS = {"metric", "max", "min"}
 OPT_KEYS = {"method", "budget", "seed", "popsize", "tol", "atol", "xatol", "fatol", "initial_step"}
 CONFIRM_KEYS = {"trajectories", "seed"}
 METHODS = ("nelder-mead", "differential-evolution")
-FAIL_VALUE = 1e30  # objective of a failed run (finite, so the optimisers' statistics stay finite)
+FAIL_VALUE = 1e30  # what the optimiser is told for a point without an objective (finite, so its statistics stay
+                   # finite); the table stores NaN there
 
 
 @dataclass
@@ -163,7 +164,12 @@ class OptimizeSpec:
                             seed=self.seed if seed is None else seed)
 
     def objective(self, m: dict):
-        """(objective, penalty part, feasible) of a metrics row."""
+        """(objective, penalty part, feasible) of a metrics row; (NaN, NaN,
+        False) when a metric it is made of has no value (NaN or absent: a run
+        without usable trajectories has no L mean), so that the table never
+        holds a stand-in number."""
+        if any(not math.isfinite(m.get(t.metric, math.nan)) for t in [*self.terms, *self.constraints]):
+            return math.nan, math.nan, False
         total = 0.0
         for t in self.terms:
             v = m.get(t.metric, math.nan)
@@ -175,8 +181,8 @@ class OptimizeSpec:
                 if lim is not None and not excess <= 0.0:  # NaN counts as violated
                     pen += (excess if math.isfinite(excess) else FAIL_VALUE) / (abs(lim) if lim != 0 else 1.0)
         value = total + self.penalty * pen
-        if not math.isfinite(value):
-            return FAIL_VALUE, pen, False
+        if not math.isfinite(value):  # finite terms whose weighted sum overflows
+            return math.nan, pen, False
         return min(value, FAIL_VALUE), pen, pen == 0.0
 
     def meta(self) -> dict:
@@ -405,23 +411,35 @@ class _Evaluator:
                     store.put(out.name, out.result, {**m, "objective": val, "penalty": pen, "feasible": float(feas)}, attrs)
                 store.write_main(self.view, self.meta())
                 self._tick()
-        return [store.entries[n].row.get("objective", FAIL_VALUE) for n in names]
+        return [for_optimizer(store.entries[n].row.get("objective")) for n in names]
 
     def _tick(self):
         if self.bar is not None:
             self.bar.update(1)
 
     def _check(self, m: dict) -> None:
+        """Mode labels are known once a run exists: refuse one the run has not
+        (the other names were checked with the file; a run without usable
+        trajectories lacks its L statistics, which is no error of the file)."""
         self.checked = True
         for j, t in enumerate([*self.spec.terms, *self.spec.constraints]):
-            if t.metric not in m:
+            if t.metric.startswith(("mode_n_mean.", "mode_n_err.")) and t.metric not in m:
                 sec = f"objective[{j}]" if j < len(self.spec.terms) else f"constraint[{j - len(self.spec.terms)}]"
                 modes = sorted(k for k in m if k.startswith("mode_n_mean."))
                 raise InputError(f"{sec}.metric", f"this run has no metric {t.metric!r}; its modes give {modes}", self.spec.source)
 
 
 def _fail_row() -> dict:
-    return {"objective": FAIL_VALUE, "penalty": math.nan, "feasible": 0.0}
+    return {"objective": math.nan, "penalty": math.nan, "feasible": 0.0}
+
+
+def for_optimizer(objective) -> float:
+    """The value the optimiser sees: the stored objective, FAIL_VALUE where
+    there is none (a failed run, a metric without a value; files written
+    before NaN was stored hold FAIL_VALUE itself, which replays the same)."""
+    if objective is None or not math.isfinite(objective):
+        return FAIL_VALUE
+    return float(objective)
 
 
 def _drive(spec: OptimizeSpec, ev: _Evaluator) -> str:
@@ -458,10 +476,28 @@ def _never(u):  # pragma: no cover - differential evolution evaluates through it
     raise RuntimeError("evaluated outside the batch map")
 
 
+def no_best_reason(spec: OptimizeSpec, entries: dict) -> str:
+    """Why no evaluation can be the best: the first failure's message, or
+    the metrics that had no value."""
+    evals = [e for n, e in sorted(entries.items()) if n.startswith("points/")]
+    failed = [e for e in evals if e.failed]
+    if len(failed) == len(evals):
+        first = f" (the first: {failed[0].error})" if failed else ""
+        return f"every evaluation failed{first}; see the 'error' column of the output's summary table"
+    watched = [t.metric for t in [*spec.terms, *spec.constraints]]
+    empty = [m for m in dict.fromkeys(watched)
+             if any(not e.failed and not math.isfinite(e.row.get(m, math.nan)) for e in evals)]
+    n_ok = sorted({int(e.row["n_ok"]) for e in evals if not e.failed and math.isfinite(e.row.get("n_ok", math.nan))})
+    why = f" (usable trajectories per run: {', '.join(map(str, n_ok))})" if n_ok else ""
+    return (f"no evaluation gave an objective: {len(failed)} of {len(evals)} failed, and the others had no value of "
+            f"{', '.join(empty) or 'the objective'}{why}; see the output's summary table")
+
+
 def best_entry(entries: dict):
     """Name of the best evaluation: the lowest objective among feasible ones
     (if any; else among all), ties to the earliest."""
-    evals = [(n, e) for n, e in sorted(entries.items()) if n.startswith("points/") and not e.failed]
+    evals = [(n, e) for n, e in sorted(entries.items()) if n.startswith("points/") and not e.failed
+             and for_optimizer(e.row.get("objective")) < FAIL_VALUE]
     if not evals:
         return None
     feas = [(n, e) for n, e in evals if e.row.get("feasible", 0.0) == 1.0]
@@ -522,7 +558,7 @@ def run_optimize(spec, output, *, workers: int | None = None, scheduler: str | N
             state["repeats"] = ev.repeats
             best = best_entry(store.entries)
             if best is None:
-                raise InputError("", "every evaluation failed; see the 'error' column of the output's summary table", spec.source)
+                raise InputError("", no_best_reason(spec, store.entries), spec.source)
             state["best"] = best
             vals = [p.value(u) for p, u in zip(spec.params, store.entries[best].attrs["u"])]
             ccfg = spec.config(vals, "best", trajectories=spec.confirm_trajectories, seed=spec.confirm_seed)

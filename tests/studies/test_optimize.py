@@ -186,3 +186,37 @@ def test_cli_json_and_rerun(tmp_path, capsys):
     assert cli(argv) == 0  # finished file: replayed, nothing run
     s2 = json.loads(capsys.readouterr().out)
     assert {k: v for k, v in s1.items() if k != "wall_s"} == {k: v for k, v in s2.items() if k != "wall_s"}
+
+
+def test_start_without_objective_value_is_left_behind(tmp_path, capsys):
+    """The start point loses every ion (a loss radius inside the crystal), so
+    L has no mean there: that evaluation has no objective (NaN in the table,
+    never a stand-in number such as 1e30), the optimiser moves on, and the best
+    point is a real one."""
+    opt = write_opt(tmp_path, budget=6)
+    opt.write_text(opt.read_text()
+                   .replace('key = "stage.spin-up.duration"\nbounds = ["3 us", "6 us"]', 'key = "observe.loss_radius"\nbounds = ["0.5 um", "100 um"]')
+                   .replace('start = "3.5 us"', 'start = "0.5 um"').replace('"mode_n_mean.libration"', '"L_mean_hbar"'))
+    out = tmp_path / "o.h5"
+    argv = ["optimize", str(opt), "-o", str(out), "--workers", "1", "--quiet", "--json", "--csv", str(tmp_path / "o.csv")]
+    assert cli(argv) == 0, capsys.readouterr().err
+    s = json.loads(capsys.readouterr().out)
+    t = read_table(out)
+    obj = t["metrics"]["objective"]
+    assert t["metrics"]["n_ok"][0] == 0 and np.isnan(obj[0]) and t["metrics"]["feasible"][0] == 0
+    assert s["best"]["index"] != 0 and s["best"]["feasible"]
+    assert obj[s["best"]["index"]] == pytest.approx(s["best"]["objective"]) and np.nanmax(obj) < 1e3  # L is ~100 hbar
+    assert "1e+30" not in (tmp_path / "o.csv").read_text()
+
+
+def test_no_evaluation_with_an_objective_is_refused(tmp_path, capsys):
+    """Every evaluation loses every ion: no objective anywhere, so no best
+    point; one line naming the metric that had no value, exit 2."""
+    opt = write_opt(tmp_path, budget=3)
+    opt.write_text(opt.read_text()
+                   .replace('key = "stage.spin-up.duration"\nbounds = ["3 us", "6 us"]', 'key = "observe.loss_radius"\nbounds = ["0.2 um", "0.5 um"]')
+                   .replace('start = "3.5 us"', 'start = "0.5 um"').replace('"mode_n_mean.libration"', '"L_mean_hbar"'))
+    assert cli(["optimize", str(opt), "-o", str(tmp_path / "n.h5"), "--workers", "1", "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "opt.toml" in err[0] and "L_mean_hbar" in err[0], err
+    assert not (tmp_path / "n.best.toml").exists()
