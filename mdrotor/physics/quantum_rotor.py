@@ -1151,32 +1151,37 @@ def evolve(model: RotorModel, initial, *, tol: float = 1e-3, records: int | None
 # lines
 # --------------------------------------------------------------------------
 def sideband_lines(model: RotorModel, dist: Distribution, dL: int, *, p_min: float = 1e-4) -> dict:
-    """Discrete rotational lines ``L -> L + dL`` of a free rotor in state ``dist``.
+    """Discrete rotational lines adding ``|dL|`` quanta in the sense of rotation.
 
-    Each populated ``L`` gives a line at ``(E_rot(L + dL) - E_rot(L)) / h``
-    with weight ``P(L)``; for the rigid rotor this is
-    ``dL f_rot(L) + dL^2 hbar / (4 pi I)`` (:func:`mdrotor.physics.rotor.transition_frequencies_hz`).
-    Adjacent allowed ``L`` give lines ``spacing dL hbar / (2 pi I)`` apart.
+    Each populated ``L`` gives a line ``L -> L + sign(L) |dL|`` (``L = 0``
+    either way: the same frequency) at ``(E_rot(|L| + |dL|) - E_rot(|L|)) / h``,
+    positive for either sense (``E_rot`` depends on ``|L|`` only), with weight
+    ``P(L)``; for the rigid rotor this is ``|dL| |f_rot(L)| + dL^2 hbar / (4 pi I)``
+    (:func:`mdrotor.physics.rotor.transition_frequencies_hz`, the convention of
+    ``mdrotor rotor``). Adjacent allowed ``L`` give lines
+    ``spacing |dL| hbar / (2 pi I_d)`` apart.
 
     Returns
     -------
     dict
-        ``dL``, ``L`` and ``freq_hz`` and ``weight`` of the lines with
-        ``P >= p_min``, the weighted centre and rms width (over all lines),
-        and the spacing between adjacent lines at the centre.
+        ``dL`` (signed: ``-|dL|`` when the mean ``L`` is negative), ``L`` and
+        ``freq_hz`` and ``weight`` of the lines with ``P >= p_min``, the
+        weighted centre and rms width (over all lines), and the spacing
+        between adjacent lines at the centre.
     """
     dL = _int(dL, "dL", "sideband_lines")
-    if dL % model.ladder.spacing:
-        raise _err("dL", f"a multiple of the ladder spacing {model.ladder.spacing}", "sideband_lines")
-    L = dist.L.astype(float)
-    f = (model.energy.energy_j(L + dL) - model.energy.energy_j(L)) / (TWO_PI * HBAR)
+    if dL == 0 or dL % model.ladder.spacing:
+        raise _err("dL", f"a nonzero multiple of the ladder spacing {model.ladder.spacing}", "sideband_lines")
+    k = abs(dL)
+    e = model.energy.energy_j
+    A = np.abs(dist.L.astype(float))
+    f = (e(A + k) - e(A)) / (TWO_PI * HBAR)
     centre = float(np.sum(dist.P * f))
     width = float(np.sqrt(max(np.sum(dist.P * (f - centre) ** 2), 0.0)))
-    Lm = float(np.round(dist.mean_hbar))
+    Lm = abs(float(np.round(dist.mean_hbar)))
     s = model.ladder.spacing
-    e = model.energy.energy_j
-    spacing = float(((e(Lm + s + dL) - e(Lm + s)) - (e(Lm + dL) - e(Lm))) / (TWO_PI * HBAR))
+    spacing = float(((e(Lm + s + k) - e(Lm + s)) - (e(Lm + k) - e(Lm))) / (TWO_PI * HBAR))
     keep = dist.P >= p_min
-    return {"dL": dL, "L": dist.L[keep].astype(int).tolist(), "freq_hz": f[keep].tolist(),
+    return {"dL": -k if dist.mean_hbar < 0 else k, "L": dist.L[keep].astype(int).tolist(), "freq_hz": f[keep].tolist(),
             "weight": dist.P[keep].tolist(), "centre_hz": centre, "width_hz": width,
             "line_spacing_hz": spacing, "weight_listed": float(np.sum(dist.P[keep]))}

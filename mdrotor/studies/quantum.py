@@ -225,7 +225,8 @@ def text(d: dict, n_lines: int = 8) -> str:
     if d["lines"] is not None:
         ln = d["lines"]
         out.append("")
-        out.append(f"  lines L -> L + {ln['dL']} at the end: centre {ln['centre_hz'] / 1e3:.6f} kHz, rms width "
+        sense = "+" if ln["dL"] > 0 else "-"   # quanta added in the sense of rotation (frequencies > 0)
+        out.append(f"  lines L -> L {sense} {abs(ln['dL'])} at the end: centre {ln['centre_hz'] / 1e3:.6f} kHz, rms width "
                    f"{ln['width_hz']:.4g} Hz, {ln['line_spacing_hz']:.4g} Hz apart")
         order = sorted(range(len(ln["weight"])), key=lambda i: -ln["weight"][i])[:n_lines]
         for i in sorted(order, key=lambda i: ln["L"][i]):

@@ -287,6 +287,36 @@ def test_lines_are_the_rotor_transition_frequencies():
     assert lines["line_spacing_hz"] == pytest.approx(2 * 2 * hbar / (2 * math.pi * I), rel=1e-9)
 
 
+def test_lines_of_a_negative_rotation_add_quanta_in_its_sense():
+    # A line's frequency is |E(L') - E(L)| / h > 0 (a spectrometer sees no
+    # sign; common practice, no source). E_rot depends on |L| only (planar
+    # rotor, E_L = hbar^2 L^2 / 2I), so the rotor turning the other way has
+    # the same comb: the lines add |dL| quanta in the sense of rotation,
+    # L -> L - |dL| for L < 0, as mdrotor rotor writes them (dL negative).
+    w2 = np.linspace(0.0, (2 * math.pi * 3e5) ** 2, 8)
+    energy = qr.RotationalEnergy(I, tuple(w2), tuple(I * (1.0 + 0.3 * w2 / w2[-1])))
+    model = qr.RotorModel(qr.Ladder(2, 1), energy, HOLD, ())
+    L = np.array([995, 997, 999, 1001])
+    P = np.array([0.1, 0.4, 0.3, 0.2])
+    pos = qr.sideband_lines(model, qr.Distribution("x", 0.0, L, P, float(P @ L), 1.0), 2, p_min=0.0)
+    neg = qr.sideband_lines(model, qr.Distribution("x", 0.0, -L, P, -float(P @ L), 1.0), 2, p_min=0.0)
+    assert pos["dL"] == 2 and neg["dL"] == -2
+    assert neg["L"] == [-x for x in pos["L"]]
+    for key in ("freq_hz",):
+        np.testing.assert_allclose(neg[key], pos[key], rtol=1e-12)
+    for key in ("centre_hz", "width_hz", "line_spacing_hz"):
+        assert neg[key] == pytest.approx(pos[key], rel=1e-12)
+    assert min(neg["freq_hz"]) > 0
+    # a state at rest spanning both senses: every line still positive, each L
+    # adding the quanta in its own sense (L = -1 and 1 give the same line)
+    L0 = np.array([-3, -1, 1, 3])
+    rest = qr.sideband_lines(model, qr.Distribution("x", 0.0, L0, np.full(4, 0.25), 0.0, 2.2), 2, p_min=0.0)
+    f = dict(zip(rest["L"], rest["freq_hz"]))
+    assert min(rest["freq_hz"]) > 0
+    assert f[-1] == pytest.approx(f[1], rel=1e-12) and f[-3] == pytest.approx(f[3], rel=1e-12)
+    assert f[1] == pytest.approx((energy.energy_j(3.0) - energy.energy_j(1.0)) / (2 * math.pi * hbar), rel=1e-12)
+
+
 def test_stretched_rotational_energy_obeys_hamiltons_equation():
     # dE/dL = hbar w (Hamilton's equation for the angle; H. Goldstein, Classical
     # Mechanics, ch. 8) with hbar L = I(w) w; a rigid table gives hbar^2 L^2 / 2I.
