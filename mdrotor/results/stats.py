@@ -9,7 +9,11 @@ stored as NaN.
 
 Standard errors for independent samples: the mean has s / sqrt(n); the
 standard deviation has s / sqrt(2 (n - 1)) (normal-theory estimate, e.g.
-J.R. Taylor, An Introduction to Error Analysis, 2nd ed., ch. 5).
+J.R. Taylor, An Introduction to Error Analysis, 2nd ed., ch. 5). Both are
+computed from the deviations from the first sample (shifted data: T.F. Chan,
+G.H. Golub and R.J. LeVeque, Am. Stat. 37, 242 (1983)), so that identical
+values (a zero-temperature classical run) have their own value as mean and
+a spread of exactly 0, not rounding noise shown with an error.
 
 Fractions (slipped, lost, reordered, non-finite) get one kind of interval:
 the Wilson score interval at the one-sigma level (68.27 %), E.B. Wilson,
@@ -48,7 +52,8 @@ def mean_sem(x: np.ndarray) -> tuple[float, float]:
         return float("nan"), float("nan")
     if x.size == 1:
         return float(x[0]), float("nan")
-    return float(np.mean(x)), float(np.std(x, ddof=1) / np.sqrt(x.size))
+    d = x - x[0]    # shifted data: identical values give exactly their value and 0 (module docstring)
+    return float(x[0] + np.mean(d)), float(np.std(d, ddof=1) / np.sqrt(x.size))
 
 
 def std_se(x: np.ndarray) -> tuple[float, float]:
@@ -57,7 +62,7 @@ def std_se(x: np.ndarray) -> tuple[float, float]:
     x = x[np.isfinite(x)]
     if x.size < 2:
         return float("nan"), float("nan")
-    s = float(np.std(x, ddof=1))
+    s = float(np.std(x - x[0], ddof=1))
     return s, s / np.sqrt(2.0 * (x.size - 1))
 
 

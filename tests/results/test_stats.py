@@ -118,6 +118,23 @@ def _obs(L, status, mode_n):
             "mode_n": np.asarray(mode_n, float)}
 
 
+def test_identical_values_have_no_spread_and_their_own_mean():
+    # n copies of one value have mean that value and spread exactly 0 (a
+    # zero-temperature classical run: every trajectory the same). Summing
+    # first and subtracting the rounded mean gives a spread of rounding noise
+    # (1e-12 hbar at L = 1e4) with an "error"; the deviations from a sample
+    # (shifted data, T.F. Chan, G.H. Golub and R.J. LeVeque, Am. Stat. 37,
+    # 242 (1983); from memory) are exactly 0.
+    x = np.full(20, 10097.76526903814)
+    assert stats.mean_sem(x) == (x[0], 0.0)
+    assert stats.std_se(x) == (0.0, 0.0)
+    # and shifting changes nothing that rounding can see on ordinary data
+    y = np.random.default_rng(5).normal(1e4, 30.0, 400)
+    assert stats.mean_sem(y)[0] == pytest.approx(np.mean(y), rel=1e-15)
+    assert stats.mean_sem(y)[1] == pytest.approx(np.std(y, ddof=1) / math.sqrt(400), rel=1e-12)
+    assert stats.std_se(y)[0] == pytest.approx(np.std(y, ddof=1), rel=1e-12)
+
+
 def test_summarize_uses_usable_trajectories_and_leaves_out_what_it_cannot_compute():
     L = [10.0, 12.0, 1e9, np.nan]
     status = [Status.SLIPPED, 0, Status.LOST, Status.NONFINITE]
