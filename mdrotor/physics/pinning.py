@@ -200,8 +200,44 @@ def relax_at_angle(pot, w: np.ndarray, phi: float, start: np.ndarray, *, hessian
             sol = np.linalg.solve(kkt, np.concatenate([-grad, [-(g @ r)]]))
         except np.linalg.LinAlgError:
             sol = np.linalg.lstsq(kkt, np.concatenate([-grad, [-(g @ r)]]), rcond=None)[0]
-        r = r + sol[:n3]
+        step = _descent(pot, r, sol[:n3], energy_slack=ENERGY_SLACK * force_scale * float(np.linalg.norm(r)))
+        if step is None:  # the Newton step climbs: from the Hessian here, else stop where we are
+            if fresh:
+                break
+            h = pot.hessian(r.reshape(-1, 3))
+            fresh = True
+            prev = np.inf
+            continue
+        r = r + step
     return r.reshape(-1, 3), rel
+
+
+#: A Newton step is taken whole when the energy it reaches is below the
+#: start's plus this fraction of force scale x crystal size: rounding of the
+#: energy (a few 1e-16 of it) passes, an overshoot does not.
+ENERGY_SLACK = 1e-12
+
+
+def _descent(pot, r: np.ndarray, step: np.ndarray, *, energy_slack: float):
+    """The Newton step, halved until it does not raise the energy (backtracking
+    line search; Nocedal and Wright, Numerical Optimization, 2nd ed. 2006,
+    section 3.1, from memory); None when no fraction down to 2^-30 does.
+
+    A Newton step from a Hessian taken elsewhere (the reference Hessian
+    turned with the crystal, far from right when the pinning is nearly as
+    strong as the trap) can overshoot through the other ions into a
+    collapsed pair, where the Coulomb energy is infinite; the step is along
+    the constraint's null space plus the correction to it, so every fraction
+    of it keeps the constraint as well as the whole step does."""
+    e0 = pot.energy(r.reshape(-1, 3))
+    t = 1.0
+    for _ in range(31):
+        with np.errstate(all="ignore"):
+            e1 = pot.energy((r + t * step).reshape(-1, 3))
+        if np.isfinite(e1) and e1 <= e0 + energy_slack:
+            return t * step
+        t *= 0.5
+    return None
 
 
 @dataclass
@@ -258,7 +294,9 @@ class HeldCurve:
                 k = (step * j) % K
                 val = sign * tau[k]
                 if val <= 0.0:
-                    top = k
+                    # the barrier's top is the highest sample walked over: the
+                    # first sample past the sign change may lie beyond it
+                    top = k if u[k] >= u[(k - step) % K] else (k - step) % K
                     break
                 if val > best:
                     kp = k

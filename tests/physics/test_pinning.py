@@ -261,6 +261,46 @@ def test_relaxed_curvature_matches_the_hessian_stiffness():
     assert curve.curvature_n_m == pytest.approx(k, rel=1e-5)
 
 
+@pytest.mark.parametrize("strength, tol, tol_alpha", [(5e6, 1e-9, 3e-4), (1.1e7, 1e-3, 1e-2)])
+def test_pair_barrier_and_held_acceleration_closed_form(strength, tol, tol_alpha):
+    """Two identical ions in an in-plane harmonic well of spring constants
+    k_x = m w^2 + 2 Q c, k_y = m w^2 - 2 Q c (the trap plus the quadrupole
+    Q c (x^2 - y^2)): held along a line at angle phi from y with every other
+    coordinate relaxed, the pair sits at +-r with r^3 = A / (4 k(phi)),
+    k(phi) = k_y cos^2 phi + k_x sin^2 phi, A = Q^2 / (4 pi eps0), and its
+    energy is U(phi) = 3 (A/4)^(2/3) k(phi)^(1/3) (minimising k r^2 + A / 2r
+    over r; common practice, no source). So the barrier is U(90 deg) - U(0)
+    and the torque -dU/dphi = -(A/4)^(2/3) (k_x - k_y) k^(-2/3) sin 2 phi.
+
+    At c = 1.1e7 V/m^2 the quadrupole takes 93 % of the trap's in-plane
+    curvature (bound, k_y / k_x = 0.035): the relaxed curve went through a
+    collapsed pair (two ions at one point) and printed the barrier as nan.
+    Tolerances: at 5e6 the curve is exact to rounding (1e-13) and its
+    harmonics decay as 0.22^k; at 1.1e7 as 0.69^k, so 96 points alias
+    ~1e-4 of the energy. The held acceleration is the grid's largest torque
+    refined by a parabola: its error is the sampling step's (3.75 deg)
+    cube times the torque's third derivative: 3e-4 and 1e-2 allowed."""
+    from scipy import constants as sc
+
+    cfg = from_dict(_raw("40Ca+", 2, 2, f"{strength} V/m^2", "1.2 MHz", "2.9 MHz"), "<test>")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no overflow on the way
+        h = assess_config(cfg)
+    m, q = float(cfg.masses_kg[0]), float(cfg.charges_c[0])
+    a = q * q / (4 * math.pi * sc.epsilon_0)
+    k0 = m * (2 * math.pi * 1.2e6) ** 2
+    kx, ky = k0 + 2 * q * strength, k0 - 2 * q * strength
+    barrier = 3 * (a / 4) ** (2 / 3) * (kx ** (1 / 3) - ky ** (1 / 3))
+    phi = np.linspace(0.0, math.pi / 2, 200001)
+    torque = (a / 4) ** (2 / 3) * (kx - ky) * (ky * np.cos(phi) ** 2 + kx * np.sin(phi) ** 2) ** (-2 / 3) * np.sin(2 * phi)
+    inertia = 2 * m * (a / (4 * ky)) ** (2 / 3)
+    assert h.verdict == "pinned"
+    assert h.moment_of_inertia_kg_m2 == pytest.approx(inertia, rel=1e-9)
+    assert h.barrier_j == pytest.approx(barrier, rel=tol)
+    assert h.alpha_forward_rad_s2 == pytest.approx(torque.max() / inertia, rel=tol_alpha)
+    assert h.alpha_backward_rad_s2 == pytest.approx(h.alpha_forward_rad_s2, rel=1e-9)
+
+
 def test_energy_harmonics_of_a_pinned_pair():
     """Two identical ions at +-d under Phi = Re[c z^2]: the rigid pinning
     energy is 2 Q c d^2 cos(2 phi) (Re[C M_2 e^{2 i phi}], M_2 = 2 Q d^2),

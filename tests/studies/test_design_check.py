@@ -251,8 +251,8 @@ def test_trap_mismatch_and_a_low_barrier_are_verdict_problems(capsys):
     from the layout's by more than TRAP_MISMATCH_REL (a defect report: 1.0,
     1.0, 2.5 MHz against the layout's 2.45, 2.45, 4.89 MHz gave "verdict:
     OK"), and (b) a pinning barrier below BARRIER_KT_MIN k_B T_initial (the
-    crystal hops between wells). The barrier (11.7 mK x k_B here) against
-    T = 5 mK is 2.3 k_B T."""
+    crystal hops between wells). The barrier (11.8 mK x k_B here) against
+    T = 5 mK is 2.4 k_B T."""
     from mdrotor.physics.pinning import BARRIER_KT_MIN
     from mdrotor.studies.design_check import TRAP_MISMATCH_REL
 
