@@ -691,6 +691,28 @@ def _check_rotation(cfg: Config) -> None:
     if f_max >= f_lim:
         k = int(np.argmax([np.max(np.abs(s.f_rot.value(np.linspace(0, s.duration_s, 201)))) for s in cfg.schedule.stages]))
         check_rotation(f_max, f_lim, f"stage.{cfg.schedule.stages[k].name}.f_rot", cfg.source)
+    # an order-2 pinning turns with the crystal and weakens one in-plane direction
+    # (mdrotor.physics.trap, module docstring); an electrode layout's term is its
+    # own fitted potential, checked by the statics
+    quad = [(j, t.strength * np.exp(-2j * t.angle_rad)) for j, t in enumerate(cfg.pinning)
+            if t.order == 2 and t.layout is None]
+    if not quad:
+        return
+    for i, st in enumerate(cfg.schedule.stages):
+        smp = cfg.schedule.stage_samples(i, 2001)
+        c2 = np.abs(sum(c * smp["scale"][:, j] for j, c in quad))
+        f = np.abs(smp["f_rot_hz"])
+        c2_set, at = np.unique(c2, return_inverse=True)
+        lim = np.array([cfg.trap.max_rotation_hz(cfg.masses_kg, cfg.charges_c, x) for x in c2_set])[at]
+        bad = np.nonzero((f > 0) & (f >= lim))[0]
+        if len(bad):
+            k = int(bad[0])
+            raise PhysicsError(f"stage.{st.name}.f_rot",
+                               f"rotation at {f[k]:.6g} Hz (t = {smp['t_s'][k] * 1e3:.6g} ms) is faster than the radial "
+                               f"confinement can hold with the order-2 pinning turning with it (|c_2| = {c2[k]:.4g} V/m^2 "
+                               f"takes 2 Q |c_2| / m from one in-plane w^2: the limit there is {lim[k]:.6g} Hz, the lowest "
+                               f"radial secular frequency {f_lim:.6g} Hz); expected a slower rotation or a weaker pinning",
+                               cfg.source)
 
 
 def _dump(raw: dict) -> str:

@@ -20,7 +20,14 @@ Rotation against the confinement: in a frame turning at w the centrifugal
 term -1/2 m w^2 (x^2 + y^2) lowers each ion's radial curvature to
 m (w_r^2 - w^2), so no crystal is bound once w reaches the lowest radial
 secular frequency over the ions (Goldstein, Classical Mechanics, ch. 4,
-motion in a rotating frame). :func:`max_rotation_hz` is that limit,
+motion in a rotating frame). An order-2 pinning Q Re[c_2 (x + i y)^2] that
+turns with the crystal is static in that frame and adds +-2 Q |c_2| to the
+two in-plane spring constants: with one of them positive and the other
+negative the rotating-frame motion has a real growth rate (the
+characteristic polynomial l^4 + (k_1 + k_2 + 4 m W^2) l^2 / m + k_1 k_2 / m^2
+of x'' - 2 W y' + k_1 x / m = 0, y'' + 2 W x' + k_2 y / m = 0 has a negative
+last coefficient; common practice, no source), so the limit falls to
+sqrt(w_r^2 - 2 |Q c_2| / m). :func:`max_rotation_hz` is that limit,
 :func:`check_rotation` the one refusal, :func:`radial_limit_hz` the same
 limit read off a potential's springs, and :data:`DECONFINED_FRACTION` the
 fraction of it at which a measured crystal counts as flown apart.
@@ -134,11 +141,16 @@ class Trap:
         s = (np.asarray(charges_c) / np.asarray(masses_kg)) / (self.ref_charge_c / self.ref_mass_kg)
         return s[:, None] * np.asarray(self.q)[None, :]
 
-    def max_rotation_hz(self, masses_kg, charges_c) -> float:
+    def max_rotation_hz(self, masses_kg, charges_c, quadrupole_v_per_m2: float = 0.0) -> float:
         """The fastest rotation the radial confinement holds: the lowest
-        radial secular frequency over the ions, Hz (module docstring)."""
-        w2 = self.omega_sq(masses_kg, charges_c)
-        return float(np.sqrt(np.min(w2[:, :2])) / TWO_PI)
+        radial secular frequency over the ions, Hz (module docstring); with
+        an order-2 pinning of magnitude |c_2| = ``quadrupole_v_per_m2`` turning
+        with the crystal, each ion's w^2 less 2 |Q| |c_2| / m (0 when that
+        opens the trap)."""
+        w2 = self.omega_sq(masses_kg, charges_c)[:, :2]
+        w2 = w2 - (2.0 * np.abs(np.asarray(charges_c, dtype=float)) * abs(quadrupole_v_per_m2)
+                   / np.asarray(masses_kg, dtype=float))[:, None]
+        return float(np.sqrt(max(float(np.min(w2)), 0.0)) / TWO_PI)
 
     def spring_constants(self, masses_kg, charges_c) -> np.ndarray:
         """K_{i,u} = m_i w_{u,i}^2 (N, 3); N/m."""
