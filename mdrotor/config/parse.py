@@ -116,6 +116,12 @@ class Config:
     def n_ions(self) -> int:
         return len(self.species)
 
+    def names(self) -> dict:
+        """What the parts of this config are called, for labels: ``stages``
+        (in schedule order) and ``pinning`` (``[name, order]`` per term)."""
+        return {"stages": [s.name for s in self.schedule.stages] if self.schedule is not None else [],
+                "pinning": [[t.name, int(t.order)] for t in self.pinning]}
+
     @property
     def masses_kg(self) -> np.ndarray:
         return np.array([s.mass_kg for s in self.species])

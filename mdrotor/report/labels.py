@@ -94,28 +94,6 @@ def pm_text(v, e, digits=4) -> str:
     return f"{num_text(v, digits)} ± {num_text(e, 2)}"
 
 
-def pin_terms(config_text: str):
-    """[(name, order)] of the pinning terms of a config (raw TOML, no validation)."""
-    import tomllib
-
-    try:
-        raw = tomllib.loads(config_text)
-    except Exception:
-        return []
-    pin = raw.get("pinning")
-    if pin is None:
-        return []
-    items = pin if isinstance(pin, list) else [pin]
-    out = []
-    for it in items:
-        try:
-            order = int(it.get("order"))
-        except Exception:
-            order = None
-        out.append((str(it.get("name", f"n{order}")), order))
-    return out
-
-
 def term_label(name: str, order) -> str:
     """A pinning term as a physicist writes it: its coefficient c_n (the
     multipole convention Phi_n = Re[c_n (x + iy)^n e^{-in angle}]), with the
@@ -131,19 +109,10 @@ def term_unit(order) -> str:
     return f"V/m{_sup(order)}" if order else "V/mⁿ"
 
 
-def _base_terms(meta: dict) -> list:
-    return pin_terms(str((meta or {}).get("base_config_text", "")))
-
-
-def _stage_names_of(config_text: str) -> list:
-    import tomllib
-
-    try:
-        raw = tomllib.loads(config_text)
-    except Exception:
-        return []
-    st = raw.get("stage", [])
-    return [str(x.get("name", f"stage {i}")) for i, x in enumerate(st)] if isinstance(st, list) else []
+def _names(meta: dict | None) -> dict:
+    """The base config's names as the study file stores them (``meta["names"]``,
+    :func:`mdrotor.report.inputs.stored_names`): ``stages``, ``pinning`` [(name, order)]."""
+    return (meta or {}).get("names") or {"stages": [], "pinning": []}
 
 
 # config keys that a sweep or optimisation varies, as a physicist names them
@@ -167,7 +136,7 @@ def key_label(key: str, meta: dict | None = None) -> str:
     quantity in words, stage names as the user wrote them (quoted), pinning
     terms as c_n; never the dotted path itself."""
     meta = meta or {}
-    terms = _base_terms(meta)
+    terms = [tuple(t) for t in _names(meta)["pinning"]]
     parts = key.split(".")
 
     def term(ref):
@@ -179,7 +148,7 @@ def key_label(key: str, meta: dict | None = None) -> str:
     if parts[0] == "stage" and len(parts) >= 3:
         st = parts[1]
         if st.isdigit():
-            names = _stage_names_of(str(meta.get("base_config_text", "")))
+            names = _names(meta)["stages"]
             st = names[int(st)] if int(st) < len(names) else f"stage {st}"
         where = f"'{st}':"
         rest = parts[2:]
@@ -255,7 +224,7 @@ def metric_label(name: str, meta: dict | None = None):
         lab, sc, u = f"⟨n⟩ {base.split('.', 1)[1]}", 1.0, "quanta"
     elif base.startswith("pinning_peak."):
         term = base.split(".", 1)[1]
-        order = dict(_base_terms(meta)).get(term)
+        order = dict(tuple(t) for t in _names(meta)["pinning"]).get(term)
         lab, sc, u = f"peak pinning {term_label(term, order)}", 1.0, term_unit(order)
     elif base.endswith("_hz"):
         sc, u = freq_unit(1e4)

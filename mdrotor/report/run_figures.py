@@ -37,13 +37,12 @@ from pathlib import Path
 import numpy as np
 
 from mdrotor.analysis.rotor import rotor_summary
-from mdrotor.config.parse import from_text
 from mdrotor.engine.observe import W_GRID_HZ
 from mdrotor.errors import InputError, PhysicsError
 from mdrotor.model.quantum import config_ladder
 from mdrotor.physics import coherence as coh
 from mdrotor.physics.statics import SLOW_ROTATION_HZ
-from mdrotor.report.inputs import MissingData, file_kind, plotting
+from mdrotor.report.inputs import MissingData, file_kind, plotting, stored_config
 from mdrotor.report.labels import (
     FROT,
     SIG,
@@ -51,7 +50,6 @@ from mdrotor.report.labels import (
     freq_unit,
     log_ticks,
     num_text,
-    pin_terms,
     pm_text,
     term_label,
     term_unit,
@@ -125,11 +123,25 @@ def _ladder(res):
     result's crystal (:func:`mdrotor.model.quantum.config_ladder`, the rule of
     :func:`mdrotor.physics.rotor.allowed_L_ladder`), or None when the config cannot
     be read back."""
+    cfg = _config(res)
+    if cfg is None:
+        return None
     try:
-        lad = config_ladder(from_text(res.attrs["config_text"], "<result>", res.attrs.get("config_dir")))
-    except (KeyError, InputError, PhysicsError):
+        lad = config_ladder(cfg)
+    except (InputError, PhysicsError):
         return None
     return lad.modulus, lad.residue, lad.statistics, lad.symmetry_order
+
+
+def _config(res):
+    """The result's config read back once (:func:`mdrotor.report.inputs.stored_config`), or None."""
+    return stored_config(res.attrs.get("config_text"), res.attrs.get("config_dir"))
+
+
+def _pin_terms(res) -> list:
+    """[(name, order)] of the result's pinning terms, from its parsed config ([] when it cannot be read back)."""
+    cfg = _config(res)
+    return [tuple(t) for t in cfg.names()["pinning"]] if cfg is not None else []
 
 
 def _bins(L: np.ndarray, bins):
@@ -219,7 +231,7 @@ def schedule_figure(result):
     pin = np.asarray(sc.get("pinning_strength_si", np.zeros((len(t), 0))), dtype=float)
     if pin.ndim == 1:
         pin = pin[:, None]
-    terms = pin_terms(str(res.attrs.get("config_text", "")))
+    terms = _pin_terms(res)
     if len(terms) != pin.shape[1]:
         terms = [(f"{j + 1}", None) for j in range(pin.shape[1])]
     bounds, names = _stage_bounds(res)
@@ -518,7 +530,7 @@ def series_figure(result):
     t = np.asarray(se["t_s"], dtype=float)
     bounds, names = _stage_bounds(res)
     ts, tu = time_unit(max(t[-1], bounds[-1]))
-    pinned = bool(pin_terms(str(res.attrs.get("config_text", "")))) and "lag_mean_rad" in se
+    pinned = "lag_mean_rad" in se and (bool(res.schedule and "pinning_strength_si" in res.schedule) or bool(_pin_terms(res)))
     with ps.context():
         fig = ps.new_figure(ps.FULL_W, 6.2 if pinned else 4.3)
         axs = fig.subplots(3 if pinned else 2, 1, sharex=True)

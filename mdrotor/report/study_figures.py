@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from mdrotor.errors import InputError
-from mdrotor.report.inputs import MissingData, file_kind, plotting
+from mdrotor.report.inputs import MissingData, file_kind, plotting, stored_names
 from mdrotor.report.labels import key_label, log_ticks, metric_label, metric_name, num_text, pretty_unit
 from mdrotor.report.style import wrap_text
 from mdrotor.studies.metrics import err_name
@@ -32,7 +32,10 @@ BOOKKEEPING = ("wall_s", "n_steps", "dt_s", "n_trajectories", "index")
 
 
 def sweep_meta(path) -> dict:
-    """The attributes of a sweep or optimisation file, the bounds of its axes and the confirmation's metrics."""
+    """The attributes of a sweep or optimisation file, the bounds and declared
+    scales of its axes (``bounds``, ``scales``), the base config's stage and
+    pinning-term names (``names``, :func:`mdrotor.report.inputs.stored_names`)
+    and the confirmation's metrics."""
     import h5py
 
     meta = {}
@@ -45,22 +48,30 @@ def sweep_meta(path) -> dict:
             elif hasattr(v, "item"):
                 v = v.item()
             meta[k] = v
-        meta["bounds"] = {}
+        meta["bounds"], meta["scales"] = {}, {}
         if "axes" in f:
             for g in f["axes"].values():
+                if "scale" in g.attrs:
+                    sc = g.attrs["scale"]
+                    meta["scales"][str(g.attrs.get("key"))] = sc.decode() if isinstance(sc, bytes) else str(sc)
                 if "bounds" in g.attrs:
                     meta["bounds"][str(g.attrs.get("key"))] = [x.decode() if isinstance(x, bytes) else str(x)
                                                                for x in g.attrs["bounds"]]
         if "confirm" in f and "metrics" in f["confirm"]:
             meta["confirm_metrics"] = {k: float(v) for k, v in f["confirm"]["metrics"].attrs.items()}
+    meta["names"] = stored_names(meta.get("base_config_text"), None, meta.get("base_config_names"))
     return meta
 
 
 def _table(src):
     """(table, meta) of a sweep / optimisation file, or of a table dict
-    (``read_table`` layout, optionally with a ``"meta"`` entry)."""
+    (``read_table`` layout, optionally with a ``"meta"`` entry laid out as
+    :func:`sweep_meta` gives it: ``combine``, ``scales``, ``base_config_text`` ...)."""
     if isinstance(src, dict):
-        return src, dict(src.get("meta", {}))
+        meta = dict(src.get("meta", {}))
+        if "names" not in meta:
+            meta["names"] = stored_names(meta.get("base_config_text"), None, meta.get("base_config_names"))
+        return src, meta
 
     p = Path(src)
     kind = file_kind(p)
@@ -73,25 +84,12 @@ def _table(src):
 
 
 def _declared_log(meta: dict) -> set:
-    """Keys whose axis the sweep or optimisation file declares logarithmic:
-    ``scale = "log"`` with bounds, or a range with ``spacing = "log"``."""
-    import tomllib
-
-    text = meta.get("sweep_text") or meta.get("optimize_text")
-    if not text:
-        return set()
-    try:
-        raw = tomllib.loads(str(text))
-    except Exception:
-        return set()
-    out = set()
-    for a in list(raw.get("axis", [])) + list(raw.get("parameter", [])):
-        if not isinstance(a, dict) or "key" not in a:
-            continue
-        rng = a.get("range")
-        if a.get("scale") == "log" or (isinstance(rng, dict) and rng.get("spacing") == "log"):
-            out.add(str(a["key"]))
-    return out
+    """Keys whose axis the sweep or optimisation file declares logarithmic
+    (``scale = "log"`` with bounds, a range with ``spacing = "log"``), as
+    the study stored it with each axis (``/axes/<key>`` attribute ``scale``,
+    :func:`mdrotor.studies.table.write_axis`). Files written before the
+    attribute declare nothing: their log-spaced values still give a log axis."""
+    return {k for k, s in (meta.get("scales") or {}).items() if s == "log"}
 
 
 def _geometric(levels: np.ndarray) -> bool:

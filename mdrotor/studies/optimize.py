@@ -49,7 +49,7 @@ import math
 import os
 import sys
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -152,6 +152,7 @@ class OptimizeSpec:
     confirm_trajectories: int
     confirm_seed: int
     hash: str
+    base_names: dict = field(default_factory=dict)  # Config.names() of the base config
 
     @property
     def keys(self) -> list:
@@ -187,7 +188,7 @@ class OptimizeSpec:
 
     def meta(self) -> dict:
         return {"package_version": __version__, "source": self.source, "optimize_text": self.text,
-                "base_config_text": self.base_text, "method": self.method, "budget": self.budget,
+                "base_config_text": self.base_text, "base_config_names": json.dumps(self.base_names), "method": self.method, "budget": self.budget,
                 "seed": np.uint64(self.seed), "optimizer_seed": np.uint64(self.opt_seed),
                 "confirm_seed": np.uint64(self.confirm_seed), "confirm_trajectories": self.confirm_trajectories,
                 "parameter_keys": self.keys, "axis_keys": self.keys,
@@ -274,7 +275,8 @@ def load_optimize(path, overrides=()) -> OptimizeSpec:
                         "base": base_cfg.text}, sort_keys=True, default=str)
     digest = hashlib.sha256(canon.encode()).hexdigest()
     return OptimizeSpec(src, text, base_raw, base_dir, base_cfg.text, traj, seed, penalty, params, terms, constraints,
-                        method, budget, opt_seed, popsize, tol, atol, xatol, fatol, step, ctraj, cseed, digest)
+                        method, budget, opt_seed, popsize, tol, atol, xatol, fatol, step, ctraj, cseed, digest,
+                        base_names=base_cfg.names())
 
 
 def _number(v, key, src, positive=False, allow_inf=False):
@@ -627,7 +629,7 @@ def _optimize_view(f, spec: OptimizeSpec, store) -> None:
     ents = [store.entries[nm] for nm in names]
     ax = f.create_group("axes")
     for j, p in enumerate(spec.params):
-        g = write_axis(ax, j, p.key, [e.attrs["values"][j] for e in ents])
+        g = write_axis(ax, j, p.key, [e.attrs["values"][j] for e in ents], p.log)
         g.attrs["bounds"] = [show(with_unit(p.lo, p.unit)), show(with_unit(p.hi, p.unit))]
     u = np.array([e.attrs["u"] for e in ents], dtype=float).reshape(n, len(spec.params))
     f.create_dataset("history/u", data=u)

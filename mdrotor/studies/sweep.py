@@ -95,6 +95,7 @@ class SweepSpec:
     configs: list
     seeds: list
     hash: str
+    base_names: dict = field(default_factory=dict)  # Config.names() of the base config
 
     @property
     def keys(self) -> list:
@@ -102,7 +103,8 @@ class SweepSpec:
 
     def meta(self) -> dict:
         return {"package_version": __version__, "source": self.source, "sweep_text": self.text,
-                "base_config_text": self.base_text, "combine": self.combine, "seeding": self.seeding,
+                "base_config_text": self.base_text, "base_config_names": json.dumps(self.base_names),
+                "combine": self.combine, "seeding": self.seeding,
                 "base_seed": np.uint64(self.base_seed), "n_points": len(self.points), "axis_keys": self.keys}
 
 
@@ -159,7 +161,8 @@ def load_sweep(path, overrides=(), trajectories: int | None = None) -> SweepSpec
         configs.append(cfg)
     digest = hashlib.sha256(json.dumps({"kind": "sweep", "combine": combine, "axes": keys,
                                         "points": [c.text for c in configs]}).encode()).hexdigest()
-    return SweepSpec(src, text, base_cfg.text, combine, seeding, base_seed, axes, points, configs, seeds, digest)
+    return SweepSpec(src, text, base_cfg.text, combine, seeding, base_seed, axes, points, configs, seeds, digest,
+                     base_names=base_cfg.names())
 
 
 def _axis(a: dict, j: int, combine: str, src: str) -> Axis:
@@ -189,7 +192,7 @@ def _axis(a: dict, j: int, combine: str, src: str) -> Axis:
             raise InputError(f"{sec}.values", "expected a non-empty list of config values", src)
         return Axis(key, list(vals))
     if "range" in a:
-        return Axis(key, _range(a["range"], f"{sec}.range", src))
+        return Axis(key, _range(a["range"], f"{sec}.range", src), log=a["range"].get("spacing") == "log")
     lo, hi, unit, log = bounds(a["bounds"], scale, f"{sec}.bounds", src)
     return Axis(key, [], lo, hi, unit, log)
 
@@ -330,7 +333,7 @@ def _sweep_view(f, spec: SweepSpec, store) -> None:
     n = len(spec.points)
     ax = f.create_group("axes")
     for j, a in enumerate(spec.axes):
-        write_axis(ax, j, a.key, [p[j] for p in spec.points])
+        write_axis(ax, j, a.key, [p[j] for p in spec.points], a.log)
     write_summary(f, n, [point_name(i) for i in range(n)], store.entries, np.array(spec.seeds, dtype=np.uint64))
 
 

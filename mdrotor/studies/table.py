@@ -34,13 +34,15 @@ def table_columns(entries) -> list:
     return list(cols)
 
 
-def write_axis(axes, j: int, key: str, values) -> object:
+def write_axis(axes, j: int, key: str, values, log: bool = False) -> object:
     """Group ``/axes/<key>`` of axis (parameter) ``j``: its config values
-    as written (``text``) and their SI magnitudes (``si``), one per row;
-    returns the group."""
+    as written (``text``) and their SI magnitudes (``si``), one per row,
+    and the scale the study file declares (attribute ``scale``: ``log`` for
+    ``scale = "log"`` or ``spacing = "log"``, else ``linear``); returns the group."""
     g = axes.create_group(key.replace("/", "|"))
     g.attrs["index"] = j
     g.attrs["key"] = key
+    g.attrs["scale"] = "log" if log else "linear"
     g.create_dataset("text", data=np.array([show(v) for v in values], dtype=object), dtype=str_dtype())
     g.create_dataset("si", data=np.array([si_value(v) for v in values]))
     return g
