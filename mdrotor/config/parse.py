@@ -26,6 +26,7 @@ from mdrotor.physics.mathieu import secular_frequency_hz, solve_point_trap
 from mdrotor.physics.multipole import MultipoleTerm
 from mdrotor.physics.noise import NoiseModel
 from mdrotor.physics.species import cooling_line, custom_species, get_species
+from mdrotor.physics.statics import MODE_GROUPS, MODE_LABELS, occupation_selector_known
 from mdrotor.physics.trap import Trap, check_rotation
 
 # allowed keys per section (anything else is a typo and is refused)
@@ -489,6 +490,11 @@ def _initial(raw, source) -> Initial:
         n = units.number(v, f"initial.occupations.{k}", source, "a non-negative mean phonon number")
         if n < 0:
             raise InputError(f"initial.occupations.{k}", f"expected a non-negative mean phonon number, got {v!r}", source)
+        if not occupation_selector_known(k):
+            raise InputError(f"initial.occupations.{k}",
+                             f"expected a mode label ({', '.join(repr(x) for x in MODE_LABELS)}, numbered as "
+                             f"'com-xy-1' when repeated), a kind or plane, or 'all' "
+                             f"({', '.join(repr(x) for x in MODE_GROUPS)}); got {k!r}", source)
         pairs.append((k, n))
     return Initial(temp, wig, tuple(pairs))
 

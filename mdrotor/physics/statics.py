@@ -657,6 +657,20 @@ def compute_crystal(pot: Potential, f_rot_hz: float = 0.0, *, seed: int = 0,
 
 
 
+#: The mode labels :func:`_label_modes` gives (numbered "<label>-<k>" when repeated).
+MODE_LABELS = ("libration", "com-xy", "com-z", "in-plane", "out-of-plane")
+#: Selectors of :func:`mode_occupations` besides the labels: every mode, a kind, a plane.
+MODE_GROUPS = ("all", "com", "differential", "in-plane", "out-of-plane")
+
+
+def occupation_selector_known(sel: str) -> bool:
+    """True when ``sel`` can select a mode in :func:`mode_occupations`: a
+    label of :data:`MODE_LABELS` (with or without its number), or one of
+    :data:`MODE_GROUPS`."""
+    base, _, k = sel.rpartition("-")
+    return sel in MODE_GROUPS or sel in MODE_LABELS or (base in MODE_LABELS and k.isdigit())
+
+
 def mode_occupations(modes, temperature_k: float, selectors=(), wigner: bool = True) -> np.ndarray:
     """Mean occupation n_k of every mode.
 

@@ -139,6 +139,12 @@ BAD = [
     ("overflowing value", _cfg('f_axial = "2.5 MHz"', 'f_axial = "1e308 GHz"'), RUN, "trap.f_axial", "finite"),
     ("nan occupation", _cfg('temperature = "0.5 mK"', 'temperature = "0.5 mK"\noccupations = { com-x = nan }'), RUN,
      "initial.occupations.com-x", "finite"),
+    # a selector that names no mode label, kind or plane was ignored: the run used the temperature
+    ("occupation label typo", _cfg('temperature = "0.5 mK"', 'temperature = "0.5 mK"\noccupations = { librat = 1 }'),
+     RUN, "initial.occupations.librat", "a mode label"),
+    ("occupation of an axis that has no mode", _cfg('temperature = "0.5 mK"',
+                                                   'temperature = "0.5 mK"\noccupations = { com-x = 1 }'),
+     RUN, "initial.occupations.com-x", "'com-xy'"),
     ("nan multiplier", _cfg("to = 0.0, shape", "to = nan, shape"), RUN, "stage.release.pinning.to", "finite"),
     ("nan Mathieu q", _cfg('f_radial = "1.0 MHz"\nf_axial = "2.5 MHz"', 'f_drive = "30 MHz"\nq = [0.1, 0.1, nan]'), RUN,
      "trap.q[2]", "finite"),

@@ -9,7 +9,9 @@ from scipy import constants as sc
 from mdrotor.physics.statics import (
     Potential,
     compute_crystal,
+    mode_occupations,
     normal_modes,
+    occupation_selector_known,
     virial_ratio,
 )
 
@@ -370,3 +372,20 @@ def test_one_ion_run_flags_no_loss(tmp_path, capsys):
     out = _cli_json(capsys, ["run", str(path), "--json", "--quiet", "-o", str(tmp_path / "one.h5")])
     assert out["n_trajectories"] == 200
     assert out["loss_count"] == 0 and out["nonfinite_count"] == 0
+
+
+@pytest.mark.parametrize("n, f_rot, mult", [(2, 0.0, ()), (3, 0.0, ()), (4, 0.1e6, ()), (7, 0.0, ())])
+def test_every_mode_label_is_a_known_occupation_selector(n, f_rot, mult):
+    """The config refuses an occupation selector that names no label, kind or
+    plane (a typo was ignored and the run used the temperature), so every
+    label the modes get must pass that check, and each selects its mode
+    (common practice, no source: a bookkeeping check)."""
+    cr = compute_crystal(_pot(n, 1.0e6, 2.5e6 if n < 7 else 0.6e6, mult), f_rot)
+    for k, lab in enumerate(cr.modes.labels):
+        assert occupation_selector_known(lab), lab
+        n_k = mode_occupations(cr.modes, 0.0, [(lab, 7.0)])
+        assert n_k[k] == 7.0  # (a differential label "in-plane" is the plane too: it selects every in-plane mode)
+    for kind in set(cr.modes.kinds) | set(cr.modes.planes) | {"all"}:
+        assert occupation_selector_known(kind)
+    for typo in ("librat", "com-x", "com", "com-xy-", "in-plane-a"):
+        assert occupation_selector_known(typo) == (typo == "com")
