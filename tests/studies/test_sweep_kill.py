@@ -19,6 +19,16 @@ from mdrotor.studies.table import read_point, read_table
 
 ROOT = Path(__file__).resolve().parents[2]
 
+# Waits: what the test needs is that the sweep keeps making progress, not that
+# it is fast. On a loaded machine (two cores shared by several suites) spawning
+# two workers, compiling the kernels and running a point can take minutes, so
+# every wait is bounded by a stall (nothing new for this long) or a generous
+# ceiling: a hung sweep or a worker that outlives its parent still fails the test.
+STALL_S = 600          # no new finished point for this long while waiting for one
+EXIT_S = 300           # the sweep to end after SIGKILL / SIGINT
+WORKERS_EXIT_S = 120   # the workers to follow their parent (their watchdog looks every 0.5 s)
+RESUME_S = 1800        # the resumed sweep to finish the remaining points
+
 # the forced-oscillator crystal of conftest.py, thermal and Wigner-sampled,
 # with enough trajectories that a point takes a moment
 BASE = (FORCED_OSCILLATOR_TOML.replace('temperature = "0 K"\nwigner = false', 'temperature = "0.5 mK"\nwigner = true')
@@ -50,6 +60,38 @@ def _alive(pid):
 def _parts(out):
     d = Path(str(out) + ".parts")
     return len([p for p in d.iterdir() if p.suffix == ".h5" and not p.name.startswith(".")]) if d.is_dir() else 0
+
+
+def _wait_for_parts(proc, out, target):
+    """Wait until ``target`` points are on disk while the sweep runs; fail
+    when it stops or makes no progress for STALL_S."""
+    last, t_last = _parts(out), time.monotonic()
+    while _parts(out) < target and proc.poll() is None:
+        n = _parts(out)
+        if n != last:
+            last, t_last = n, time.monotonic()
+        assert time.monotonic() - t_last < STALL_S, f"no new point for {STALL_S} s ({n} of {target} on disk)"
+        time.sleep(0.002)
+
+
+def _end(proc, timeout):
+    """communicate() with a timeout; a sweep that does not end is killed (with
+    the workers it started) and the test fails, leaving no process behind."""
+    try:
+        return proc.communicate(timeout=timeout)
+    except subprocess.TimeoutExpired:
+        _kill_tree(proc)
+        raise AssertionError(f"the sweep did not end within {timeout} s") from None
+
+
+def _kill_tree(proc):
+    for k in _children(proc.pid):
+        try:
+            os.kill(k, signal.SIGKILL)
+        except ProcessLookupError:
+            pass
+    proc.kill()
+    proc.communicate()
 
 
 def _start(sw, out):
@@ -89,20 +131,22 @@ def test_kill_and_resume_bit_identical(tmp_path):
     # interrupt when 2, 5 and 9 of the 12 points are on disk: SIGKILL, SIGINT (Ctrl-C), SIGKILL
     for target, sig in ((2, signal.SIGKILL), (5, signal.SIGINT), (9, signal.SIGKILL)):
         proc = _start(sw, out)
-        deadline = time.monotonic() + 120
-        while _parts(out) < target and proc.poll() is None and time.monotonic() < deadline:
-            time.sleep(0.002)
+        try:
+            _wait_for_parts(proc, out, target)
+        except BaseException:
+            _kill_tree(proc)
+            raise
         assert proc.poll() is None, proc.communicate()  # still running: the interruption lands mid-sweep
         kids = _children(proc.pid)
         proc.send_signal(sig)
-        _, err = proc.communicate(timeout=60)
+        _, err = _end(proc, EXIT_S)
         if sig == signal.SIGINT:
             assert proc.returncode == 130 and b"rerun the same command to resume" in err
         else:
             assert proc.returncode == -signal.SIGKILL
         # the worker processes leave with their parent (watchdog), even after SIGKILL
         t0 = time.monotonic()
-        while any(_alive(k) for k in kids) and time.monotonic() - t0 < 15:
+        while any(_alive(k) for k in kids) and time.monotonic() - t0 < WORKERS_EXIT_S:
             time.sleep(0.1)
         stray = [k for k in kids if _alive(k)]
         for k in stray:  # do not leave processes behind if the check fails
@@ -114,7 +158,7 @@ def test_kill_and_resume_bit_identical(tmp_path):
     assert seen[-1] < n
     # resume to the end
     proc = _start(sw, out)
-    stdout, err = proc.communicate(timeout=300)
+    stdout, err = _end(proc, RESUME_S)
     assert proc.returncode == 0, err
     summ = json.loads(stdout)
     assert summ["resumed"] >= 9 and summ["resumed"] + summ["ran"] == n
