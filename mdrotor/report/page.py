@@ -290,6 +290,13 @@ def _report_sweep(src, kind, out, fmt, dpi, doc, written, skipped, metrics, axes
     doc.table(hdr, body)
     if int(done.sum()) > 40:
         doc.p(f"... {int(done.sum()) - 40} more (mdrotor sweep ... --csv FILE writes them all).")
+    failed = np.flatnonzero(np.asarray(t["failed"], bool))
+    if failed.size:  # refused by the physics: no numbers, but the reader must see which and why
+        doc.h(2, "Failed points" if kind == "sweep" else "Failed evaluations")
+        doc.items([f"#{int(t['index'][i])} (" + ", ".join(f"{plain_text(key_label(key, meta))} = {ax['text'][i]}"
+                                                           for key, ax in t["axes"].items()) + f"): {t['error'][i]}"
+                   for i in failed[:40]]
+                  + ([f"... {failed.size - 40} more (the 'error' column of the summary table)"] if failed.size > 40 else []))
     if kind == "optimize" and "confirm" in _groups(src):
         try:
             conf = read_point(src, "confirm")

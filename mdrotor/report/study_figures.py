@@ -172,8 +172,9 @@ def _interval_names(m: str, cols) -> tuple:
     return (lo, hi) if lo in cols and hi in cols else (None, None)
 
 
-def _pick_metrics(t: dict, meta: dict, metrics) -> tuple[list, list]:
-    """(metrics to draw, metrics left out because identically zero)."""
+def _pick_metrics(t: dict, meta: dict, metrics, rows=None) -> tuple[list, list, list]:
+    """(metrics to draw, metrics left out because identically zero, metrics
+    left out because they have no value at any finished point ``rows``)."""
     cols = t["metrics"]
     if metrics in (None, "", "default"):
         if meta.get("kind") == "optimize":
@@ -195,17 +196,20 @@ def _pick_metrics(t: dict, meta: dict, metrics) -> tuple[list, list]:
         if bad:
             raise InputError("--metrics", f"unknown metric {bad[0]!r}; the file has: {', '.join(list(cols)[:30])}"
                              + (" ..." if len(cols) > 30 else ""), meta.get("path"))
-    out, zero = [], []
+    out, zero, empty = [], [], []
     for m in dict.fromkeys(names):
         if m not in cols:
             continue
         v = np.asarray(cols[m], float)
+        v = v if rows is None else v[rows]
         v = v[np.isfinite(v)]
-        if v.size and np.all(v == 0) and metrics in (None, "", "default"):
+        if not v.size:  # NaN at every finished point: an empty panel would have made-up axes
+            empty.append(m)
+        elif np.all(v == 0) and metrics in (None, "", "default"):
             zero.append(m)
         else:
             out.append(m)
-    return out, zero
+    return out, zero, empty
 
 
 def _errors(t, m, rows):
@@ -301,12 +305,14 @@ def sweep_figures(source, metrics=None, axes=None, fixed: dict | None = None, pe
     if rows.size == 0:
         raise MissingData("/summary", "no finished points yet", meta.get("path"))
     views = {k: _AxisView(k, t["axes"][k]["text"], t["axes"][k]["si"], meta) for k in keys}
-    names, zero = _pick_metrics(t, meta, metrics)
+    names, zero, empty = _pick_metrics(t, meta, metrics, rows)
+    no_value = f"no value at any point (not drawn): {'; '.join(metric_name(m, meta) for m in empty)}" if empty else ""
     if not names:
-        raise MissingData("/summary", "no metric to draw (every default metric is zero)", meta.get("path"))
+        raise MissingData("/summary", no_value or "no metric to draw (every default metric is zero)", meta.get("path"))
     combine = meta.get("combine", "optimize" if meta.get("kind") == "optimize" else "grid")
     varying = [k for k in keys if len(views[k].levels) > 1]
     foot = f"zero at every point (not drawn): {'; '.join(metric_name(m, meta) for m in zero)}" if zero else ""
+    foot = "\n".join(x for x in (foot, no_value) if x)
     kind_title = "optimisation" if meta.get("kind") == "optimize" else "sweep"
     n_done = f"{rows.size} of {len(t['index'])} points finished"
     if combine == "zip" or (combine == "grid" and len(varying) <= 1):
@@ -533,6 +539,12 @@ def optimize_figure(source):
     keys = list(t["axes"])
     views = {k: _AxisView(k, t["axes"][k]["text"], t["axes"][k]["si"], meta) for k in keys}
     best = meta.get("best_index")
+    if not np.any(done & np.isfinite(obj)):
+        raise MissingData("/summary", "no evaluation has an objective (each failed, or a metric of the objective "
+                                      "or a constraint had no value)", meta.get("path"))
+    n_none = int(np.sum(np.asarray(t["complete"], bool) & ~np.isfinite(obj)))
+    none_text = (f"{n_none} evaluation{'s' if n_none != 1 else ''} without an objective (a failed run, or a metric "
+                 "without a value): not drawn") if n_none else ""
     with ps.context():
         fig = ps.new_figure(ps.FULL_W, 3.0 + 1.15 * len(keys))
         axs = fig.subplots(1 + len(keys), 1, sharex=True, squeeze=False,
@@ -590,8 +602,9 @@ def optimize_figure(source):
         from matplotlib.ticker import MaxNLocator
 
         axs[-1].xaxis.set_major_locator(MaxNLocator(integer=True))
-        if meta.get("message"):
-            _footnote(fig, f"optimiser: {meta['message']}")
+        foot = [x for x in (none_text, f"optimiser: {meta['message']}" if meta.get("message") else "") if x]
+        if foot:
+            _footnote(fig, "\n".join(foot))
         ps.finish(fig)
     return fig
 

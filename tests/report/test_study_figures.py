@@ -3,10 +3,12 @@ what the sweep file stores as parsed data (the base config's names, each
 axis's scale), never from re-reading the stored TOML text."""
 
 import h5py
+import numpy as np
 import pytest
 from conftest import two_ion_toml
 
-from mdrotor.report.study_figures import sweep_figures
+from mdrotor.report.inputs import MissingData
+from mdrotor.report.study_figures import optimize_figure, sweep_figures
 from mdrotor.studies.sweep import load_sweep, run_sweep
 
 BASE = two_ion_toml(pinning={"order": 2, "strength": "2e5 V/m^2", "name": "quad"})
@@ -51,3 +53,39 @@ def test_stored_text_is_not_read_for_labels(sweep_file, tmp_path):
     ax = sweep_figures(p, metrics="L_mean_hbar")[0].axes[0]
     assert ax.get_xscale() == "log"
     assert ax.get_xlabel() == "pinning c₂ (quad) (V/m²)"
+
+
+def _table(n, metrics, kind="sweep", failed=()):
+    v = np.linspace(1.0, 2.0, n)
+    return {"index": np.arange(n), "seed": np.zeros(n, np.uint64), "complete": np.ones(n, np.uint8),
+            "failed": np.array([i in failed for i in range(n)], np.uint8), "error": [""] * n,
+            "axes": {"stage.spin-up.duration": {"text": [f"{x:g} us" for x in v], "si": v * 1e-6}},
+            "metrics": metrics, "meta": {"kind": kind, "combine": "grid" if kind == "sweep" else None}}
+
+
+def test_metric_without_any_value_is_named_not_drawn():
+    """A metric that is NaN at every point (the mode phonons of points that
+    lost every ion) gets no empty panel with made-up axes: it is left out
+    and named in the footnote; one NaN among values leaves a gap only."""
+    t = _table(3, {"L_mean_hbar": np.array([1.0, np.nan, 3.0]), "mode_n_mean.libration": np.full(3, np.nan)})
+    fig = sweep_figures(t)[0]
+    labels = [ax.get_ylabel() for ax in fig.axes if ax.get_visible()]
+    assert labels == ["mean ⟨L⟩ (ħ)"]
+    assert "no value at any point (not drawn): ⟨n⟩ libration (quanta)" in fig.get_supxlabel()
+    fig = sweep_figures(t, metrics="L_mean_hbar,mode_n_mean.libration")[0]  # asked for by name: the same
+    assert [ax.get_ylabel() for ax in fig.axes if ax.get_visible()] == ["mean ⟨L⟩ (ħ)"]
+    with pytest.raises(MissingData) as e:
+        sweep_figures(t, metrics="mode_n_mean.libration")
+    assert "no value at any point" in e.value.expected and "libration" in e.value.expected
+
+
+def test_optimisation_without_any_objective_is_skipped_with_its_reason():
+    """No evaluation has an objective (NaN everywhere): no empty history panel."""
+    t = _table(3, {"objective": np.full(3, np.nan), "penalty": np.full(3, np.nan), "feasible": np.zeros(3)}, "optimize")
+    with pytest.raises(MissingData) as e:
+        optimize_figure(t)
+    assert "no evaluation has an objective" in e.value.expected
+    t["metrics"]["objective"] = np.array([np.nan, 2.0, 1.0])
+    t["metrics"]["feasible"] = np.array([0.0, 1.0, 1.0])
+    fig = optimize_figure(t)
+    assert "1 evaluation without an objective" in fig.get_supxlabel()
