@@ -77,20 +77,37 @@ def read_table(path) -> dict:
     (for an optimisation the axes are its parameters, one row per evaluation).
     """
 
+    src = str(path)
     with open_hdf5(path, "an mdrotor sweep or optimisation file (.h5)") as f:
         if "summary" not in f or "kind" not in f.attrs:
-            raise InputError("", "not an mdrotor sweep or optimisation file", str(path))
+            raise InputError("", "not an mdrotor sweep or optimisation file", src)
         s = f["summary"]
-        out = {k: s[k][()] for k in ("index", "seed", "complete", "failed")}
-        out["error"] = [x.decode() if isinstance(x, bytes) else str(x) for x in s["error"][()]]
+        out = {"index": _column(f, "summary/index", src)}
+        n = len(out["index"])
+        out.update({k: _column(f, f"summary/{k}", src, n) for k in ("seed", "complete", "failed")})
+        out["error"] = [x.decode() if isinstance(x, bytes) else str(x) for x in _column(f, "summary/error", src, n)]
         out["axes"] = {}
         if "axes" in f:
-            for gname in sorted(f["axes"], key=lambda k: int(f["axes"][k].attrs["index"])):
+            for gname in sorted(f["axes"], key=lambda k: int(f["axes"][k].attrs.get("index", 0))):
                 g = f["axes"][gname]
-                out["axes"][str(g.attrs.get("key", gname))] = {"text": [x.decode() if isinstance(x, bytes) else str(x) for x in g["text"][()]],
-                                    "si": g["si"][()]}
-        out["metrics"] = {str(c): s[str(c).replace("/", "|")][()] for c in s.attrs.get("metrics", [])}
+                out["axes"][str(g.attrs.get("key", gname))] = {
+                    "text": [x.decode() if isinstance(x, bytes) else str(x) for x in _column(f, f"axes/{gname}/text", src, n)],
+                    "si": _column(f, f"axes/{gname}/si", src, n)}
+        out["metrics"] = {str(c): _column(f, "summary/" + str(c).replace("/", "|"), src, n) for c in s.attrs.get("metrics", [])}
     return out
+
+
+def _column(f, path: str, src: str, n: int | None = None):
+    """A one-row-per-entry dataset of the table, refused naming it when it
+    is missing or its length differs (a damaged file, or another layout)."""
+    import h5py
+
+    d = f.get(path)
+    if not isinstance(d, h5py.Dataset) or d.ndim != 1 or (n is not None and d.shape[0] != n):
+        what = "missing" if d is None else "not one value per row"
+        raise InputError(f"/{path}", f"{what} in this sweep or optimisation file (damaged, or written in another "
+                                     f"layout); expected the table of docs/studies.md", src)
+    return d[()]
 
 
 def read_point(path, index) -> object:
