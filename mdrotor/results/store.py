@@ -138,15 +138,32 @@ def save_result(res: Result, path) -> None:
             tmp.unlink()
 
 
+def need(g, name: str):
+    """``g[name]``, refused naming the HDF5 path and the file when it is
+    missing (a damaged file, or one written in another layout), instead of
+    h5py's KeyError."""
+    if name not in g:
+        raise InputError(f"{g.name.rstrip('/')}/{name}", "missing from this file (damaged, or written in another layout); "
+                                                         "expected a result laid out as docs/results.md", g.file.filename)
+    return g[name]
+
+
+def _need_attr(g, name: str):
+    if name not in g.attrs:
+        raise InputError(f"{g.name} (attribute {name})", "missing from this file (damaged, or written in another layout); "
+                                                        "expected a result laid out as docs/results.md", g.file.filename)
+    return g.attrs[name]
+
+
 def read_observation(g) -> Observation:
     arrays = {k: g[k][()] for k in g if k not in ("modes", "summary")}
-    mg = g["modes"]
-    modes = {"freq_hz": mg["freq_hz"][()]}
+    mg = need(g, "modes")
+    modes = {"freq_hz": need(mg, "freq_hz")[()]}
     for k in ("label", "kind", "plane"):
-        modes[k] = [x.decode() if isinstance(x, bytes) else str(x) for x in mg[k][()]]
+        modes[k] = [x.decode() if isinstance(x, bytes) else str(x) for x in need(mg, k)[()]]
     frame = mg.attrs.get("frame")
     frame = (frame.decode() if isinstance(frame, bytes) else str(frame)) if frame is not None else None
-    return Observation(str(g.attrs["name"]), float(g.attrs["t_s"]), arrays, modes, _read_summary(g["summary"]),
+    return Observation(str(_need_attr(g, "name")), float(_need_attr(g, "t_s")), arrays, modes, _read_summary(need(g, "summary")),
                        frame, float(mg.attrs.get("frame_f_rot_hz", 0.0)))
 
 
@@ -166,7 +183,7 @@ def load_result(path) -> Result:
         attrs = {k: (v.item() if hasattr(v, "item") and np.ndim(v) == 0 else v) for k, v in f.attrs.items()}
         initial = read_observation(f["initial"]) if "initial" in f else None
         order = list(attrs.get("stage_names", list(f["stages"].keys())))
-        stages = {str(n): read_observation(f["stages"][str(n)]) for n in order}
+        stages = {str(n): read_observation(need(f["stages"], str(n))) for n in order}
         series = None
         if "series" in f:
             series = {}

@@ -38,7 +38,7 @@ import numpy as np
 
 from mdrotor.errors import InputError
 from mdrotor.results.result import Result
-from mdrotor.results.store import read_observation, save_result
+from mdrotor.results.store import need, read_observation, save_result
 
 FORMAT_VERSION = 1
 PART_SUFFIX = ".parts"
@@ -326,8 +326,8 @@ def read_result_group(g):
     run file (a sweep point or evaluation, linked or consolidated)."""
 
     attrs = {k: (v.item() if hasattr(v, "item") and np.ndim(v) == 0 else v) for k, v in g.attrs.items()}
-    order = [str(n) for n in attrs.get("stage_names", list(g["stages"].keys()))]
-    stages = {n: read_observation(g["stages"][n]) for n in order}
+    order = [str(n) for n in attrs.get("stage_names", list(need(g, "stages").keys()))]
+    stages = {n: read_observation(need(need(g, "stages"), n)) for n in order}
     initial = read_observation(g["initial"]) if "initial" in g else None
 
     def table(name):

@@ -105,3 +105,21 @@ def test_refusals(tmp_path):
     with pytest.raises(InputError) as e:
         store.load_result(tmp_path / "t.h5")
     assert "not an HDF5 file" in e.value.line()
+
+
+@pytest.mark.parametrize("path, where", [("stages/hold", "/stages/hold"), ("final/modes/label", "/final/modes/label"),
+                                         ("stages/spin-up/summary", "/stages/spin-up/summary")])
+def test_missing_group_is_named(result, tmp_path, path, where):
+    """A result file missing a part (damaged, or another layout) is refused
+    naming the HDF5 path and the file, never h5py's KeyError."""
+    p = tmp_path / "r.h5"
+    store.save_result(result, p)
+    with h5py.File(p, "a") as f:
+        if path in f:
+            del f[path]
+        else:  # /final is a link to the last stage in some layouts: damage the stage itself
+            del f[path.replace("final", "stages/hold")]
+            where = where.replace("final", "stages/hold")
+    with pytest.raises(InputError) as e:
+        store.load_result(p)
+    assert e.value.key == where and "r.h5" in str(e.value)
