@@ -14,6 +14,10 @@
   same float (``repr``), after removing the noise of a unit conversion
   (``clean``: 5 us is 5e-06 s, not 4.9999999999999996e-06).
 * Numbers with neither (``plain``): a fixed number of significant digits.
+* Figures and the report page (``compact``, ``plus_minus``): a few
+  significant digits without an exponent between 1e-3 and 1e6
+  (``200000``, not ``2e+05``, on a tick or in a table cell), and
+  ``value ± error`` with the error to two digits.
 
 Text never shows ``nan``: a missing number is written ``n/a``.
 """
@@ -60,6 +64,26 @@ def plain(x, sig: int = 6) -> str:
         return MISSING
     x = float(x)
     return f"{0.0 if x == 0 else x:.{sig}g}"
+
+
+def compact(x, sig: int = 4) -> str:
+    """``sig`` significant digits, without an exponent between 1e-3 and 1e6
+    (figures, heat-map cells, the report page); ``n/a`` for a missing number."""
+    if not _finite(x):
+        return MISSING
+    x = float(f"{float(x):.{sig}g}")
+    if x == 0 or 1e-3 <= abs(x) < 1e6:
+        return f"{x:.{max(sig, 7)}g}"
+    return f"{x:.{sig}g}"
+
+
+def plus_minus(x, err, sig: int = 4) -> str:
+    """``value ± error`` on a figure or the report page: the value as
+    :func:`compact` with ``sig`` digits, the error with two; the value alone
+    without a finite error, ``n/a`` without a value."""
+    if err is None or not _finite(err) or not _finite(x):
+        return compact(x, sig)
+    return f"{compact(x, sig)} ± {compact(err, 2)}"
 
 
 def _decimals(err: float, sig: int) -> int:

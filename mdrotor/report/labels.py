@@ -1,6 +1,6 @@
 """How quantities are written on a figure and on the report page (display only).
 
-* numbers: significant digits, value ± error, a fraction with its interval,
+* numbers (digits and value ± error from :mod:`mdrotor.numfmt`): a fraction with its interval,
   powers of ten on a log axis;
 * units: ``V/m^2`` -> ``V/m²``, the time or frequency unit that suits a range;
 * config keys that a sweep or optimisation varies: the quantity in words,
@@ -16,6 +16,8 @@ from __future__ import annotations
 import math
 
 import numpy as np
+
+from mdrotor.numfmt import compact
 
 SIG = r"$\sigma_L$"  # figure text (mathtext)
 FROT = r"$f_\mathrm{rot}$"
@@ -63,16 +65,6 @@ def freq_unit(f_max_hz: float):
     return 1.0, "Hz"
 
 
-def num_text(x, digits=4) -> str:
-    """``digits`` significant digits, without an exponent between 1e-3 and 1e6."""
-    if x is None or not np.isfinite(float(x)):
-        return "n/a"
-    x = float(f"{float(x):.{digits}g}")
-    if x == 0 or 1e-3 <= abs(x) < 1e6:
-        return f"{x:.{max(digits, 7)}g}"
-    return f"{x:.{digits}g}"
-
-
 def fraction_text(s: dict, m: str) -> str:
     """A fraction with its interval '0.031 [0.024, 0.040]' when the summary
     stores the bounds (``<m>_lo`` / ``<m>_hi``), else the value alone (the
@@ -83,15 +75,8 @@ def fraction_text(s: dict, m: str) -> str:
         return "n/a"
     lo, hi = s.get(f"{m}_lo"), s.get(f"{m}_hi")
     if lo is not None and hi is not None:
-        return f"{float(v):.3f} [{num_text(lo, 2)}, {num_text(hi, 2)}]"
+        return f"{float(v):.3f} [{compact(lo, 2)}, {compact(hi, 2)}]"
     return f"{float(v):.3f}"
-
-
-def pm_text(v, e, digits=4) -> str:
-    """'value ± error' (the value alone when the error is missing)."""
-    if e is None or not np.isfinite(e):
-        return num_text(v, digits)
-    return f"{num_text(v, digits)} ± {num_text(e, 2)}"
 
 
 def term_label(name: str, order) -> str:
@@ -192,7 +177,7 @@ def frame_text(frame: tuple[str, float]) -> str:
     if kind == "lab":
         return "lab frame"
     fs, fu = freq_unit(f)
-    return f"rotating frame, {num_text(f * fs, 4)} {fu}"
+    return f"rotating frame, {compact(f * fs, 4)} {fu}"
 
 
 _METRIC_NAMES = {
@@ -253,10 +238,10 @@ def metric_name(name: str, meta: dict | None = None) -> str:
 def _sci(v: float) -> str:
     """A tick value: plain between 1e-3 and 1e4, else 5×10⁴."""
     if v == 0 or 1e-3 <= abs(v) < 1e4:
-        return num_text(v, 3)
+        return compact(v, 3)
     e = int(math.floor(math.log10(abs(v))))
     m = float(f"{v / 10 ** e:.3g}")
-    return f"10{_sup(e)}" if m == 1 else f"{num_text(m, 3)}×10{_sup(e)}"
+    return f"10{_sup(e)}" if m == 1 else f"{compact(m, 3)}×10{_sup(e)}"
 
 
 def log_ticks(axis):

@@ -18,8 +18,9 @@ import numpy as np
 
 from mdrotor.analysis.summary import summary_text
 from mdrotor.errors import InputError
+from mdrotor.numfmt import compact, plus_minus
 from mdrotor.report.inputs import MissingData, file_kind, plotting
-from mdrotor.report.labels import fraction_text, frame_text, key_label, metric_name, num_text, plain_text, pm_text
+from mdrotor.report.labels import fraction_text, frame_text, key_label, metric_name, plain_text
 from mdrotor.report.quantum_figure import QUANTUM_CAPTION, quantum_dict, quantum_figure
 from mdrotor.report.run_figures import CAPTIONS, draw_run_figures, frame_of, load_run
 from mdrotor.report.study_figures import confirm_error, optimize_figure, sweep_figures, sweep_meta
@@ -198,13 +199,13 @@ def _report_run(src, out, fmt, dpi, doc, written, skipped, diffusion, k, prefix=
         v = s.get(x)
         return None if v is None else v * scale
 
-    rows = [["final L (mean)", f"{pm_text(k('L_mean_hbar'), k('L_mean_err_hbar'), 6)} ħ"],
-            ["final L spread", f"{pm_text(k('L_std_hbar'), k('L_std_err_hbar'))} ħ"],
-            ["rotation f_rot", f"{pm_text(k('f_rot_mean_hz', 1e-3), k('f_rot_mean_err_hz', 1e-3), 7)} kHz"],
+    rows = [["final L (mean)", f"{plus_minus(k('L_mean_hbar'), k('L_mean_err_hbar'), 6)} ħ"],
+            ["final L spread", f"{plus_minus(k('L_std_hbar'), k('L_std_err_hbar'))} ħ"],
+            ["rotation f_rot", f"{plus_minus(k('f_rot_mean_hz', 1e-3), k('f_rot_mean_err_hz', 1e-3), 7)} kHz"],
             ["slipped / lost / reordered", " / ".join(fraction_text(s, m) for m in
                                                       ("slip_fraction", "loss_fraction", "reorder_fraction"))],
-            ["differential phonons", pm_text(k("differential_n_mean"), k("differential_n_err"))],
-            ["COM phonons", pm_text(k("com_n_mean"), k("com_n_err"))],
+            ["differential phonons", plus_minus(k("differential_n_mean"), k("differential_n_err"))],
+            ["COM phonons", plus_minus(k("com_n_mean"), k("com_n_err"))],
             ["trajectories used (finite, bound)", f"{s.get('n_ok', '?')} of {s.get('n_trajectories', '?')}"],
             ["modes measured in the", frame_text(frame_of(res, res.final))]]
     if rot:
@@ -266,7 +267,7 @@ def _report_sweep(src, kind, out, fmt, dpi, doc, written, skipped, metrics, axes
         if cm and "objective" in cm:
             err = confirm_error(meta, cm)
             doc.p(f"Confirmation run ({int(cm.get('n_trajectories', 0))} trajectories, fresh seeds): objective "
-                  f"{pm_text(cm['objective'], err, 6)}.")
+                  f"{plus_minus(cm['objective'], err, 6)}.")
     try:
         pages = sweep_figures(src, metrics=metrics, axes=axes, fixed=fixed)
         for i, f in enumerate(pages):
@@ -285,7 +286,7 @@ def _report_sweep(src, kind, out, fmt, dpi, doc, written, skipped, metrics, axes
     body = []
     for i in np.flatnonzero(done)[:40]:
         body.append([str(int(t["index"][i]))] + [ax["text"][i] for ax in t["axes"].values()]
-                    + [num_text(t["metrics"][m][i], 5) for m in names])
+                    + [compact(t["metrics"][m][i], 5) for m in names])
     doc.h(2, "Points")
     doc.table(hdr, body)
     if int(done.sum()) > 40:
@@ -322,7 +323,7 @@ def _report_quantum(src, out, fmt, dpi, doc, written, skipped):
                           f"{d['statistics']})"],
             ["ħ/(2πI)", f"{d['hbar_over_I_hz']:.5g} Hz"]]
     fin = d["stages"][-1]
-    rows.append([f"final L (end of '{fin['name']}')", f"{num_text(fin['L_mean_hbar'], 6)} ħ, spread {num_text(fin['L_std_hbar'], 4)} ħ"])
+    rows.append([f"final L (end of '{fin['name']}')", f"{compact(fin['L_mean_hbar'], 6)} ħ, spread {compact(fin['L_std_hbar'], 4)} ħ"])
     if d.get("verdict"):
         rows.append(["semiclassical answer", f"{d['verdict']}: {d['verdict_reason']}"])
     doc.table(["quantity", "value"], rows)

@@ -7,8 +7,9 @@ from __future__ import annotations
 
 import numpy as np
 
+from mdrotor.numfmt import compact, plus_minus
 from mdrotor.report.inputs import MissingData, plotting
-from mdrotor.report.labels import SIG, num_text, pm_text, time_unit
+from mdrotor.report.labels import SIG, time_unit
 from mdrotor.results.store import load_quantum
 from mdrotor.studies.quantum import fixed_digits
 
@@ -100,7 +101,7 @@ def quantum_figure(source, max_panels: int = 6):
             w = g * sp
             Lb, Pb = _ladder_groups(L, P, off, sp, g)
             ax.bar(Lb, Pb, width=0.8 * w, color="#c9c9c9", edgecolor=ps.INK, lw=0.4, zorder=1, label="quantum P(L)")
-            txt = [f"quantum: ⟨L⟩ = {fixed_digits(st['L_mean_hbar'], 2)} ħ, {SIG} = {num_text(st['L_std_hbar'], 4)} ħ"]
+            txt = [f"quantum: ⟨L⟩ = {fixed_digits(st['L_mean_hbar'], 2)} ħ, {SIG} = {compact(st['L_std_hbar'], 4)} ħ"]
             top = float(np.max(Pb))
             if e is not None:
                 N = float(e["n"])
@@ -108,8 +109,8 @@ def quantum_figure(source, max_panels: int = 6):
                 ax.errorbar(hLb, c / N, yerr=np.sqrt(c) / N, fmt=stl["marker"], color=stl["color"], ms=3.0, lw=0.8,
                             capsize=1.5, zorder=3, ls="none", label="ensemble, binned on the ladder")
                 top = max(top, float(np.max((c + np.sqrt(c)) / N)))
-                txt.append(f"ensemble (N = {int(N)}): ⟨L⟩ = {pm_text(e['mean_hbar'], e['mean_err_hbar'])} ħ, "
-                           f"{SIG} = {pm_text(e['std_hbar'], e['std_err_hbar'])} ħ"
+                txt.append(f"ensemble (N = {int(N)}): ⟨L⟩ = {plus_minus(e['mean_hbar'], e['mean_err_hbar'])} ħ, "
+                           f"{SIG} = {plus_minus(e['std_hbar'], e['std_err_hbar'])} ħ"
                            + (f", drawn shifted by {shift:+d} ħ" if shift else ""))
                 txt.append(f"total-variation distance {e['tv']:.3f} (sampling alone, 99 %: {e['tv_null_99']:.3f})")
             if g > 1:

@@ -40,6 +40,7 @@ from mdrotor.analysis.rotor import rotor_summary
 from mdrotor.engine.observe import W_GRID_HZ
 from mdrotor.errors import InputError, PhysicsError
 from mdrotor.model.quantum import config_ladder
+from mdrotor.numfmt import compact, plus_minus
 from mdrotor.physics import coherence as coh
 from mdrotor.physics.statics import SLOW_ROTATION_HZ
 from mdrotor.report.inputs import MissingData, file_kind, plotting, stored_config
@@ -49,8 +50,6 @@ from mdrotor.report.labels import (
     frame_text,
     freq_unit,
     log_ticks,
-    num_text,
-    pm_text,
     term_label,
     term_unit,
     time_unit,
@@ -324,7 +323,7 @@ def L_histogram_figure(result, stage: str | None = None, bins: int | None = None
         ax.set_ylabel(f"trajectories per bin (bin {width:.3g} ħ)")
         when = "end" if stage is None else ("t = 0" if obs.name == "initial" else f"end of '{obs.name}'")
         ax.set_title(f"L distribution at the {when}" if stage is None or obs.name != "initial" else "L distribution at t = 0")
-        txt = [f"N = {L.size} trajectories", f"⟨L⟩ = {pm_text(mean, sem, 6)} ħ", f"{SIG} = {pm_text(std, std_err, 4)} ħ"]
+        txt = [f"N = {L.size} trajectories", f"⟨L⟩ = {plus_minus(mean, sem, 6)} ħ", f"{SIG} = {plus_minus(std, std_err, 4)} ħ"]
         if lad:
             txt.append(f"allowed L ≡ {lad[1]} (mod {lad[0]})" if lad[0] > 1 else "every integer L allowed")
         ax.text(0.015, 0.97, "\n".join(txt), transform=ax.transAxes, va="top", ha="left", fontsize=7.5, zorder=7,
@@ -662,7 +661,7 @@ def phonons_figure(result, stage: str | None = None):
             ax.set_xlim(-0.6, len(idx) - 0.4)
             top = float(np.nanmax(nm[idx] + np.nan_to_num(ne[idx]))) if len(idx) else 1.0
             ax.set_ylim(0, 1.2 * top if top > 0 else 1.0)
-            ax.set_title(f"{title}\ntotal {pm_text(s.get(tot + '_mean'), s.get(tot + '_err'), 4)} quanta")
+            ax.set_title(f"{title}\ntotal {plus_minus(s.get(tot + '_mean'), s.get(tot + '_err'), 4)} quanta")
             if stacked:
                 ax.set_ylabel("⟨n⟩ (quanta)")
         fig.supxlabel(f"mode: label and frequency ({fu}) in the {frame}", fontsize=8)
@@ -731,7 +730,7 @@ def spectrum_figure(result, rotor: dict | None = None, k: int | None = None):
         # the lines are positive frequencies (quanta added in the sense of rotation): no axis below 0
         lo, hi = max(float(np.min(cen)) - pad, 0.0), float(np.max(cen)) + pad
         x = np.linspace(lo, hi, 3000)
-        texts = [f"ΔL = {dl}\n{c * fs:.7g} {fu}\nσ = {num_text(w * fs, 3)} {fu}" for c, w, dl in zip(cen, wid, dls)]
+        texts = [f"ΔL = {dl}\n{c * fs:.7g} {fu}\nσ = {compact(w * fs, 3)} {fu}" for c, w, dl in zip(cen, wid, dls)]
         at = [(c - lo) / (hi - lo) for c in cen]
         pos = _spread(ax, at, texts, 6.5)
         for i, (c, w, dl) in enumerate(zip(cen, wid, dls)):

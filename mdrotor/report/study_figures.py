@@ -17,8 +17,9 @@ from pathlib import Path
 import numpy as np
 
 from mdrotor.errors import InputError
+from mdrotor.numfmt import compact
 from mdrotor.report.inputs import MissingData, file_kind, plotting, stored_names
-from mdrotor.report.labels import key_label, log_ticks, metric_label, metric_name, num_text, pretty_unit
+from mdrotor.report.labels import key_label, log_ticks, metric_label, metric_name, pretty_unit
 from mdrotor.report.style import wrap_text
 from mdrotor.studies.metrics import err_name
 from mdrotor.studies.table import read_table
@@ -152,7 +153,7 @@ class _AxisView:
         """The i-th level as a tick label (numeric: its value in the axis unit)."""
         if not self.numeric:
             return self.levels[i]
-        return num_text(self.level_value(i), 6)
+        return compact(self.level_value(i), 6)
 
     def edges(self) -> np.ndarray:
         """Cell edges around the levels (numeric): midpoints, geometric on a
@@ -423,11 +424,11 @@ def _cell_axis(ax, view, which):
 
 
 def _cell_text(Z, E, LO, HI, iy, ix, small):
-    s = num_text(Z[iy, ix], 3)
+    s = compact(Z[iy, ix], 3)
     if np.isfinite(LO[iy, ix]) and small:
-        s += f"\n[{num_text(LO[iy, ix], 2)}, {num_text(HI[iy, ix], 2)}]"
+        s += f"\n[{compact(LO[iy, ix], 2)}, {compact(HI[iy, ix], 2)}]"
     elif np.isfinite(E[iy, ix]) and small:
-        s += f"\n±{num_text(E[iy, ix], 2)}"
+        s += f"\n±{compact(E[iy, ix], 2)}"
     return s
 
 
