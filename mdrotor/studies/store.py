@@ -59,6 +59,10 @@ class Entry:
         return bool(self.error)
 
 
+_NOUN = {"sweep": "sweep", "optimize": "optimisation"}  # the kinds of study file, in words
+_A_NOUN = {"sweep": "a sweep", "optimize": "an optimisation"}
+
+
 @dataclass
 class EntryStore:
     """Finished entries of a sweep or optimisation on disk.
@@ -101,9 +105,10 @@ class EntryStore:
             if info is None:
                 raise InputError("-o", f"{src} exists and is not an mdrotor sweep or optimisation output; choose another file name", "command line")
             if info["kind"] != self.kind:
-                raise InputError("-o", f"{src} holds an mdrotor {info['kind']}, not a {self.kind}; choose another file name", "command line")
+                raise InputError("-o", f"{src} holds an mdrotor {_NOUN.get(info['kind'], info['kind'])}, not "
+                                       f"{_A_NOUN[self.kind]}; choose another file name", "command line")
             if info["spec_hash"] != self.spec_hash and not self.restart:
-                raise InputError("-o", f"{src} was started from a different {self.kind} file or settings (the points changed since the first start); "
+                raise InputError("-o", f"{src} was started from a different {_NOUN[self.kind]} file or settings (the points changed since the first start); "
                                  "rerun with --restart to discard it and start over, or write to a new -o file", "command line")
         if self.restart:
             self._discard()
