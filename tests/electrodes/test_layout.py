@@ -219,6 +219,24 @@ def test_other_faults_name_key(tmp_path, body, key, words):
     _expect(tmp_path, body, key, words)
 
 
+def test_arc_segments_bounded(tmp_path):
+    """arc_segments = 100000 ended in a traceback (a 37 GiB array in the
+    overlap check, whose cost grows with the square of the vertices);
+    1024 takes half a minute for a six-segment ring, 4096 over four."""
+    body = """
+     [[electrode]]
+     name = "a"
+     role = "dc"
+     limit = "10 V"
+     disc = { center = [0, 0], radius = 100 }
+     """
+    for arc in (100000, 2000, 4):
+        p = _write(tmp_path, HEAD.replace('units = "um"', f'units = "um"\narc_segments = {arc}') + textwrap.dedent(body))
+        with pytest.raises(InputError) as exc:
+            load_layout(p)
+        assert "layout.arc_segments" in str(exc.value) and "8 to 1024" in str(exc.value)
+
+
 def test_bad_toml_and_missing_file(tmp_path):
     p = _write(tmp_path, "[layout\nunits = 'um'\n")
     with pytest.raises(InputError, match=r"not valid TOML"):
