@@ -28,6 +28,7 @@ from mdrotor.electrodes.waveform import write_waveform
 from mdrotor.errors import InputError
 from mdrotor.inputfiles import read_text
 from mdrotor.numfmt import jsonable
+from mdrotor.results.store import check_writable
 from mdrotor.studies.design_check import design_check, prepare_design
 
 EXIT_INPUT = 2
@@ -245,6 +246,7 @@ def main(args) -> int:
             if cfg is None:
                 raise InputError("--waveform", "follows the run config's schedule; expected --config RUN.toml", "command line")
             rate = units.parse(args.rate, "frequency", "--rate", "command line")
+            check_writable(args.waveform, "--waveform")  # a missing or read-only folder refused before the work, as run -o
             ds = prepare_design(layout, cfg, depth=False)
             if not ds.plan.reached:
                 key = "pinning.order" if not ds.plan.producible else "pinning.strength"

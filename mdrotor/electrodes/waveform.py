@@ -132,15 +132,19 @@ def write_waveform(path, layout, plan, cfg, rate_hz: float, *, allow_over: bool 
     vmax = np.zeros(len(dc))
     tmax = np.zeros(len(dc))
     over = np.zeros(len(dc), dtype=int)
-    path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
+    fh = h5 = None
     meta = {"caution": CAUTION, "layout": layout.source, "config": cfg.source, "order": plan.order,
             "strength_si": plan.strength_si, "rate_hz": rate_hz,
             "formula": f"V(t) = static + m(t) amplitude cos({plan.order} (theta(t) + theta0) - phase), "
                        f"theta(t) = 2 pi int f_rot dt, m(t) the pinning multiplier, theta0 = {angle!r} rad"}
     try:
+        try:
+            fh = open(tmp, "w", encoding="utf-8") if fmt == "csv" else None
+        except OSError as e:
+            raise InputError("--waveform", f"cannot write {str(path)!r} ({e.strerror}); expected a file in a writable "
+                                           f"folder", "command line") from None
         if fmt == "csv":
-            fh = open(tmp, "w", encoding="utf-8")
             fh.write(f"# CAUTION: {CAUTION}\n")
             for k in ("layout", "config", "formula"):
                 fh.write(f"# {k}: {meta[k]}\n")
@@ -158,7 +162,11 @@ def write_waveform(path, layout, plan, cfg, rate_hz: float, *, allow_over: bool 
         else:
             import h5py
 
-            h5 = h5py.File(tmp, "w")
+            try:
+                h5 = h5py.File(tmp, "w")
+            except OSError as e:
+                raise InputError("--waveform", f"cannot write {str(path)!r} ({e}); expected a file in a writable folder",
+                                 "command line") from None
             ch = (min(BLOCK, n_samples),)
             d_t = h5.create_dataset("t_s", (n_samples,), dtype="f8", chunks=ch)
             d_v = h5.create_dataset("voltages_v", (n_samples, len(dc)), dtype="f8", chunks=(ch[0], len(dc)))
@@ -215,9 +223,9 @@ def write_waveform(path, layout, plan, cfg, rate_hz: float, *, allow_over: bool 
             fh = None
         os.replace(tmp, path)
     finally:
-        if fmt == "csv" and fh is not None:
+        if fh is not None:
             fh.close()
-        if fmt == "hdf5" and h5 is not None:
+        if h5 is not None:
             h5.close()
         if tmp.exists():
             tmp.unlink()

@@ -128,3 +128,42 @@ def test_over_limit_plan_exits_2_naming_the_electrode(tmp_path, capsys):
     n_over = int(np.sum(np.abs(data[:, 1:]) > LIMIT_V * (1 + 1e-9)))
     assert n_over > 0 and rep["over_samples"] == n_over
     assert max(c["max_abs_v"] for c in rep["channels"]) == pytest.approx(np.max(np.abs(data[:, 1:])), rel=1e-9)
+
+
+@pytest.mark.parametrize("where, words", [
+    ("nodir/w.h5", "does not exist"),     # was created silently, where `run -o` refuses it
+    ("file.txt/w.csv", "file.txt"),       # was a traceback (UnboundLocalError) after the whole check
+])
+def test_waveform_into_a_folder_that_cannot_hold_it(tmp_path, capsys, where, words):
+    (tmp_path / "file.txt").write_text("a file, not a folder\n")
+    old = tmp_path / "old.csv"
+    old.write_text("OLD\n")
+    before = sorted(p.name for p in tmp_path.iterdir())
+    rc = cli_main(["electrodes", LAYOUT, "--config", RUN, "--waveform", str(tmp_path / where)])
+    err = capsys.readouterr().err
+    assert rc == 2 and err.count("\n") == 1 and "Traceback" not in err, err
+    assert err.startswith("mdrotor: error: command line: --waveform: ") and words in err, err
+    assert sorted(p.name for p in tmp_path.iterdir()) == before and old.read_text() == "OLD\n"
+
+
+def test_refused_waveform_leaves_the_old_file(tmp_path, capsys):
+    out = tmp_path / "w.csv"
+    out.write_text("OLD\n")
+    assert cli_main(["electrodes", LAYOUT, "--config", RUN, "--set", OVER, "--waveform", str(out)]) == 2
+    assert out.read_text() == "OLD\n" and sorted(p.name for p in tmp_path.iterdir()) == ["w.csv"]
+
+
+def test_write_waveform_refuses_an_unwritable_path(tmp_path):
+    """The library call (no command-line check first) names the path instead
+    of failing on its own cleanup (UnboundLocalError)."""
+    from mdrotor.electrodes.waveform import write_waveform
+    from mdrotor.errors import InputError
+    from mdrotor.studies.design_check import prepare_design
+
+    (tmp_path / "file.txt").write_text("a file, not a folder\n")
+    cfg = load_config(RUN)
+    ds = prepare_design(load_layout(LAYOUT), cfg, depth=False)
+    for name in ("w.csv", "w.h5"):
+        with pytest.raises(InputError) as exc:
+            write_waveform(tmp_path / "file.txt" / name, load_layout(LAYOUT), ds.plan, cfg, 10e6)
+        assert "--waveform" in str(exc.value) and "cannot write" in str(exc.value)
