@@ -143,7 +143,7 @@ def main(args) -> int:
         f_rot = units.parse(args.f_rot, "frequency", "--f-rot", "command line")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        cr = crystal_from_config(cfg, f_rot)
+        cr = crystal_from_config(cfg, f_rot, f_rot_key="--f-rot" if f_rot is not None else None)
         holding = assess_config(cfg, cr.f_rot_hz, start=cr.positions_m) if cfg.pinning else None
     if args.json:
         print(json.dumps(jsonable(crystal_json(cfg, cr, holding))))

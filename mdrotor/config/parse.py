@@ -23,7 +23,7 @@ from mdrotor.errors import InputError, PhysicsError
 from mdrotor.inputfiles import read_text
 from mdrotor.physics.laser import PATTERNS, Beam, emission_tensor
 from mdrotor.physics.mathieu import secular_frequency_hz, solve_point_trap
-from mdrotor.physics.multipole import MultipoleTerm
+from mdrotor.physics.multipole import MultipoleTerm, quadrupole_magnitude
 from mdrotor.physics.noise import NoiseModel
 from mdrotor.physics.species import cooling_line, custom_species, get_species
 from mdrotor.physics.statics import MODE_GROUPS, MODE_LABELS, occupation_selector_known
@@ -706,25 +706,16 @@ def _check_rotation(cfg: Config) -> None:
     # an order-2 pinning turns with the crystal and weakens one in-plane direction
     # (mdrotor.physics.trap, module docstring); an electrode layout's term is its
     # own fitted potential, checked by the statics
-    quad = [(j, t.strength * np.exp(-2j * t.angle_rad)) for j, t in enumerate(cfg.pinning)
-            if t.order == 2 and t.layout is None]
-    if not quad:
+    if not any(t.order == 2 and t.layout is None for t in cfg.pinning):
         return
     for i, st in enumerate(cfg.schedule.stages):
         smp = cfg.schedule.stage_samples(i, 2001)
-        c2 = np.abs(sum(c * smp["scale"][:, j] for j, c in quad))
-        f = np.abs(smp["f_rot_hz"])
+        c2 = quadrupole_magnitude(cfg.pinning, smp["scale"])
         c2_set, at = np.unique(c2, return_inverse=True)
         lim = np.array([cfg.trap.max_rotation_hz(cfg.masses_kg, cfg.charges_c, x) for x in c2_set])[at]
-        bad = np.nonzero((f > 0) & (f >= lim))[0]
-        if len(bad):
-            k = int(bad[0])
-            raise PhysicsError(f"stage.{st.name}.f_rot",
-                               f"rotation at {f[k]:.6g} Hz (t = {smp['t_s'][k] * 1e3:.6g} ms) is faster than the radial "
-                               f"confinement can hold with the order-2 pinning turning with it (|c_2| = {c2[k]:.4g} V/m^2 "
-                               f"takes 2 Q |c_2| / m from one in-plane w^2: the limit there is {lim[k]:.6g} Hz, the lowest "
-                               f"radial secular frequency {f_lim:.6g} Hz); expected a slower rotation or a weaker pinning",
-                               cfg.source)
+        for k in np.nonzero(np.abs(smp["f_rot_hz"]) >= lim)[0][:1]:
+            check_rotation(float(smp["f_rot_hz"][k]), float(lim[k]), f"stage.{st.name}.f_rot", cfg.source,
+                           quadrupole_v_per_m2=float(c2[k]), when=f" (t = {smp['t_s'][k] * 1e3:.6g} ms)")
 
 
 def _dump(raw: dict) -> str:

@@ -18,6 +18,7 @@ import numpy as np
 from mdrotor.electrodes.polynomial import PolynomialPotential
 from mdrotor.errors import PhysicsError
 from mdrotor.physics.frame import on_axis
+from mdrotor.physics.multipole import quadrupole_magnitude
 from mdrotor.physics.pinning import K_B, N_PHI, Holding, assess, held_curve
 from mdrotor.physics.statics import (
     SLOW_ROTATION_HZ,
@@ -65,12 +66,20 @@ def model_potential(cfg, f_rot_hz: float = 0.0, *, theta_rad: float = 0.0, pin_s
     return Potential(m, q, k, stray, mults, TWO_PI * f_rot_hz, external)
 
 
-def crystal_from_config(cfg, f_rot_hz: float | None = None) -> Crystal:
+def crystal_from_config(cfg, f_rot_hz: float | None = None, *, f_rot_key: str | None = None) -> Crystal:
     """Equilibrium and modes of the config's crystal at ``f_rot_hz``
     (default: the rotation at t = 0, ``rotation.f_start``), with the
-    pinning at full configured strength and angle."""
+    pinning at full configured strength and angle. A rotation the radial
+    confinement cannot hold is refused naming ``f_rot_key`` (a command-line
+    option, such as ``--f-rot``), else ``rotation.f_start`` or ``f_rot``."""
     f = cfg.f_start_hz if f_rot_hz is None else float(f_rot_hz)
-    check_rotation(f, cfg.trap.max_rotation_hz(cfg.masses_kg, cfg.charges_c), "f_rot", cfg.source)
+    c2 = float(quadrupole_magnitude(cfg.pinning, np.ones(len(cfg.pinning))))
+    if f_rot_key is not None:
+        key, source = f_rot_key, "command line"
+    else:
+        key, source = ("rotation.f_start" if f_rot_hz is None else "f_rot"), cfg.source
+    check_rotation(f, cfg.trap.max_rotation_hz(cfg.masses_kg, cfg.charges_c), key, source)
+    check_rotation(f, cfg.trap.max_rotation_hz(cfg.masses_kg, cfg.charges_c, c2), key, source, quadrupole_v_per_m2=c2)
     try:
         return compute_crystal(model_potential(cfg, f), f, seed=cfg.search_seed)
     except PhysicsError as e:

@@ -58,6 +58,17 @@ class MultipoleTerm:
         return self.strength * np.exp(-1j * self.order * (self.angle_rad + theta))
 
 
+def quadrupole_magnitude(terms, scales) -> np.ndarray:
+    """|c_2| of the pure order-2 terms of ``terms`` (MultipoleTerm; an
+    electrode layout's term, its own fitted potential, left out) at the
+    multipliers ``scales`` (..., len(terms)), V/m^2: the orientations add as
+    the complex coefficients C = c_2 exp(-2 i theta_0)."""
+    s = np.asarray(scales, dtype=float)
+    c = sum((t.complex_coefficient() * s[..., j] for j, t in enumerate(terms) if t.order == 2 and t.layout is None),
+            np.zeros(s.shape[:-1], dtype=complex))
+    return np.abs(c)
+
+
 def potential(xy: np.ndarray, order: int, coeff: complex) -> np.ndarray:
     """Phi = Re[C z^n] at points ``xy`` (..., 2) in m; V."""
     z = xy[..., 0] + 1j * xy[..., 1]

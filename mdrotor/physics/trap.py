@@ -57,13 +57,23 @@ def radial_limit_hz(spring_n_per_m, masses_kg) -> float:
     return float(np.sqrt(max(float(np.min(w2)), 0.0)) / TWO_PI)
 
 
-def check_rotation(f_rot_hz: float, f_limit_hz: float, key: str, source: str | None = None) -> None:
+def check_rotation(f_rot_hz: float, f_limit_hz: float, key: str, source: str | None = None, *,
+                   quadrupole_v_per_m2: float = 0.0, when: str = "") -> None:
     """Refuse a rotation at or above the radial confinement's limit
-    (module docstring), naming ``key``."""
+    (module docstring), naming ``key``; ``f_limit_hz`` is
+    :meth:`Trap.max_rotation_hz` with the order-2 pinning of magnitude
+    ``quadrupole_v_per_m2`` (0: none) that turns with the crystal ``when``
+    (words such as " at t = 1 ms")."""
 
-    if f_rot_hz != 0.0 and abs(f_rot_hz) >= f_limit_hz:
-        raise PhysicsError(key, f"rotation at {f_rot_hz:.6g} Hz is faster than the radial confinement can hold "
+    if f_rot_hz == 0.0 or abs(f_rot_hz) < f_limit_hz:
+        return
+    if quadrupole_v_per_m2 == 0.0:
+        raise PhysicsError(key, f"rotation at {f_rot_hz:.6g} Hz{when} is faster than the radial confinement can hold "
                                 f"(lowest radial secular frequency {f_limit_hz:.6g} Hz)", source)
+    raise PhysicsError(key, f"rotation at {f_rot_hz:.6g} Hz{when} is faster than the radial confinement can hold with the "
+                            f"order-2 pinning turning with it (|c_2| = {quadrupole_v_per_m2:.4g} V/m^2 takes 2 Q |c_2| / m "
+                            f"from one in-plane w^2, leaving {f_limit_hz:.6g} Hz); expected a slower rotation or a weaker "
+                            f"pinning", source)
 
 
 @dataclass(frozen=True)

@@ -247,6 +247,10 @@ BAD = [
     ("inf --rate", {"l.toml": LAYOUT, "c.toml": GOOD},
      ["electrodes", "l.toml", "--config", "c.toml", "--waveform", "w.csv", "--rate", "inf MHz"], "--rate", "finite"),
     ("inf --f-rot", {"c.toml": GOOD}, ["crystal", "c.toml", "--f-rot", "inf kHz"], "--f-rot", "finite"),
+    # the crystal command's own rotation beyond the quadrupole-weakened confinement (was
+    # "crystal: the crystal is not bound", with no word of the rotation)
+    ("crystal --f-rot beyond the quadrupole-weakened confinement", {"c.toml": GOOD},
+     ["crystal", "c.toml", "--f-rot", "0.998 MHz"], "--f-rot", "order-2 pinning"),
     ("nan --diffusion", {"c.toml": GOOD}, ["rotor", "c.toml", "--diffusion", "nan"], "--diffusion", "finite"),
     ("run --split without --scheduler", {"c.toml": GOOD}, RUN + ["--split", "2"], "--split", "with --scheduler"),
     ("run --split 0", {"c.toml": GOOD}, RUN + ["--split", "0", "--scheduler", "tcp://127.0.0.1:1"], "--split",
