@@ -194,8 +194,10 @@ def set_path(raw: dict, key: str, value, source: str) -> None:
         raise InputError(key, "expected a dotted key path such as 'trap.f_radial'", source)
     node = raw
     for i, part in enumerate(parts[:-1]):
+        if i == 1 and parts[0] in _NAMED and isinstance(node, dict) and len(parts) > 2:
+            node = [node]  # one [pinning] table is addressed by its name as an item of [[pinning]] is
         if isinstance(node, list):
-            node = _list_item(node, part, ".".join(parts[: i + 1]), source)
+            node = _list_item(node, part, ".".join(parts[: i + 1]), source, parts[0] if i == 1 else "")
             continue
         if part not in node:
             if part in ("stage", "pinning", "laser") and i == 0:
@@ -207,14 +209,21 @@ def set_path(raw: dict, key: str, value, source: str) -> None:
     node[parts[-1]] = value
 
 
-def _list_item(items: list, part: str, key: str, source: str):
-    for it in items:
-        if isinstance(it, dict) and it.get("name") == part:
+#: Arrays whose items --set addresses by name, and the name an item without one
+#: gets (the parsers' defaults: pinning n<order>, stage<i>, laser<i>).
+_NAMED = {"pinning": lambda it, i: f"n{it.get('order')}", "stage": lambda it, i: f"stage{i}",
+          "laser": lambda it, i: f"laser{i}"}
+
+
+def _list_item(items: list, part: str, key: str, source: str, section: str = ""):
+    default = _NAMED.get(section, lambda it, i: None)
+    names = [it.get("name", default(it, i)) if isinstance(it, dict) else None for i, it in enumerate(items)]
+    for it, name in zip(items, names):
+        if name == part:
             return it
     if part.isdigit() and int(part) < len(items):
         return items[int(part)]
-    names = [it.get("name") for it in items if isinstance(it, dict)]
-    raise InputError(key, f"no item named {part!r}; have {names}", source)
+    raise InputError(key, f"no item named {part!r}; have {[n for n in names if n is not None]}", source)
 
 
 def _check_keys(table, section: str, allowed: set, source: str):
