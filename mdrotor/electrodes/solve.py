@@ -51,8 +51,8 @@ from mdrotor.errors import InputError
 
 __all__ = ["StaticSolution", "RotatingPlan", "solve_static", "solve_rotating", "lacking_terms", "CAUTION"]
 
-CAUTION = ("Voltages must stay within the trap's rated limits and the lab's safety rules; "
-           "check every waveform against them before applying it.")
+CAUTION = ("Voltages and RF amplitudes must stay within the trap's rated limits and the lab's safety rules "
+           "(trap electrodes carry high voltage and RF); check every waveform against them before applying it.")
 
 #: Weight of target rows relative to unwanted rows (near-hard targets).
 TARGET_WEIGHT = 1e3

@@ -144,6 +144,8 @@ def test_unwanted_terms_are_reported(tri):
     assert max(d["rel"] for d in f1) < 1e-6
     d = plan.to_dict()
     assert "rated limits" in d["caution"] and len(d["channels"]) == lay.n_channels
+    # the hazard itself is named, not only the limits: rf amplitudes as well as dc voltages
+    assert "high voltage" in d["caution"] and "RF" in d["caution"] and "safety rules" in d["caution"]
 
 
 def test_static_solve_makes_field_and_curvature(tri):
