@@ -2,8 +2,13 @@
 
 Collects, for the crystal rotating at the end of the run (or of the config's
 schedule): the moment of inertia with its centrifugal stretch, hbar / I, the
+dynamic moment of inertia I_d = d(I w)/dw (one more quantum changes the rate
+by hbar / (2 pi I_d): the lines' quadratic term and widths, the relative
+rotation of branches and their phase diffusion go with I_d), the
 rotational lines adding 1..k quanta in the sense of rotation (positive
-frequencies for either sense) with the width from the L spread, the
+frequencies for either sense) with the width from the spread of L about the
+centre of mass (NaN, said as null with a reason, without two usable
+trajectories or from a config), the
 exchange time (branches k quanta apart turn by 2 pi / N relative to each
 other) and the revival time, the spin statistics and allowed L ladder, the
 angular-momentum diffusion constant D (given, fitted from the run's noise,
@@ -29,8 +34,10 @@ from mdrotor.model.quantum import config_ladder
 from mdrotor.physics import coherence as coh
 from mdrotor.physics import pinning, rotor
 from mdrotor.physics.noise import psd_for_diffusion
-from mdrotor.physics.statics import compute_crystal
+from mdrotor.physics.statics import compute_crystal, dynamic_moment_of_inertia
 from mdrotor.results.result import Result
+from mdrotor.results.stats import std_se
+from mdrotor.results.status import usable
 from mdrotor.results.store import load_result
 
 # what the allowed-L ladder assumes (printed by the command, stated in docs/run.md)
@@ -51,13 +58,17 @@ def _from_result(res, path):
     if nz and "D_fit_hbar2_per_s" in nz:
         fitted = (float(nz["D_fit_hbar2_per_s"]), float(nz["D_fit_err_hbar2_per_s"]))
     errs = {k: float(s[k]) for k in ("L_mean_err_hbar", "L_std_err_hbar") if k in s}
-    return cfg, f, float(s["L_mean_hbar"]), float(s.get("L_std_hbar", 0.0)), fitted, "result", errs
+    # the rate, and so the lines, move with L about the centre of mass (the COM's motion adds to L about the axis)
+    fin = res.final.arrays
+    l_com = np.asarray(fin["L_com_hbar"])[usable(np.asarray(fin["status"]))] if "L_com_hbar" in fin else np.zeros(0)
+    errs["L_com_std_hbar"], errs["L_com_std_err_hbar"] = std_se(l_com)   # NaN from fewer than two
+    return cfg, f, float(s["L_mean_hbar"]), float(s.get("L_std_hbar", math.nan)), fitted, "result", errs
 
 
 def _from_config(path, overrides):
     cfg = load_config(path, overrides)
     f = float(cfg.schedule.f_rot_hz(cfg.schedule.duration_s)) if cfg.schedule is not None else cfg.f_start_hz
-    return cfg, f, None, 0.0, None, "config", {}
+    return cfg, f, None, math.nan, None, "config", {"L_com_std_hbar": math.nan}
 
 
 def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float | None = None,
@@ -107,11 +118,17 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
         k = int(mod) if mod > 1 else 1
     if l_mean is None:
         l_mean = float(rotor.L_from_f_rot(f, I))
-    # lines that add |dL| quanta in the sense of rotation: k |f_rot| + k^2 hbar / (4 pi I) > 0 for either sense
+    # what compares rotors of neighbouring L goes with I_d = d(I w)/dw (the stretched crystal's d f_rot/dL):
+    # line spacing and width, the relative rotation of branches, phase diffusion
+    I_d = dynamic_moment_of_inertia(cr.potential, f, seed=cfg.search_seed, start=cr.positions_m)
+    # lines that add |dL| quanta in the sense of rotation: k |f_rot| + k^2 hbar / (4 pi I_d) > 0 for either sense;
+    # the width from the spread of L about the centre of mass (unknown without two usable trajectories)
     sense = -1 if f < 0 else 1
-    lines = rotor.transition_frequencies_hz(abs(f), I, max(k_lines, k), sigma_l)
-    t_ex = float(rotor.exchange_time_s(I, k, ladder.symmetry_order))
-    t_rev = float(rotor.revival_time_s(I, k))
+    sigma_com = l_errs.get("L_com_std_hbar", math.nan)
+    lines = rotor.transition_frequencies_hz(abs(f), I_d, max(k_lines, k), sigma_com if math.isfinite(sigma_com) else 0.0)
+    widths = lines.width_hz if math.isfinite(sigma_com) else np.full(len(lines.k), math.nan)
+    t_ex = float(rotor.exchange_time_s(I_d, k, ladder.symmetry_order))
+    t_rev = float(rotor.revival_time_s(I_d, k))
     # the lowest multipole order that the crystal feels (its noise torques kick L by n quanta)
     order = pinning.lowest_moment_order(cr.positions_m, cr.masses_kg, cr.charges_c) or 2
     m_n = pinning.moments(cr.positions_m, cr.masses_kg, cr.charges_c, [order])[order]
@@ -137,10 +154,11 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
         "source": str(source), "source_kind": kind, "n_ions": n_ions, "species": names,
         "f_rot_hz": f, "L_mean_hbar": l_mean, "L_std_hbar": sigma_l, **l_errs,
         "moment_of_inertia_kg_m2": I, "hbar_over_I_hz": float(rotor.hbar_over_I_hz(I)),
+        "dynamic_moment_of_inertia_kg_m2": I_d, "hbar_over_I_d_hz": float(rotor.hbar_over_I_hz(I_d)),
         "statistics": stat, **ladder.to_dict(),
         "statistics_assumption": SPIN_ASSUMPTION,
         "k": int(k), "lines": [{"dL": sense * int(a), "freq_hz": float(b), "width_hz": float(c)}
-                               for a, b, c in zip(lines.k, lines.centre_hz, lines.width_hz)],
+                               for a, b, c in zip(lines.k, lines.centre_hz, widths)],
         "exchange_time_s": t_ex, "revival_time_s": t_rev,
         "diffusion_hbar2_per_s": D, "diffusion_source": d_src, "noise_order": order, "kick_quanta": kick,
     }
@@ -151,15 +169,15 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
     if analytic is not None:
         out["diffusion_analytic_hbar2_per_s"] = float(analytic)
     if D > 0:
-        out["coherence_time_s"] = float(coh.coherence_time_s(k, D, I, kind="ramsey", kick_quanta=kick))
-        out["echo_coherence_time_s"] = float(coh.coherence_time_s(k, D, I, kind="echo", kick_quanta=kick))
+        out["coherence_time_s"] = float(coh.coherence_time_s(k, D, I_d, kind="ramsey", kick_quanta=kick))
+        out["echo_coherence_time_s"] = float(coh.coherence_time_s(k, D, I_d, kind="echo", kick_quanta=kick))
     else:
         out["coherence_time_s"] = out["echo_coherence_time_s"] = float("inf")
-    out["ramsey_contrast_at_exchange"] = float(coh.ramsey_contrast(t_ex, k, D, I, kick_quanta=kick))
-    out["echo_contrast_at_exchange"] = float(coh.echo_contrast(t_ex, k, D, I, kick_quanta=kick))
-    out["ramsey_contrast_at_revival"] = float(coh.ramsey_contrast(t_rev, k, D, I, kick_quanta=kick))
-    out["short_time_law_valid_until_s"] = float(coh.short_time_validity_s(k, I, kick_quanta=kick))
-    budget = float(coh.coherence_budget(contrast, t_ex, k, I, kick_quanta=kick))
+    out["ramsey_contrast_at_exchange"] = float(coh.ramsey_contrast(t_ex, k, D, I_d, kick_quanta=kick))
+    out["echo_contrast_at_exchange"] = float(coh.echo_contrast(t_ex, k, D, I_d, kick_quanta=kick))
+    out["ramsey_contrast_at_revival"] = float(coh.ramsey_contrast(t_rev, k, D, I_d, kick_quanta=kick))
+    out["short_time_law_valid_until_s"] = float(coh.short_time_validity_s(k, I_d, kick_quanta=kick))
+    budget = float(coh.coherence_budget(contrast, t_ex, k, I_d, kick_quanta=kick))
 
     out["budget_contrast"] = contrast
     out["budget_diffusion_hbar2_per_s"] = budget
@@ -187,6 +205,10 @@ NULL_REASONS = {
     "time_spread_s": "the beam gives no recoil diffusion of L",
     "time_first_photon_s": "the beam scatters no photons",
     "time_on_s": "the beam never moves L by the quanta asked",
+    "L_std_hbar": "no spread of L: a config gives none, a result needs two usable trajectories",
+    "L_com_std_hbar": "no spread of L: a config gives none, a result needs two usable trajectories",
+    "L_com_std_err_hbar": "no spread of L: a config gives none, a result needs two usable trajectories",
+    "width_hz": "line width unknown: no spread of L (a config gives none, a result needs two usable trajectories)",
 }
 
 

@@ -42,6 +42,8 @@ def text(d: dict) -> str:
               f"  rotating at {plain(d['f_rot_hz'] / 1e3)} kHz, L = {plain(d['L_mean_hbar'])} hbar (at the schedule's "
               "final rate; a config gives no spread)"),
              f"  moment of inertia I = {d['moment_of_inertia_kg_m2']:.6e} kg m^2 (centrifugally stretched), hbar/(2 pi I) = {d['hbar_over_I_hz']:.6g} Hz",
+             f"    dynamic I_d = d(I w)/dw = {d['dynamic_moment_of_inertia_kg_m2']:.6e} kg m^2: d f_rot / dL = hbar/(2 pi I_d) = "
+             f"{d['hbar_over_I_d_hz']:.6g} Hz per quantum (line spacing and widths, branch separation, phase diffusion)",
              f"  spin statistics: {d['statistics']}; {_symmetry_text(d)}: allowed L = {d['allowed_L_residue']} mod {d['allowed_L_mod']}",
              f"    assumes {d['statistics_assumption']}",
              ]
@@ -49,9 +51,12 @@ def text(d: dict) -> str:
         pn = d["pinning"]
         lines.append(f"  pinning at the end of the schedule: {pn['description']}"
                      + (f"; libration {pn['libration_hz'] / 1e3:.6g} kHz" if pn["verdict"] != "none" else ""))
-    lines += ["", "  rotational lines L -> L + dL:"]
+    known = all(math.isfinite(ln["width_hz"]) for ln in d["lines"])
+    lines += ["", "  rotational lines L -> L + dL" + (" (width from the spread of L about the centre of mass):" if known else
+                                                      f" (width n/a: {NULL_REASONS['L_std_hbar']}):")]
     for ln in d["lines"]:
-        lines.append(f"    dL = {ln['dL']}: {ln['freq_hz'] / 1e3:14.6f} kHz, width {ln['width_hz']:.4g} Hz")
+        width = f"{ln['width_hz']:.4g} Hz" if math.isfinite(ln["width_hz"]) else "n/a"
+        lines.append(f"    dL = {ln['dL']}: {ln['freq_hz'] / 1e3:14.6f} kHz, width {width}")
     lines += ["",
               f"  branches k = {d['k']} quanta apart: exchange (2 pi / {d['symmetry_order']}) after {d['exchange_time_s'] * 1e3:.6g} ms, "
               f"revival (2 pi) after {d['revival_time_s'] * 1e3:.6g} ms",

@@ -626,6 +626,37 @@ class Crystal:
         return d.min(axis=1)
 
 
+def dynamic_moment_of_inertia(pot: Potential, f_rot_hz: float, *, seed: int = 0,
+                              start: np.ndarray | None = None, rel_step: float = 1e-3) -> float:
+    """``I_d = d(I w)/dw`` of the equilibrium rotating at ``f_rot_hz``, kg m^2.
+
+    The slope of ``hbar L = I(w) w`` against the rate ``w``: a crystal
+    stretched by its rotation has ``d f_rot / d L = hbar / (2 pi I_d)``, not
+    ``hbar / (2 pi I)``, and ``I_d`` sets the spacing and width of its
+    rotational lines, the relative rotation of two branches ``k`` quanta apart
+    (``k hbar / I_d``) and their phase diffusion. For two ions in an
+    isotropic trap ``I_d = I (1 + (4/3) w^2 / (w_r^2 - w^2))`` (orbit of a
+    central force; ``tests/analysis/test_rotor.py``). Central difference of
+    ``I(w) w`` over ``+-rel_step`` of the rate (relative error ~rel_step^2);
+    ``I`` itself at rest or below :data:`SLOW_ROTATION_HZ`, where ``I(w)`` is
+    even in ``w`` and flat. 0 for a crystal without a rotation (one ion, ions
+    on the axis).
+    """
+    f = float(f_rot_hz)
+
+    def crystal_at(g):
+        eq = find_equilibrium(replace(pot, omega_frame=TWO_PI * g), seed=seed, start=start)
+        r = eq.positions_m
+        if len(r) < 2 or on_axis(r, pot.masses_kg):
+            return 0.0
+        return float(np.sum(pot.masses_kg * (r[:, 0] ** 2 + r[:, 1] ** 2)))
+
+    if abs(f) < SLOW_ROTATION_HZ:
+        return crystal_at(0.0)
+    h = rel_step * f
+    return (crystal_at(f + h) * (f + h) - crystal_at(f - h) * (f - h)) / (2.0 * h)
+
+
 def virial_ratio(pot: Potential, r: np.ndarray) -> float:
     """Coulomb energy / (2 x trap energy); 1 at an equilibrium of a pure
     harmonic trap (common practice, no source)."""

@@ -31,7 +31,10 @@ def test_rotor_from_config_and_result(tmp_path, capsys):
     assert d["hbar_over_I_hz"] == pytest.approx(sc.hbar / (2 * np.pi * I))
     assert d["statistics"] == "fermion" and (d["allowed_L_mod"], d["allowed_L_residue"]) == (2, 1)  # 40Ca+: 59 fermions
     assert d["k"] == 2
-    assert d["exchange_time_s"] == pytest.approx(2 * np.pi * I / (2 * 2 * sc.hbar))
+    # (with the dynamic moment of inertia I_d = d(I w)/dw of the stretched crystal: tests/analysis/test_rotor.py)
+    I_d = d["dynamic_moment_of_inertia_kg_m2"]
+    assert I_d > I
+    assert d["exchange_time_s"] == pytest.approx(2 * np.pi * I_d / (2 * 2 * sc.hbar))
     assert d["revival_time_s"] == pytest.approx(2 * d["exchange_time_s"])
     assert d["diffusion_source"].startswith("analytic") and d["diffusion_hbar2_per_s"] > 0
     out = tmp_path / "n.h5"
@@ -42,7 +45,7 @@ def test_rotor_from_config_and_result(tmp_path, capsys):
     assert r["diffusion_source"].startswith("fitted")
     # fitted and analytic D agree within 4 standard errors (300 trajectories)
     assert abs(r["diffusion_fitted_hbar2_per_s"] - r["diffusion_analytic_hbar2_per_s"]) < 4 * r["diffusion_fitted_err_hbar2_per_s"]
-    # line widths grow as k hbar sigma_L / (2 pi I)
+    # line widths grow as k hbar sigma_L / (2 pi I_d)
     assert r["lines"][1]["width_hz"] == pytest.approx(2 * r["lines"][0]["width_hz"])
     assert main(["rotor", str(out), "--diffusion", "0"]) == 0
     txt = capsys.readouterr().out
