@@ -636,7 +636,7 @@ def dynamic_moment_of_inertia(pot: Potential, f_rot_hz: float, *, seed: int = 0,
     rotational lines, the relative rotation of two branches ``k`` quanta apart
     (``k hbar / I_d``) and their phase diffusion. For two ions in an
     isotropic trap ``I_d = I (1 + (4/3) w^2 / (w_r^2 - w^2))`` (orbit of a
-    central force; ``tests/analysis/test_rotor.py``). Central difference of
+    central force; ``tests/analysis/test_rotor_summary.py``). Central difference of
     ``I(w) w`` over ``+-rel_step`` of the rate (relative error ~rel_step^2);
     ``I`` itself at rest or below :data:`SLOW_ROTATION_HZ`, where ``I(w)`` is
     even in ``w`` and flat. 0 for a crystal without a rotation (one ion, ions

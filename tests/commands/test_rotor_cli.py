@@ -31,7 +31,7 @@ def test_rotor_from_config_and_result(tmp_path, capsys):
     assert d["hbar_over_I_hz"] == pytest.approx(sc.hbar / (2 * np.pi * I))
     assert d["statistics"] == "fermion" and (d["allowed_L_mod"], d["allowed_L_residue"]) == (2, 1)  # 40Ca+: 59 fermions
     assert d["k"] == 2
-    # (with the dynamic moment of inertia I_d = d(I w)/dw of the stretched crystal: tests/analysis/test_rotor.py)
+    # (with the dynamic moment of inertia I_d = d(I w)/dw of the stretched crystal: tests/analysis/test_rotor_summary.py)
     I_d = d["dynamic_moment_of_inertia_kg_m2"]
     assert I_d > I
     assert d["exchange_time_s"] == pytest.approx(2 * np.pi * I_d / (2 * 2 * sc.hbar))

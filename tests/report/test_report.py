@@ -166,7 +166,7 @@ def test_spectrum_and_coherence(files):
     assert ax.get_xlabel() == "transition frequency (kHz)" and ax.get_ylabel() == "line profile (peak = 1, no unit)"
     # rigid planar rotor E_L = hbar^2 L^2 / (2 I) with L = 2 pi I f / hbar: the line L -> L + k lies at
     # k f + k^2 hbar / (4 pi I) (textbook rigid rotor, e.g. Landau and Lifshitz, Quantum Mechanics, from memory);
-    # stretched by its rotation, dE/dL = hbar w makes I the dynamic I_d = d(I w)/dw (tests/analysis/test_rotor.py)
+    # stretched by its rotation, dE/dL = hbar w makes I the dynamic I_d = d(I w)/dw (tests/analysis/test_rotor_summary.py)
     I, f = info["dynamic_moment_of_inertia_kg_m2"], info["f_rot_hz"]
     sticks = sorted(float(c.get_segments()[0][0, 0]) for c in ax.collections if c.__class__.__name__ == "LineCollection"
                     and len(c.get_segments()) == 1 and c.get_segments()[0][0, 0] == c.get_segments()[0][1, 0])
