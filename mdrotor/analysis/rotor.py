@@ -157,7 +157,7 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
         "dynamic_moment_of_inertia_kg_m2": I_d, "hbar_over_I_d_hz": float(rotor.hbar_over_I_hz(I_d)),
         "statistics": stat, **ladder.to_dict(),
         "statistics_assumption": SPIN_ASSUMPTION,
-        "k": int(k), "lines": [{"dL": sense * int(a), "freq_hz": float(b), "width_hz": float(c)}
+        "k": int(k), "lines": [{"dL": sense * int(a), "freq_hz": float(b), "width_hz": float(c), "on_ladder": bool(int(a) % mod == 0)}
                                for a, b, c in zip(lines.k, lines.centre_hz, widths)],
         "exchange_time_s": t_ex, "revival_time_s": t_rev,
         "diffusion_hbar2_per_s": D, "diffusion_source": d_src, "noise_order": order, "kick_quanta": kick,

@@ -56,7 +56,9 @@ def text(d: dict) -> str:
                                                       f" (width n/a: {NULL_REASONS['L_std_hbar']}):")]
     for ln in d["lines"]:
         width = f"{ln['width_hz']:.4g} Hz" if math.isfinite(ln["width_hz"]) else "n/a"
-        lines.append(f"    dL = {ln['dL']}: {ln['freq_hz'] / 1e3:14.6f} kHz, width {width}")
+        off = "" if ln["on_ladder"] else (f" (off the allowed ladder: L and L + dL are not both {d['allowed_L_residue']} "
+                                          f"mod {d['allowed_L_mod']}, no line of identical ions in one internal state)")
+        lines.append(f"    dL = {ln['dL']}: {ln['freq_hz'] / 1e3:14.6f} kHz, width {width}{off}")
     lines += ["",
               f"  branches k = {d['k']} quanta apart: exchange (2 pi / {d['symmetry_order']}) after {d['exchange_time_s'] * 1e3:.6g} ms, "
               f"revival (2 pi) after {d['revival_time_s'] * 1e3:.6g} ms",

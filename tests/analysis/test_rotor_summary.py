@@ -103,3 +103,18 @@ def test_rotor_without_a_spread_says_so(tmp_path, capsys):
         txt = capsys.readouterr().out
         assert "width 0 Hz" not in txt and "spread 0" not in txt and "nan" not in txt
         assert "width n/a" in txt
+
+
+def test_lines_off_the_allowed_ladder_are_marked(tmp_path, capsys):
+    # Two identical 40Ca+ (fermions) in one internal state allow only odd L
+    # (REFERENCES.md, spin statistics; common practice, no source): L -> L + 1
+    # joins an allowed L to a forbidden one, so it is no line of that crystal.
+    p = tmp_path / "fast.toml"
+    p.write_text(stretched_config())
+    assert main(["rotor", str(p), "--json"]) == 0
+    d = json.loads(capsys.readouterr().out)
+    assert (d["allowed_L_mod"], d["allowed_L_residue"]) == (2, 1)
+    assert [ln["on_ladder"] for ln in d["lines"]] == [False, True, False]
+    assert main(["rotor", str(p)]) == 0
+    rows = [r for r in capsys.readouterr().out.splitlines() if r.strip().startswith("dL =")]
+    assert ["off the allowed ladder" in r for r in rows] == [True, False, True]
