@@ -77,7 +77,7 @@ def text(d: dict) -> str:
               f"  contrast at the exchange time: Ramsey {d['ramsey_contrast_at_exchange']:.4f}, echo {d['echo_contrast_at_exchange']:.4f}; "
               f"Ramsey at the revival {d['ramsey_contrast_at_revival']:.4f}",
               f"  the t^3 short-time law holds to 1 % until {d['short_time_law_valid_until_s'] * 1e3:.4g} ms",
-              f"  budget: contrast {d['budget_contrast']:.2f} at the exchange time needs D <= {d['budget_diffusion_hbar2_per_s']:.4g} hbar^2/s,",
+              f"  budget: contrast {d['budget_contrast']:.3g} at the exchange time needs D <= {d['budget_diffusion_hbar2_per_s']:.4g} hbar^2/s,",
               f"          i.e. order-{d['noise_order']} field noise S <= {d['budget_psd_at_n_f_rot']:.4g} {d['budget_psd_unit']} at "
               f"{d['budget_psd_frequency_hz'] / 1e3:.6g} kHz (n f_rot)"]
     if d.get("lasers"):

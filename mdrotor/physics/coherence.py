@@ -241,6 +241,11 @@ def _invert_x_minus_sin(c: float) -> float:
 
     if c == 0:
         return 0.0
+    if c < 1e-30:
+        # x - sin x = x^3/6 (1 - x^2/20 + ...): x = (6 c)^(1/3) to a relative
+        # (6c)^(2/3)/60 < 1e-21, where bracketing would run out of iterations
+        # (x ~ 1e-100 for D ~ 1e300 hbar^2/s)
+        return float(np.cbrt(6.0 * c))
     f = lambda x: float(_x_minus_sin(x)) - c  # noqa: E731
     # x - sin x >= x - 1, so the root lies below c + 1.
     return brentq(f, 0.0, c + 1.0, xtol=1e-300, rtol=4e-15, maxiter=500)

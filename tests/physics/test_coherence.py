@@ -129,6 +129,20 @@ def test_coherence_time_scaling():
     assert co.coherence_time_s(0, 1.0, I) == np.inf
 
 
+def test_coherence_time_of_very_strong_diffusion_is_the_t3_law():
+    # Deep in the t^3 regime (D up to 1e300 hbar^2/s: the root x = q b t of
+    # x - sin x = c is ~1e-100) the coherence time is the short-time law of
+    # Stickler, Schrinski, Hornberger, PRL 121, 040401 (2018) solved for t:
+    # t = (3 I^2 ln(1/C) / (dl^2 D_SI))^(1/3); relative error (q b t)^2 / 60
+    # in t (a third of the exponent's x^2 / 20), far below rounding here.
+    dl, I, q = 2, 8.6e-37, 2
+    for D in (1e40, 1e100, 1e200, 1e300):
+        for kind, scale in (("ramsey", 1.0), ("echo", 4.0 ** (1 / 3))):
+            t = co.coherence_time_s(dl, D, I, kind=kind, kick_quanta=q)
+            law = (3 * I**2 / (dl**2 * D * hbar**2)) ** (1 / 3) * scale   # echo: a quarter of the exponent
+            assert t == pytest.approx(law, rel=1e-12), (D, kind)
+
+
 def test_coherence_budget_inverts_contrast():
     # exponent is linear in D (module derivation), so the budget is exact
     t = np.array([0.3, 2.0, 40.0])
