@@ -254,6 +254,13 @@ def _species_list(raw, source):
     custom = {}
     for name, c in sp.get("custom", {}).items():
         _check_keys(c, f"species.custom.{name}", CUSTOM_KEYS, source)
+        try:
+            get_species(name)
+        except InputError:
+            pass
+        else:
+            raise InputError(f"species.custom.{name}", f"{name!r} is a known species (AME2020 mass, its own charge and "
+                                                       f"statistics); expected a name of your own such as 'X+'", source)
         mass = units.parse(_require(c, "mass", f"species.custom.{name}", source, "a mass such as '40 u'"), "mass", f"species.custom.{name}.mass", source)
         if not mass > 0:
             raise InputError(f"species.custom.{name}.mass", f"expected a positive mass, got {c['mass']!r}", source)
@@ -281,6 +288,9 @@ def _species_list(raw, source):
         if not 1 <= len(ions) <= 30:
             raise InputError("crystal.ions", f"expected 1 to 30 ions, got {len(ions)}", source)
         out = [lookup(n, f"crystal.ions[{i}]") for i, n in enumerate(ions)]
+        if "ion" in sp and sp["ion"] not in ions:
+            raise InputError("species.ion", f"{sp['ion']!r} is not among crystal.ions {ions}; expected one of them, or "
+                                            f"no species.ion (a list of species names every ion)", source)
     else:
         n = _int(ions, "crystal.ions", source, what="a number of ions (1 to 30) or a list of species")
         if not 1 <= n <= 30:

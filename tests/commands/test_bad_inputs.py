@@ -92,6 +92,12 @@ def _cfg(old, new, base=GOOD):
 BAD = [
     # --- run configs (the first 22 are the original config-error table) ---
     ("unknown species", _cfg('ion = "40Ca+"', 'ion = "41Xx+"'), RUN, "species.ion", "unknown species"),
+    # species.ion was ignored when crystal.ions is a list, whatever it said
+    ("species.ion not among the listed ions", _cfg("ions = 2", 'ions = ["40Ca+", "40Ca+"]', _edit(GOOD, '"40Ca+"', '"9Be+"')),
+     RUN, "species.ion", "not among crystal.ions"),
+    # a custom species named like a known one silently replaced its AME2020 mass
+    ("custom species shadowing a known one", _cfg('ion = "40Ca+"', 'ion = "40Ca+"\n[species.custom."40Ca+"]\nmass = "4 u"'),
+     RUN, "species.custom.40Ca+", "known species"),
     ("no ions", _cfg("ions = 2", "ions = 0"), RUN, "crystal.ions", "1 to 30"),
     ("too many ions", _cfg("ions = 2", "ions = 31"), RUN, "crystal.ions", "1 to 30"),
     ("time for a frequency", _cfg('f_radial = "1.0 MHz"', 'f_radial = "1.0 ms"'), RUN, "trap.f_radial", "frequency"),
