@@ -234,7 +234,7 @@ def text(d: dict, n_lines: int = 8) -> str:
     elif d["pinned_at_end"]:
         out.append("")
         out.append("  the pinning is on at the end: no free-rotor lines")
-    if "verdict" in d:
+    if d.get("verdict") is not None:   # absent without the ensemble (None when read back from a file)
         e = d["stages"][-1]["ensemble"]
         out.append("")
         out.append(f"  semiclassical answer at the end of '{d['verdict_stage']}': {d['verdict'].upper()}: {d['verdict_reason']}")

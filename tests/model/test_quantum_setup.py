@@ -284,6 +284,22 @@ def test_output_refused_before_any_work(tmp_path):
     assert len(r.stderr.strip().splitlines()) == 1
 
 
+def test_a_file_without_the_ensemble_reads_back_as_its_text(tmp_path):
+    # --no-ensemble -o: the file has no verdict (an absent attribute, None
+    # when read back); its text is the command's (the report's page prints
+    # it: it ended in a KeyError on the missing ensemble)
+    from mdrotor.results.store import load_quantum
+    from mdrotor.studies.quantum import text
+
+    p = weak_pair(tmp_path)
+    out = tmp_path / "q.h5"
+    r = _cli(p, "--no-ensemble", "--json", "--set", "initial.occupations.libration=1", "-o", out)
+    assert r.returncode == 0, r.stderr
+    back = load_quantum(out)
+    assert back["verdict"] is None
+    assert text(back) == text(json.loads(r.stdout))
+
+
 def test_report_draws_P_of_L_beside_the_ensemble(quantum_file, tmp_path):
     # The figure shows the stored numbers: bar heights are P(L) at the allowed
     # L, the ensemble points are counts / N at the histogram's L shifted as
