@@ -11,6 +11,7 @@ from mdrotor.commands.common import add_executor_args, check_executor_args
 from mdrotor.engine.run import check_memory
 from mdrotor.errors import InputError
 from mdrotor.numfmt import jsonable
+from mdrotor.results.store import check_writable
 from mdrotor.studies.optimize import load_optimize, optimize_text, run_optimize
 from mdrotor.studies.table import export_csv, output_path
 
@@ -43,6 +44,8 @@ def main(args) -> int:
 
     check_executor_args(args)
     out = output_path(args.output, args.optimize)
+    if args.csv:
+        check_writable(args.csv, "--csv")
     spec = load_optimize(args.optimize, args.overrides)
 
     start = [p.value(p.start_u if p.start_u is not None else 0.5) for p in spec.params]

@@ -8,6 +8,7 @@ import sys
 
 from mdrotor.commands.common import add_executor_args, check_executor_args
 from mdrotor.numfmt import jsonable
+from mdrotor.results.store import check_writable
 from mdrotor.studies.points import check_points_memory
 from mdrotor.studies.sweep import load_sweep, run_sweep, sweep_text
 from mdrotor.studies.table import export_csv, output_path
@@ -39,6 +40,8 @@ def main(args) -> int:
     """``mdrotor sweep``: returns the exit status (InputError propagates)."""
     check_executor_args(args)
     out = output_path(args.output, args.sweep)
+    if args.csv:
+        check_writable(args.csv, "--csv")
     spec = load_sweep(args.sweep, args.overrides, args.trajectories)
     check_points_memory(spec.configs, "--trajectories" if args.trajectories is not None else "trajectories",
                          "command line" if args.trajectories is not None else spec.source)

@@ -171,7 +171,7 @@ def point_error(e: InputError, src: str, keys, vals, where: str, noun: str) -> I
     """The error of one point, naming the axis (parameter) and the point."""
     js = blame(e, keys)
     desc = ", ".join(f"{k} = {show(v)!r}" for k, v in zip(keys, vals))
-    who = f"{noun} '{keys[js[0]]}'" if js else f"{noun}s"
+    who = f"{noun} '{keys[js[0]]}'" if js else {"axis": "axes"}.get(noun, f"{noun}s")
     inner = f"{e.key}: {e.expected}" if e.key else e.expected
     return InputError(f"{who} at {where} ({desc})", inner, src)
 

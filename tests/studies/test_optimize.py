@@ -237,3 +237,12 @@ def test_output_of_the_other_kind_is_refused(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "x.h5 holds an mdrotor sweep, not an optimisation" in err, err
     assert out.read_bytes() == before  # nothing written over it
+
+
+def test_csv_path_checked_before_any_work(tmp_path, capsys):
+    opt = write_opt(tmp_path, budget=2)
+    out = tmp_path / "o.h5"
+    assert cli(["optimize", str(opt), "-o", str(out), "--csv", str(tmp_path / "no" / "h.csv"), "--workers", "1", "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--csv" in err[0] and "does not exist" in err[0], err
+    assert not out.exists()

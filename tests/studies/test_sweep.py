@@ -322,3 +322,26 @@ def test_failed_point_is_recorded_not_retried(tmp_path):
         assert [r["status"] for r in csv.DictReader(fh)] == ["done", "failed", "done"]
     again = run_sweep(load_sweep(sw), out, workers=1)
     assert again["ran"] == 0 and again["failed"] == 1
+
+
+def test_csv_path_checked_before_any_work(tmp_path, capsys):
+    """--csv into a missing folder is refused before the sweep runs (it was a
+    FileNotFoundError traceback after the last point)."""
+    write(tmp_path, "base.toml", FO_BASE)
+    sw = write(tmp_path, "s.toml", 'base = "base.toml"\n[[axis]]\nkey = "stage.spin-up.duration"\nvalues = ["4 us"]\n')
+    out = tmp_path / "s.h5"
+    assert cli(["sweep", str(sw), "-o", str(out), "--csv", str(tmp_path / "no" / "t.csv"), "--workers", "1", "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--csv" in err[0] and "does not exist" in err[0], err
+    assert not out.exists()
+
+
+def test_point_error_not_blamed_on_one_axis(tmp_path, capsys):
+    """A point refused by a rule that involves several keys names the point
+    and its values under 'axes' (it said 'axiss')."""
+    write(tmp_path, "base.toml", FO_BASE)
+    sw = write(tmp_path, "s.toml", 'base = "base.toml"\n[[axis]]\nkey = "pinning.strength"\n'
+                                   'values = ["2e5 V/m^2", "5e12 V/m^2"]\n')
+    assert cli(["sweep", str(sw), "-o", str(tmp_path / "s.h5"), "--workers", "1", "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "axes at point 1 (pinning.strength = '5e12 V/m^2')" in err[0], err
