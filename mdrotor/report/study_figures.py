@@ -306,6 +306,13 @@ def sweep_figures(source, metrics=None, axes=None, fixed: dict | None = None, pe
     if rows.size == 0:
         raise MissingData("/summary", "no finished points yet", meta.get("path"))
     views = {k: _AxisView(k, t["axes"][k]["text"], t["axes"][k]["si"], meta) for k in keys}
+    fixed_levels = _parse_fixed(fixed, views)  # checked whatever the figure, so that a mistyped key is not ignored
+    pair = None
+    if axes:
+        pair = [a.strip() for a in (axes.split(",") if isinstance(axes, str) else axes)]
+        if len(pair) != 2 or any(a not in views for a in pair) or pair[0] == pair[1]:
+            raise InputError("--axes", f"expected two different axis keys of this sweep, from: {', '.join(keys)}",
+                             meta.get("path"))
     names, zero, empty = _pick_metrics(t, meta, metrics, rows)
     no_value = f"no value at any point (not drawn): {'; '.join(metric_name(m, meta) for m in empty)}" if empty else ""
     if not names:
@@ -315,7 +322,8 @@ def sweep_figures(source, metrics=None, axes=None, fixed: dict | None = None, pe
     foot = f"zero at every point (not drawn): {'; '.join(metric_name(m, meta) for m in zero)}" if zero else ""
     foot = "\n".join(x for x in (foot, no_value) if x)
     kind_title = "optimisation" if meta.get("kind") == "optimize" else "sweep"
-    n_done = f"{rows.size} of {len(t['index'])} points finished"
+    n_failed = int(np.sum(np.asarray(t["failed"], bool)))
+    n_done = f"{rows.size} of {len(t['index'])} points finished" + (f", {n_failed} failed" if n_failed else "")
     if combine == "zip" or (combine == "grid" and len(varying) <= 1):
         key = next((k for k in (varying or keys) if views[k].numeric), (varying or keys)[0])
         others = [views[k] for k in keys if k != key] if combine == "zip" else []
@@ -324,15 +332,9 @@ def sweep_figures(source, metrics=None, axes=None, fixed: dict | None = None, pe
             title += "\n" + "; ".join(f"{o.name} varies with it" for o in others) + " (second row of tick labels)"
         return _line_pages(ps, t, meta, views[key], others, names, rows, per_page, title, foot)
     if combine == "grid":
-        if axes:
-            pair = [a.strip() for a in (axes.split(",") if isinstance(axes, str) else axes)]
-            if len(pair) != 2 or any(a not in views for a in pair) or pair[0] == pair[1]:
-                raise InputError("--axes", f"expected two different axis keys of this sweep, from: {', '.join(keys)}",
-                                 meta.get("path"))
-        else:
-            pair = varying[:2]
+        pair = pair or varying[:2]
         fx = {k: 0 for k in keys if k not in pair}
-        fx.update(_parse_fixed(fixed, views))
+        fx.update(fixed_levels)
         for k in pair:
             fx.pop(k, None)
         return _heat_pages(ps, t, meta, views, pair, fx, names, rows, per_page,

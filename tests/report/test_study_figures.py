@@ -89,3 +89,19 @@ def test_optimisation_without_any_objective_is_skipped_with_its_reason():
     t["metrics"]["feasible"] = np.array([0.0, 1.0, 1.0])
     fig = optimize_figure(t)
     assert "1 evaluation without an objective" in fig.get_supxlabel()
+
+
+def test_slice_and_axes_of_a_one_axis_sweep_are_checked():
+    """--slice / --axes naming no axis of the sweep are refused also when the
+    sweep has one axis (they were ignored, so a typo went unnoticed); the
+    title counts the failed points."""
+    from mdrotor.errors import InputError
+
+    t = _table(3, {"L_mean_hbar": np.array([1.0, np.nan, 3.0])}, failed=(1,))
+    with pytest.raises(InputError) as e:
+        sweep_figures(t, fixed={"initial.temprature": "1 mK"})
+    assert e.value.key == "--slice" and "initial.temprature" in e.value.expected
+    with pytest.raises(InputError) as e:
+        sweep_figures(t, axes="stage.spin-up.duration,initial.temperature")
+    assert e.value.key == "--axes"
+    assert "2 of 3 points finished, 1 failed" in sweep_figures(t)[0].get_suptitle()
