@@ -14,11 +14,13 @@ import numpy as np
 
 from mdrotor.errors import InputError
 from mdrotor.inputfiles import open_hdf5
-from mdrotor.results.result import Observation, Result
+from mdrotor.results.result import ARRAYS, Observation, Result
 from mdrotor.results.stats import FRACTION_INTERVAL
 from mdrotor.version import __version__
 
 FORMAT_VERSION = 2  # 2: fraction intervals (_lo, _hi, _count), n_trajectories, mode frames, no NaN statistics
+# root attributes that every reader of a result relies on (the summary text, the rotor analysis, the report)
+REQUIRED_ATTRS = ("config_text", "seed", "dt_s", "n_steps", "n_trajectories", "integrator", "wall_s", "threads")
 
 
 def _write_obs(g, obs: Observation) -> None:
@@ -149,13 +151,23 @@ def need(g, name: str):
 
 
 def _need_attr(g, name: str):
+    """``g.attrs[name]``, refused as :func:`need` does."""
     if name not in g.attrs:
         raise InputError(f"{g.name} (attribute {name})", "missing from this file (damaged, or written in another layout); "
                                                         "expected a result laid out as docs/results.md", g.file.filename)
     return g.attrs[name]
 
 
+def need_root_attrs(g) -> None:
+    """Refuse a result (file root or a study's point group) without an
+    attribute of ``REQUIRED_ATTRS``, naming it."""
+    for k in REQUIRED_ATTRS:
+        _need_attr(g, k)
+
+
 def read_observation(g) -> Observation:
+    for k in ARRAYS:  # every observation is written with all of them
+        need(g, k)
     arrays = {k: g[k][()] for k in g if k not in ("modes", "summary")}
     mg = need(g, "modes")
     modes = {"freq_hz": need(mg, "freq_hz")[()]}
@@ -180,6 +192,7 @@ def load_result(path) -> Result:
     with open_hdf5(path, "an mdrotor result file (.h5, written by mdrotor run)") as f:
         if "format_version" not in f.attrs or "stages" not in f:
             raise InputError("", "not an mdrotor result file (no format_version or /stages)", str(path))
+        need_root_attrs(f)
         attrs = {k: (v.item() if hasattr(v, "item") and np.ndim(v) == 0 else v) for k, v in f.attrs.items()}
         initial = read_observation(f["initial"]) if "initial" in f else None
         order = list(attrs.get("stage_names", list(f["stages"].keys())))

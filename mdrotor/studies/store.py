@@ -38,7 +38,7 @@ import numpy as np
 
 from mdrotor.errors import InputError
 from mdrotor.results.result import Result
-from mdrotor.results.store import need, read_observation, save_result
+from mdrotor.results.store import need, need_root_attrs, read_observation, save_result
 
 FORMAT_VERSION = 1
 PART_SUFFIX = ".parts"
@@ -330,6 +330,7 @@ def read_result_group(g):
     """A :class:`~mdrotor.results.result.Result` from an HDF5 group laid out like a
     run file (a sweep point or evaluation, linked or consolidated)."""
 
+    need_root_attrs(g)
     attrs = {k: (v.item() if hasattr(v, "item") and np.ndim(v) == 0 else v) for k, v in g.attrs.items()}
     order = [str(n) for n in attrs.get("stage_names", list(need(g, "stages").keys()))]
     stages = {n: read_observation(need(need(g, "stages"), n)) for n in order}

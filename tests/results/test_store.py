@@ -123,3 +123,26 @@ def test_missing_group_is_named(result, tmp_path, path, where):
     with pytest.raises(InputError) as e:
         store.load_result(p)
     assert e.value.key == where and "r.h5" in str(e.value)
+
+
+@pytest.mark.parametrize("attr", ["config_text", "dt_s", "seed"])
+def test_missing_root_attribute_is_named(result, tmp_path, attr):
+    """A root attribute every reader relies on (docs/results.md) missing: refused
+    naming it (the report died on a KeyError in the rotor analysis or the summary text)."""
+    p = tmp_path / "r.h5"
+    store.save_result(result, p)
+    with h5py.File(p, "a") as f:
+        del f.attrs[attr]
+    with pytest.raises(InputError) as e:
+        store.load_result(p)
+    assert e.value.key == f"/ (attribute {attr})" and "r.h5" in str(e.value)
+
+
+def test_missing_trajectory_array_is_named(result, tmp_path):
+    p = tmp_path / "r.h5"
+    store.save_result(result, p)
+    with h5py.File(p, "a") as f:
+        del f["stages/hold/L_hbar"]
+    with pytest.raises(InputError) as e:
+        store.load_result(p)
+    assert e.value.key == "/stages/hold/L_hbar"
