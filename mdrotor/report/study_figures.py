@@ -466,6 +466,10 @@ def _heat_pages(ps, t, meta, views, pair, fixed, names, rows, per_page, title, f
                 ex, cx = _cell_axis(ax, vx, "x")
                 ey, cy = _cell_axis(ax, vy, "y")
                 mesh = ax.pcolormesh(ex, ey, np.ma.masked_invalid(Z), cmap=cm, shading="flat")
+                fin = Z[np.isfinite(Z)]
+                if fin.size and fin.min() == fin.max():  # one value everywhere: a scale that means something
+                    v = float(fin[0])
+                    mesh.set_clim(*((0.0, sc) if m.endswith("_fraction") else (v, v + (abs(v) * 0.1 or 1.0))))
                 ax.grid(False)
                 fig.colorbar(mesh, ax=ax, label=lab, fraction=0.07, pad=0.02)
                 if Z.size <= 48:

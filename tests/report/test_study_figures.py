@@ -105,3 +105,20 @@ def test_slice_and_axes_of_a_one_axis_sweep_are_checked():
         sweep_figures(t, axes="stage.spin-up.duration,initial.temperature")
     assert e.value.key == "--axes"
     assert "2 of 3 points finished, 1 failed" in sweep_figures(t)[0].get_suptitle()
+
+
+def test_constant_heat_map_has_a_meaningful_colour_scale():
+    """Every cell the same (no slip anywhere): the colour bar of a fraction
+    spans 0 to 1 (it ran from -0.1 to 0.1, negative fractions), of another
+    metric it starts at the value."""
+    rows = [(i, j) for i in range(2) for j in range(2)]
+    t = {"index": np.arange(4), "seed": np.zeros(4, np.uint64), "complete": np.ones(4, np.uint8),
+         "failed": np.zeros(4, np.uint8), "error": [""] * 4,
+         "axes": {"stage.spin-up.duration": {"text": [["1 us", "2 us"][i] for i, _ in rows], "si": np.array([[1e-6, 2e-6][i] for i, _ in rows])},
+                  "initial.temperature": {"text": [["0.3 mK", "1 mK"][j] for _, j in rows], "si": np.array([[3e-4, 1e-3][j] for _, j in rows])}},
+         "metrics": {"slip_fraction": np.zeros(4), "L_std_hbar": np.full(4, 7.0)}, "meta": {"kind": "sweep", "combine": "grid"}}
+    fig = sweep_figures(t, metrics="slip_fraction,L_std_hbar")[0]
+    frac, other = fig.axes[0].collections[0], fig.axes[1].collections[0]
+    assert frac.get_clim() == (0.0, 1.0)
+    lo, hi = other.get_clim()
+    assert lo == 7.0 and hi > 7.0
