@@ -91,7 +91,7 @@ class Profile:
             return ((_logcosh(w * (s - 0.5)) - _logcosh(w / 2)) / w + h * s) / (2 * h)
         if self.shape == "exponential":
             r = self.duration_s / self.tau_s
-            return (s + np.expm1(-s * r) / r) / -math.expm1(-r)
+            return _x_plus_expm1_neg(s * r) / (r * -math.expm1(-r))
         raise ValueError(self.shape)
 
     def dg(self, s: np.ndarray) -> np.ndarray:
@@ -107,7 +107,8 @@ class Profile:
             return 30.0 * s * s * (1.0 - s) ** 2
         if self.shape == "tanh":
             w, h = self.steepness, math.tanh(self.steepness / 2)
-            return w / np.cosh(w * (s - 0.5)) ** 2 / (2 * h)
+            a = np.exp(-2.0 * np.abs(w * (s - 0.5)))  # 1 / cosh^2 y = 4 e^{-2|y|} / (1 + e^{-2|y|})^2, no overflow
+            return w * 4.0 * a / (1.0 + a) ** 2 / (2 * h)
         if self.shape == "exponential":
             r = self.duration_s / self.tau_s
             return r * np.exp(-s * r) / -math.expm1(-r)
@@ -141,6 +142,21 @@ class Profile:
             return self._table().antiderivative()(t) - self._table().antiderivative()(0.0)
         s = t / self.duration_s
         return self.duration_s * (self.v0 * s + (self.v1 - self.v0) * self.G(s))
+
+
+def _x_plus_expm1_neg(x):
+    """x + e^{-x} - 1 for x >= 0 without cancellation: its series
+    sum_{k >= 2} (-x)^k / k! below x = 0.5 (20 terms: the next is below
+    1e-25 of the sum), the direct form above (it loses less than a digit)."""
+    x = np.asarray(x, dtype=float)
+    small = x < 0.5
+    xs = np.where(small, x, 0.0)
+    term = 0.5 * xs * xs
+    acc = term.copy()
+    for k in range(3, 22):
+        term = term * (-xs / k)
+        acc = acc + term
+    return np.where(small, acc, x + np.expm1(-np.where(small, 0.0, x)))
 
 
 def _logcosh(x):
@@ -291,6 +307,13 @@ def parse_profile(spec, previous: float, duration_s: float, parse_value, key: st
     shape = spec.get("shape", "linear" if "to" in spec else "hold")
     if shape not in SHAPES:
         raise InputError(f"{key}.shape", f"unknown shape {shape!r}; expected one of {list(SHAPES)}", source)
+    # a key the shape does not read would be ignored: refuse it
+    for k, user in (("steepness", "tanh"), ("tau", "exponential"), ("points", "table"), ("table", "table")):
+        if k in spec and shape != user:
+            raise InputError(f"{key}.{k}", f"is read by the '{user}' shape only, and this profile's shape is {shape!r}; "
+                                           f"expected shape = '{user}' or no '{k}'", source)
+    if "points" in spec and "table" in spec:
+        raise InputError(f"{key}.points", "a table comes from 'points' or from a 'table' file, not both", source)
     v0 = previous
     if "from" in spec:
         v0 = parse_value(spec["from"], f"{key}.from")
@@ -317,6 +340,11 @@ def parse_profile(spec, previous: float, duration_s: float, parse_value, key: st
             raise InputError(f"{key}.points", f"table must span the stage from 0 to its duration ({duration_s:g} s)", source)
         if abs(vs[0] - previous) > 1e-9 * max(abs(previous), abs(vs[0]), 1e-300):
             raise InputError(f"{key}.points", f"discontinuous schedule: table starts at {vs[0]:g} but the previous stage ends at {previous:g}", source)
+        if "to" in spec:
+            to = parse_value(spec["to"], f"{key}.to")
+            if abs(to - vs[-1]) > 1e-9 * max(abs(to), abs(vs[-1]), 1e-300):
+                raise InputError(f"{key}.to", f"the table ends at {vs[-1]:g} (SI units), not at 'to' = {to:g}; expected "
+                                              f"no 'to' with a table (its last value is the stage's end)", source)
         return Profile("table", float(vs[0]), float(vs[-1]), duration_s, table_t=tuple(ts), table_v=tuple(vs))
     v1 = parse_value(spec["to"], f"{key}.to") if "to" in spec else v0
     if shape == "hold" and abs(v1 - v0) > 1e-12 * max(abs(v0), abs(v1)):

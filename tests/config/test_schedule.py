@@ -110,7 +110,44 @@ def test_peaks(sched):
     assert [sched.spins(i) for i in range(len(STAGES))] == [True, True, True, False, True, True, True]
 
 
+@pytest.mark.parametrize("f_rot", [
+    {"to": "50 kHz", "shape": "exponential", "tau": "1e6 s"},   # r = T / tau = 1e-10: theta was 0 throughout
+    {"to": "50 kHz", "shape": "exponential", "tau": "1 s"},     # r = 1e-4
+    {"to": "50 kHz", "shape": "exponential", "tau": "1 ns"},    # nearly a step at the start
+    {"to": "50 kHz", "shape": "tanh", "steepness": 1e4},        # a step in the middle: cosh overflowed (warning)
+])
+def test_extreme_shape_parameters_keep_theta_the_integral(f_rot):
+    """theta(t) = 2 pi int f_rot dt (scipy quad, split where the steps are) for
+    shapes at the edge of their parameters. An exponential with tau >> the
+    stage lost G(s) to cancellation (s + expm1(-s r) / r with r = 1e-10:
+    theta stayed 0 while f_rot ramped, and every trajectory slipped)."""
+    import warnings
+
+    T = 100 * US
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        sch = config.from_dict(two_ion_config(stage=[{"name": "a", "duration": "100 us", "f_rot": f_rot}]), "s.toml").schedule
+        f = lambda t: float(sch.f_rot_hz(t))
+        for t in np.array([0.2, 0.5, 0.7, 1.0]) * T:
+            pts = [x for x in (1e-6 * T, 1e-5 * T, 1e-4 * T, 1e-3 * T, 0.499 * T, 0.5 * T, 0.501 * T) if x < t]
+            val = quad(f, 0.0, t, epsabs=0, epsrel=1e-12, limit=400, points=pts or None)[0]
+            # quad resolves the 1e-4-wide steps to a few 1e-9 (its estimate), the closed forms to rounding
+            assert float(sch.theta_rad(t)) == pytest.approx(2 * math.pi * val, rel=2e-8), t
+            assert np.isfinite(sch.f_rot_rate_hz_per_s(t))
+
+
 @pytest.mark.parametrize("stage, key", [
+    # keys the shape does not use were ignored: a 'to' contradicting the table's end, points
+    # under a linear shape, a table given twice, a time constant on a linear ramp
+    ({"name": "a", "duration": "1 us", "f_rot": {"to": "2 kHz", "shape": "table",
+                                                  "points": [["0 us", "0 Hz"], ["1 us", "1 kHz"]]}}, "stage.a.f_rot.to"),
+    ({"name": "a", "duration": "1 us", "f_rot": {"to": "1 kHz", "shape": "linear",
+                                                  "points": [["0 us", "0 Hz"], ["1 us", "1 kHz"]]}}, "stage.a.f_rot.points"),
+    ({"name": "a", "duration": "1 us", "f_rot": {"shape": "table", "table": "r.csv",
+                                                  "points": [["0 us", "0 Hz"], ["1 us", "1 kHz"]]}}, "stage.a.f_rot.points"),
+    ({"name": "a", "duration": "1 us", "f_rot": {"to": "1 kHz", "shape": "linear", "tau": "1 us"}}, "stage.a.f_rot.tau"),
+    ({"name": "a", "duration": "1 us", "f_rot": {"to": "1 kHz", "shape": "cosine", "steepness": 3}},
+     "stage.a.f_rot.steepness"),
     ({"name": "a", "duration": "1 us", "f_rot": {"from": "1 kHz", "to": "2 kHz"}}, "stage.a.f_rot.from"),
     ({"name": "a", "duration": "1 us", "f_rot": {"to": "2 kHz", "shape": "hold"}}, "stage.a.f_rot.to"),
     ({"name": "a", "duration": "1 us", "f_rot": {"to": "2 kHz", "shape": "exponential"}}, "stage.a.f_rot.tau"),
