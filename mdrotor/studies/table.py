@@ -127,7 +127,8 @@ def read_point(path, index) -> object:
 
 def export_csv(path, csv_path) -> int:
     """Write the summary table of a sweep / optimisation file as CSV (one
-    row per point, axis values as written and in SI, then every metric).
+    row per point, axis values as written and in SI, then every metric;
+    an empty cell where there is no value).
     Returns the number of rows."""
     t = read_table(path)
     n = len(t["index"])
@@ -146,7 +147,9 @@ def export_csv(path, csv_path) -> int:
             row = [int(t["index"][i]), int(t["seed"][i]), status]
             for c in cols:
                 v = c[i]
-                row.append(repr(float(v)) if isinstance(v, (float, np.floating)) else v)
+                if isinstance(v, (float, np.floating)):  # no value (NaN): an empty cell, as CSV readers expect
+                    v = "" if np.isnan(v) else repr(float(v))
+                row.append(v)
             w.writerow(row)
     return n
 

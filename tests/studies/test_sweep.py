@@ -319,7 +319,11 @@ def test_failed_point_is_recorded_not_retried(tmp_path):
         read_point(out, 1)
     export_csv(out, tmp_path / "f.csv")
     with open(tmp_path / "f.csv") as fh:
-        assert [r["status"] for r in csv.DictReader(fh)] == ["done", "failed", "done"]
+        rows = list(csv.DictReader(fh))
+    assert [r["status"] for r in rows] == ["done", "failed", "done"]
+    # a failed point has no numbers: empty cells (the CSV reader's missing value), never the text 'nan'
+    assert rows[1]["L_mean_hbar"] == "" and float(rows[0]["L_mean_hbar"]) > 0
+    assert "nan" not in (tmp_path / "f.csv").read_text().lower()
     again = run_sweep(load_sweep(sw), out, workers=1)
     assert again["ran"] == 0 and again["failed"] == 1
 
