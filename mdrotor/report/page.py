@@ -12,6 +12,7 @@ skipped figures and why, the provenance and the config.
 from __future__ import annotations
 
 import html
+import os
 from pathlib import Path
 
 import numpy as np
@@ -161,7 +162,14 @@ def write_report(source, output_dir=None, fmt: str = "png", *, summary: str = "m
         raise InputError("-o", f"{str(out)!r} exists and is not a folder", "command line")
     if not out.parent.exists():
         raise InputError("-o", f"the folder {str(out.parent)!r} does not exist", "command line")
-    out.mkdir(exist_ok=True)
+    try:
+        out.mkdir(exist_ok=True)
+        probe = out / f".write-test-{os.getpid()}"
+        probe.write_bytes(b"")
+        probe.unlink()
+    except OSError as e:
+        raise InputError("-o", f"cannot write the report into {str(out)!r} ({e.strerror}); expected a writable folder",
+                         "command line") from None
     doc = _Doc()
     written, skipped = [], {}
     if kind == "run":

@@ -26,3 +26,18 @@ def test_failed_points_listed_with_their_message(tmp_path):
     assert "## Failed points" in page
     assert "- #1 ('spin-up': duration = 4 us): crystal not bound (test)" in page
     assert rep["figures"]
+
+
+def test_output_folder_that_cannot_be_made_is_refused(tmp_path, capsys):
+    """-o under a plain file (or a read-only place): one line naming -o, exit 2, no traceback."""
+    from mdrotor.commands.main import main
+
+    (tmp_path / "base.toml").write_text(FORCED_OSCILLATOR_TOML)
+    sw = tmp_path / "s.toml"
+    sw.write_text('base = "base.toml"\n[[axis]]\nkey = "stage.spin-up.duration"\nvalues = ["4 us"]\n')
+    out = tmp_path / "s.h5"
+    run_sweep(load_sweep(sw), out, workers=1)
+    (tmp_path / "plain").write_text("x")
+    assert main(["report", str(out), "-o", str(tmp_path / "plain" / "rep")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "-o" in err[0], err
