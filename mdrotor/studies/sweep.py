@@ -364,7 +364,7 @@ def sweep_text(path, summ: dict, max_rows: int = 40) -> str:
     trajectories were used (finite and bound)."""
 
     t = read_table(path)
-    lines = [f"sweep: {summ['points']} points ({summ['resumed']} already done, {summ['ran']} run now, "
+    lines = [f"sweep: {summ['points']} point{'' if summ['points'] == 1 else 's'} ({summ['resumed']} already done, {summ['ran']} run now, "
              f"{summ['failed']} failed) -> {path}  [{plain(summ['wall_s'], 3)} s]",
              "final stage: statistics +- standard error over the finite, bound trajectories ('used'); "
              "fractions of all trajectories with Wilson 68 % intervals [lo, hi]"]

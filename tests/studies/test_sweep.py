@@ -349,3 +349,12 @@ def test_point_error_not_blamed_on_one_axis(tmp_path, capsys):
     assert cli(["sweep", str(sw), "-o", str(tmp_path / "s.h5"), "--workers", "1", "--quiet"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "axes at point 1 (pinning.strength = '5e12 V/m^2')" in err[0], err
+
+
+def test_one_point_sweep_text(tmp_path, capsys):
+    """A sweep of one point runs and says so in words ('1 point', not '1 points')."""
+    write(tmp_path, "base.toml", FO_BASE)
+    sw = write(tmp_path, "s.toml", 'base = "base.toml"\n[[axis]]\nkey = "stage.spin-up.duration"\nvalues = ["4 us"]\n')
+    assert cli(["sweep", str(sw), "-o", str(tmp_path / "s.h5"), "--workers", "1", "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("sweep: 1 point (0 already done, 1 run now, 0 failed)"), out
