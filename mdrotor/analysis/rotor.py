@@ -162,6 +162,8 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
         "exchange_time_s": t_ex, "revival_time_s": t_rev,
         "diffusion_hbar2_per_s": D, "diffusion_source": d_src, "noise_order": order, "kick_quanta": kick,
     }
+    # a crystal the pinning still holds turns with it: no free rotor (mdrotor quantum lists no lines then)
+    out["pinned_at_end"] = bool(holding is not None and holding.held)
     if holding is not None:
         out["pinning"] = holding.to_dict()
     if fitted is not None:

@@ -51,6 +51,10 @@ def text(d: dict) -> str:
         pn = d["pinning"]
         lines.append(f"  pinning at the end of the schedule: {pn['description']}"
                      + (f"; libration {pn['libration_hz'] / 1e3:.6g} kHz" if pn["verdict"] != "none" else ""))
+    if d["pinned_at_end"]:
+        lines.append("  caution: the pinning still holds the crystal at the end of the schedule, so it is no free rotor "
+                     "(L is what the pinning imposes); the lines, times and coherence below are those of this crystal "
+                     "rotating freely at this rate, as after a release that left it unchanged")
     known = all(math.isfinite(ln["width_hz"]) for ln in d["lines"])
     lines += ["", "  rotational lines L -> L + dL" + (" (width from the spread of L about the centre of mass):" if known else
                                                       f" (width n/a: {NULL_REASONS['L_std_hbar']}):")]

@@ -118,3 +118,21 @@ def test_lines_off_the_allowed_ladder_are_marked(tmp_path, capsys):
     assert main(["rotor", str(p)]) == 0
     rows = [r for r in capsys.readouterr().out.splitlines() if r.strip().startswith("dL =")]
     assert ["off the allowed ladder" in r for r in rows] == [True, False, True]
+
+
+def test_a_crystal_still_pinned_at_the_end_is_said_to_be_no_free_rotor(tmp_path, capsys):
+    # The tests' base config keeps the quadrupole on to the end: the crystal
+    # turns with the pinning, L is what the pinning imposes, and there are no
+    # free-rotor lines (mdrotor quantum says so too; common practice, no source).
+    p = tmp_path / "held.toml"
+    p.write_text(two_ion_toml())
+    assert main(["rotor", str(p), "--json"]) == 0
+    d = json.loads(capsys.readouterr().out)
+    assert d["pinned_at_end"] is True
+    assert main(["rotor", str(p)]) == 0
+    assert "no free rotor" in capsys.readouterr().out
+    free = tmp_path / "free.toml"
+    free.write_text(stretched_config())
+    assert main(["rotor", str(free), "--json"]) == 0
+    d = json.loads(capsys.readouterr().out)
+    assert d["pinned_at_end"] is False
