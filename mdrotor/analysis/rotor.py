@@ -125,7 +125,9 @@ def rotor_summary(source, *, k: int | None = None, diffusion_hbar2_per_s: float 
     # the width from the spread of L about the centre of mass (unknown without two usable trajectories)
     sense = -1 if f < 0 else 1
     sigma_com = l_errs.get("L_com_std_hbar", math.nan)
-    lines = rotor.transition_frequencies_hz(abs(f), I_d, max(k_lines, k), sigma_com if math.isfinite(sigma_com) else 0.0)
+    listed = list(range(1, k_lines + 1)) + ([k] if k > k_lines else [])   # 1..k_lines and the branches' own k
+    lines = rotor.transition_frequencies_hz(abs(f), I_d, k_lines, sigma_com if math.isfinite(sigma_com) else 0.0,
+                                            k_values=listed)
     widths = lines.width_hz if math.isfinite(sigma_com) else np.full(len(lines.k), math.nan)
     t_ex = float(rotor.exchange_time_s(I_d, k, ladder.symmetry_order))
     t_rev = float(rotor.revival_time_s(I_d, k))

@@ -161,7 +161,7 @@ class TransitionLines(NamedTuple):
 
 
 def transition_frequencies_hz(f_rot_hz: float, I_kg_m2: float, k_max: int,
-                              sigma_L_hbar: float = 0.0) -> TransitionLines:
+                              sigma_L_hbar: float = 0.0, *, k_values=None) -> TransitionLines:
     """Frequencies and widths of the rotational transitions ``L -> L + k``.
 
     With ``E_L = hbar^2 L^2 / (2 I)`` and ``L = 2 pi I f_rot / hbar`` the
@@ -186,6 +186,8 @@ def transition_frequencies_hz(f_rot_hz: float, I_kg_m2: float, k_max: int,
         Largest ``Delta L`` (>= 1).
     sigma_L_hbar : float, optional
         Standard deviation of ``L`` over the ensemble, in hbar (>= 0).
+    k_values : sequence of int, optional
+        The ``Delta L`` to list (each >= 1) instead of ``1 .. k_max``.
 
     Returns
     -------
@@ -202,7 +204,8 @@ def transition_frequencies_hz(f_rot_hz: float, I_kg_m2: float, k_max: int,
     if not np.isfinite(sig) or sig < 0:
         raise InputError("sigma_L_hbar", f"a finite number >= 0, got {sigma_L_hbar!r}",
                          f"{_SRC}.{func}")
-    k = np.arange(1, kmax + 1)
+    k = (np.arange(1, kmax + 1) if k_values is None else
+         _integer(k_values, "k_values", func, minimum=1).astype(float))
     quantum_hz = hbar_over_I_hz(I)                 # d f_rot / d L
     centre = k * f + 0.5 * k**2 * quantum_hz       # k f_rot + k^2 hbar/(4 pi I)
     width = k * quantum_hz * sig

@@ -136,3 +136,18 @@ def test_a_crystal_still_pinned_at_the_end_is_said_to_be_no_free_rotor(tmp_path,
     assert main(["rotor", str(free), "--json"]) == 0
     d = json.loads(capsys.readouterr().out)
     assert d["pinned_at_end"] is False
+
+
+def test_a_large_branch_separation_lists_its_own_line_only(tmp_path, capsys):
+    # --k sets the branches compared; the lines listed are dL = 1..3 and k
+    # itself (--k 1e12 allocated an array of 1e12 lines and ended in a
+    # MemoryError traceback). The line L -> L + k lies at k f + k^2 hbar / (4 pi I_d)
+    # (rotor energy, second order; module docstring).
+    p = tmp_path / "fast.toml"
+    p.write_text(stretched_config())
+    k = 10**12
+    assert main(["rotor", str(p), "--k", str(k), "--json"]) == 0
+    d = json.loads(capsys.readouterr().out)
+    assert [ln["dL"] for ln in d["lines"]] == [1, 2, 3, k]
+    I_d = d["dynamic_moment_of_inertia_kg_m2"]
+    assert d["lines"][-1]["freq_hz"] == pytest.approx(k * F_ROT + k**2 * sc.hbar / (4 * math.pi * I_d), rel=1e-12)
