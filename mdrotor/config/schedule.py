@@ -334,12 +334,13 @@ def parse_profile(spec, previous: float, duration_s: float, parse_value, key: st
                 ts.append(parse(p[0], "time", f"{key}.points[{i}]", source))
                 vs.append(parse_value(p[1], f"{key}.points[{i}]"))
         ts, vs = np.array(ts), np.array(vs)
+        where = f"{key}.table" if "table" in spec else f"{key}.points"  # the key the user wrote
         if len(ts) < 2 or np.any(np.diff(ts) <= 0):
-            raise InputError(f"{key}.points", "table times must increase strictly", source)
+            raise InputError(where, "table times must increase strictly (at least two rows)", source)
         if abs(ts[0]) > 1e-15 or abs(ts[-1] - duration_s) > 1e-9 * duration_s:
-            raise InputError(f"{key}.points", f"table must span the stage from 0 to its duration ({duration_s:g} s)", source)
+            raise InputError(where, f"table must span the stage from 0 to its duration ({duration_s:g} s)", source)
         if abs(vs[0] - previous) > 1e-9 * max(abs(previous), abs(vs[0]), 1e-300):
-            raise InputError(f"{key}.points", f"discontinuous schedule: table starts at {vs[0]:g} but the previous stage ends at {previous:g}", source)
+            raise InputError(where, f"discontinuous schedule: table starts at {vs[0]:g} but the previous stage ends at {previous:g}", source)
         if "to" in spec:
             to = parse_value(spec["to"], f"{key}.to")
             if abs(to - vs[-1]) > 1e-9 * max(abs(to), abs(vs[-1]), 1e-300):
@@ -384,6 +385,9 @@ def _read_table(path, key, source, base_dir):
             if rows:
                 raise InputError(key, f"{str(p)!r}: cannot read the row {line!r}; expected 'time_s, value'", source) from None
             continue
+        if len(parts) != 2:
+            raise InputError(key, f"{str(p)!r}: the row {line!r} has {len(parts)} columns; expected 2 columns "
+                                  f"'time_s, value'", source)
         if not all(math.isfinite(x) for x in row):
             raise InputError(key, f"{str(p)!r}: the row {line!r} is not finite; expected finite 'time_s, value'", source)
         rows.append(row)

@@ -159,3 +159,15 @@ def test_discontinuous_or_malformed_profiles_are_refused(stage, key):
     with pytest.raises(InputError) as e:
         config.from_dict(two_ion_config(stage=[stage]), "s.toml")
     assert key in e.value.line(), e.value.line()
+
+
+@pytest.mark.parametrize("csv, words", [
+    ("0,0,7\n0.000001,1000,7\n", "2 columns"),        # a third column was dropped silently
+    ("t_s,f_hz\n0,0\n", "increase"),                 # one row
+])
+def test_ramp_table_file_faults_are_refused(tmp_path, csv, words):
+    (tmp_path / "r.csv").write_text(csv)
+    stage = {"name": "a", "duration": "1 us", "f_rot": {"shape": "table", "table": "r.csv"}}
+    with pytest.raises(InputError) as e:
+        config.from_dict(two_ion_config(stage=[stage]), "s.toml", tmp_path)
+    assert "stage.a.f_rot.table" in e.value.line() and words in e.value.line(), e.value.line()
