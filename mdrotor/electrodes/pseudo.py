@@ -32,10 +32,12 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.constants import atomic_mass as _AMU
 from scipy.constants import e as _E_CHARGE
 from scipy.optimize import least_squares
 
 from mdrotor.errors import InputError
+from mdrotor.physics.mathieu import is_stable
 from mdrotor.physics.species import get_species
 
 __all__ = ["NullResult", "PseudoTrap", "find_rf_null", "rf_pseudopotential", "pseudo_energy_j"]
@@ -381,6 +383,12 @@ def rf_pseudopotential(layout, v_rf=None, f_drive_hz=None, mass_kg=None, charge_
     w = abs(charge_c) * np.abs(mu) / (math.sqrt(2.0) * mass_kg * w_drive)
     order = np.argsort(w)
     q = -2.0 * charge_c * mu / (mass_kg * w_drive ** 2)
+    q_max = float(np.max(np.abs(q)))
+    if not is_stable(0.0, q_max):  # the pseudopotential below would mean nothing
+        raise InputError("rf.f_drive", f"Mathieu q = {q_max:.4g} ({v_rf:.6g} V at {f_drive_hz:.6g} Hz, an ion of "
+                                       f"{mass_kg / _AMU:.4g} u and charge {charge_c / _E_CHARGE:.3g} e) is outside the first "
+                                       f"stability region (|q| < 0.908 at a = 0): no ion is trapped; expected a faster drive "
+                                       f"or a lower rf amplitude", src)
     if depth:
         d_j, sad = _depth(layout, null, v_rf, kappa)
         d_j -= kappa * (res.field_per_v * v_rf) ** 2

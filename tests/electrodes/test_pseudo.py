@@ -149,3 +149,20 @@ def test_example_layout_is_stable():
     t = rf_pseudopotential(lay, depth=False)  # amplitude, drive and species from the file
     assert t.q_max < 0.5
     assert 1e6 < t.secular_hz[0] < 3e6
+
+
+def test_drive_too_slow_for_the_amplitude_is_refused(ring, trap, ca):
+    """q scales as 1 / f_drive^2: the ring's q_max at 30 MHz over (30 / 8)^2
+    is past the end of the first Mathieu stability region at a = 0
+    (q = 0.908, REFERENCES.md, computed with scipy; mdrotor.physics.mathieu
+    decides it). The layout's pseudopotential then means nothing: it was
+    reported as a 'secular frequency' above the drive, or refused through a
+    derived config key (trap.f_radial) instead of the layout's."""
+    f_slow = F_DRIVE * math.sqrt(trap.q_max / 1.2)  # q_max = 1.2
+    with pytest.raises(InputError) as exc:
+        rf_pseudopotential(ring, V_RF, f_slow, ca.mass_kg, ca.charge_c, depth=False)
+    msg = str(exc.value)
+    assert "rf.f_drive" in msg and "stability" in msg and "1.2" in msg, msg
+    # just inside the region it is accepted
+    ok = rf_pseudopotential(ring, V_RF, F_DRIVE * math.sqrt(trap.q_max / 0.9), ca.mass_kg, ca.charge_c, depth=False)
+    assert ok.q_max == pytest.approx(0.9, rel=1e-9)
